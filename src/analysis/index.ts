@@ -1,0 +1,7 @@
+/** Pure functions over numbers: no tfjs, no I/O. Re-exported as `analysis` from the package. */
+export * from './moments.js';
+export * from './decibel.js';
+export * from './gradient-stats.js';
+export * from './power-law.js';
+export { studentTCdf, regularizedBeta } from './student-t.js';
+export * from './travel-exponent.js';

@@ -1,0 +1,142 @@
+/**
+ * Running moments: Welford's update for scalars, the Chan–Golub–LeVeque merge, and a vector
+ * accumulator with a shifted sum of squares for per-coordinate gradient statistics.
+ */
+
+/** Count, mean and sum of squared deviations of a scalar stream. */
+export interface Moments {
+  n: number;
+  mean: number;
+  m2: number;
+}
+
+export function emptyMoments(): Moments {
+  return { n: 0, mean: 0, m2: 0 };
+}
+
+/** Welford (1962): adds `x` to `m` in place. The last factor uses the new mean. */
+export function welfordPush(m: Moments, x: number): void {
+  m.n += 1;
+  const delta = x - m.mean;
+  m.mean += delta / m.n;
+  m.m2 += delta * (x - m.mean);
+}
+
+/** Chan, Golub & LeVeque (1982) pairwise merge; exact in exact arithmetic, order-independent. */
+export function mergeMoments(a: Moments, b: Moments): Moments {
+  const n = a.n + b.n;
+  if (n === 0) return emptyMoments();
+  const delta = b.mean - a.mean;
+  return {
+    n,
+    mean: a.mean + (delta * b.n) / n,
+    m2: a.m2 + b.m2 + (delta * delta * a.n * b.n) / n,
+  };
+}
+
+/** Unbiased variance, M2/(n-1); NaN below two values. */
+export function sampleVariance(m: Moments): number {
+  return m.n < 2 ? Number.NaN : m.m2 / (m.n - 1);
+}
+
+/** Population variance, M2/n; NaN for an empty stream. */
+export function populationVariance(m: Moments): number {
+  return m.n < 1 ? Number.NaN : m.m2 / m.n;
+}
+
+/** Number of NaN or ±Infinity entries. */
+export function countNonFinite(values: ArrayLike<number>): number {
+  // A float64 sum of float32 values cannot overflow, so a finite sum proves every entry finite:
+  // one cheap pass in the common case.
+  let sum = 0;
+  const len = values.length;
+  for (let i = 0; i < len; i++) sum += values[i]!;
+  if (Number.isFinite(sum)) return 0;
+  let bad = 0;
+  for (let i = 0; i < len; i++) if (!Number.isFinite(values[i]!)) bad++;
+  return bad;
+}
+
+/**
+ * Per-coordinate mean and variance of a stream of equal-length vectors, kept as float64 sums of
+ * deviations from a reference vector (the first one pushed). Subtracting the reference before
+ * squaring removes the large common offset that makes the naive sum-of-squares formula cancel
+ * catastrophically (methods.md §4), at the cost of one sum and one sum of squares per coordinate.
+ */
+export class ShiftedMoments {
+  readonly size: number;
+  private n = 0;
+  private readonly ref: Float64Array;
+  private readonly s1: Float64Array;
+  private readonly s2: Float64Array;
+
+  constructor(size: number) {
+    if (!Number.isInteger(size) || size < 0) throw new RangeError(`size must be a non-negative integer, got ${size}`);
+    this.size = size;
+    this.ref = new Float64Array(size);
+    this.s1 = new Float64Array(size);
+    this.s2 = new Float64Array(size);
+  }
+
+  get count(): number {
+    return this.n;
+  }
+
+  push(values: ArrayLike<number>): void {
+    const len = this.size;
+    if (values.length !== len) throw new RangeError(`expected ${len} values, got ${values.length}`);
+    const ref = this.ref;
+    if (this.n === 0) {
+      for (let j = 0; j < len; j++) ref[j] = values[j]!;
+      this.n = 1;
+      return; // deviations of the reference from itself are zero: s1, s2 stay 0
+    }
+    const s1 = this.s1;
+    const s2 = this.s2;
+    for (let j = 0; j < len; j++) {
+      const d = values[j]! - ref[j]!;
+      s1[j] = s1[j]! + d;
+      s2[j] = s2[j]! + d * d;
+    }
+    this.n += 1;
+  }
+
+  reset(): void {
+    this.n = 0;
+    this.s1.fill(0);
+    this.s2.fill(0);
+  }
+
+  mean(): Float64Array {
+    const out = new Float64Array(this.size);
+    if (this.n === 0) return out.fill(Number.NaN);
+    for (let j = 0; j < this.size; j++) out[j] = this.ref[j]! + this.s1[j]! / this.n;
+    return out;
+  }
+
+  /** Squared Euclidean norm of the mean vector, ||m||². */
+  meanSquaredNorm(): number {
+    if (this.n === 0) return Number.NaN;
+    let acc = 0;
+    const n = this.n;
+    for (let j = 0; j < this.size; j++) {
+      const m = this.ref[j]! + this.s1[j]! / n;
+      acc += m * m;
+    }
+    return acc;
+  }
+
+  /** Sum over coordinates of the unbiased variance: the trace of the sample covariance. */
+  varianceTrace(): number {
+    const n = this.n;
+    if (n < 2) return Number.NaN;
+    let acc = 0;
+    for (let j = 0; j < this.size; j++) {
+      const a = this.s1[j]!;
+      // Clamp tiny negative round-off; the shifted form keeps it at the level of float64 epsilon.
+      const m2 = this.s2[j]! - (a * a) / n;
+      if (m2 > 0) acc += m2;
+    }
+    return acc / (n - 1);
+  }
+}

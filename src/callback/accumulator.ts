@@ -1,0 +1,36 @@
+/**
+ * What an accumulator gives back when a window closes: per tracked variable, the sufficient
+ * statistics of its minibatch gradients and the weight norms, as plain numbers.
+ */
+import type { GradientPair } from './optimizer-tap.js';
+
+export interface RawVariableWindow {
+  /** Minibatch gradients accumulated (K for this variable). */
+  count: number;
+  meanSquaredNorm: number;
+  varianceTrace: number;
+  nonfinite: number;
+  /** ||w||² at the window's end. */
+  weightSq: number;
+  /** ||w − w₀||² at the window's end. */
+  travelSq: number;
+  /** ||Δw||² and ||w||² after one sampled step, or null when no step was sampled. */
+  updateSq: number | null;
+  updateWeightSq: number | null;
+}
+
+export interface Accumulator {
+  readonly kind: 'js' | 'tensor';
+  /** Inside the tap, before the update. `sample` asks for the update size of this step. */
+  before(grads: readonly GradientPair[], sample: boolean): void;
+  /** Inside the tap, after the update. */
+  after(sample: boolean): void;
+  /** Minibatches accumulated since the last close. */
+  readonly pending: number;
+  /**
+   * Ends the window: takes the statistics now (synchronously, so the next step starts clean) and
+   * resolves with the numbers (the tensor path reads them back once, asynchronously).
+   */
+  close(): Promise<RawVariableWindow[]>;
+  dispose(): void;
+}

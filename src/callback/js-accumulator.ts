@@ -1,0 +1,137 @@
+/**
+ * Float64 JavaScript accumulators, for backends whose tensors live in memory JavaScript can read
+ * cheaply (cpu, wasm, tensorflow): each gradient is read once with dataSync and folded into a
+ * shifted sum and sum of squares per coordinate (methods.md §4).
+ */
+import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
+import type { Accumulator, RawVariableWindow } from './accumulator.js';
+import type { ModelView } from './model-layers.js';
+import type { GradientPair } from './optimizer-tap.js';
+
+type Values = ArrayLike<number>;
+
+function sumSq(a: Values): number {
+  let s = 0;
+  for (let i = 0; i < a.length; i++) {
+    const x = a[i]!;
+    s += x * x;
+  }
+  return s;
+}
+
+function diffSq(a: Values, b: Values): number {
+  let s = 0;
+  for (let i = 0; i < a.length; i++) {
+    const d = a[i]! - b[i]!;
+    s += d * d;
+  }
+  return s;
+}
+
+export class JsAccumulator implements Accumulator {
+  readonly kind = 'js' as const;
+  private readonly view: ModelView;
+  private readonly moments: ShiftedMoments[];
+  private readonly initial: Float32Array[];
+  private readonly nonfinite: Float64Array;
+  private readonly current: (Values | null)[];
+  private readonly currentBad: Float64Array;
+  private readonly beforeWeights: (Values | null)[];
+  private updateSq: Float64Array;
+  private updateWeightSq: Float64Array;
+  private sampled = false;
+  private steps = 0;
+
+  constructor(view: ModelView) {
+    this.view = view;
+    const n = view.variables.length;
+    this.moments = view.variables.map((v) => new ShiftedMoments(v.size));
+    // Copies: the backend may hand out its live buffer, which the optimizer replaces each step.
+    this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
+    this.nonfinite = new Float64Array(n);
+    this.current = new Array<Values | null>(n).fill(null);
+    this.currentBad = new Float64Array(n);
+    this.beforeWeights = new Array<Values | null>(n).fill(null);
+    this.updateSq = new Float64Array(n);
+    this.updateWeightSq = new Float64Array(n);
+  }
+
+  get pending(): number {
+    return this.steps;
+  }
+
+  before(grads: readonly GradientPair[], sample: boolean): void {
+    const { byName, layers } = this.view;
+    const current = this.current;
+    for (const [name, tensor] of grads) {
+      if (tensor === null) continue;
+      const v = byName.get(name);
+      if (v === undefined) continue;
+      const data = tensor.dataSync() as Values;
+      current[v.index] = data;
+      this.currentBad[v.index] = countNonFinite(data);
+    }
+    // A layer's variables enter together or not at all, so the layer's K is the same for all.
+    for (const layer of layers) {
+      let bad = 0;
+      for (const v of layer.variables) bad += this.currentBad[v.index]!;
+      if (bad > 0) {
+        for (const v of layer.variables) this.nonfinite[v.index] = this.nonfinite[v.index]! + this.currentBad[v.index]!;
+      } else {
+        for (const v of layer.variables) {
+          const data = current[v.index];
+          if (data != null) this.moments[v.index]!.push(data);
+        }
+      }
+      for (const v of layer.variables) {
+        current[v.index] = null;
+        this.currentBad[v.index] = 0;
+      }
+    }
+    this.steps++;
+    if (sample) {
+      for (const v of this.view.variables) this.beforeWeights[v.index] = v.variable.dataSync() as Values;
+    }
+  }
+
+  after(sample: boolean): void {
+    if (!sample) return;
+    for (const v of this.view.variables) {
+      const before = this.beforeWeights[v.index];
+      if (before == null) continue;
+      const now = v.variable.dataSync() as Values;
+      this.updateSq[v.index] = diffSq(now, before);
+      this.updateWeightSq[v.index] = sumSq(now);
+      this.beforeWeights[v.index] = null;
+    }
+    this.sampled = true;
+  }
+
+  close(): Promise<RawVariableWindow[]> {
+    const out: RawVariableWindow[] = this.view.variables.map((v) => {
+      const m = this.moments[v.index]!;
+      const w = v.variable.dataSync() as Values;
+      return {
+        count: m.count,
+        meanSquaredNorm: m.meanSquaredNorm(),
+        varianceTrace: m.varianceTrace(),
+        nonfinite: this.nonfinite[v.index]!,
+        weightSq: sumSq(w),
+        travelSq: diffSq(w, this.initial[v.index]!),
+        updateSq: this.sampled ? this.updateSq[v.index]! : null,
+        updateWeightSq: this.sampled ? this.updateWeightSq[v.index]! : null,
+      };
+    });
+    for (const m of this.moments) m.reset();
+    this.nonfinite.fill(0);
+    this.updateSq = new Float64Array(this.view.variables.length);
+    this.updateWeightSq = new Float64Array(this.view.variables.length);
+    this.sampled = false;
+    this.steps = 0;
+    return Promise.resolve(out);
+  }
+
+  dispose(): void {
+    this.beforeWeights.fill(null);
+  }
+}

@@ -1,0 +1,458 @@
+/**
+ * monitor(): attaches to a compiled tf.LayersModel, taps its optimizer, and turns each window of
+ * minibatch gradients into a WindowRecord. Everything that can fail during training is caught and
+ * reported (unless `strict`), because monitoring must never break the run it watches.
+ */
+import { randomUUID } from 'node:crypto';
+import * as tf from '@tensorflow/tfjs';
+import { snrFloor } from '../analysis/gradient-stats.js';
+import { travelExponent } from '../analysis/travel-exponent.js';
+import { describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
+import type {
+  LayerStats,
+  Marker,
+  Phase,
+  RunInfo,
+  SinkRecord,
+  VariableStats,
+  WindowRecord,
+} from '../protocol/records.js';
+import { JsonlSink } from '../storage/jsonl-sink.js';
+import { MemorySink } from '../storage/memory-sink.js';
+import type { Sink } from '../storage/sink.js';
+import type { Accumulator, RawVariableWindow } from './accumulator.js';
+import { JsAccumulator } from './js-accumulator.js';
+import { layerInfo, viewModel, type ModelView } from './model-layers.js';
+import { installTap, type GradientPair } from './optimizer-tap.js';
+import { resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
+import { TensorAccumulator } from './tensor-accumulator.js';
+import { pooledStats, variableStats, type WindowContext } from './window-stats.js';
+import { MIN_WINDOW, WindowSchedule } from './window-schedule.js';
+
+/** Backends whose tensor memory JavaScript reads without stalling a device. */
+const HOST_MEMORY_BACKENDS = new Set(['cpu', 'wasm', 'tensorflow']);
+/** Window records kept in memory for windows(); older ones stay in the sink only. */
+export const MAX_WINDOWS_IN_MEMORY = 10_000;
+/** Windows of travel history kept per layer for the exponent fit. */
+const TRAVEL_HISTORY = 512;
+
+export interface PhaseState {
+  network: Phase;
+  layers: Record<string, Phase>;
+}
+
+/** The plain callback object fit and fitDataset accept. */
+export interface MonitorCallback {
+  onTrainBegin(logs?: Record<string, unknown>): Promise<void>;
+  onTrainEnd(logs?: Record<string, unknown>): Promise<void>;
+  onEpochBegin(epoch: number, logs?: Record<string, unknown>): Promise<void>;
+  onEpochEnd(epoch: number, logs?: Record<string, unknown>): Promise<void>;
+  onBatchEnd(batch: number, logs?: Record<string, unknown>): Promise<void>;
+}
+
+export interface Monitor {
+  /** The run's UUID. */
+  readonly runId: string;
+  /** The run's name. */
+  readonly name: string;
+  /** Which accumulator the monitor chose ('js' or 'tensor'). */
+  readonly accumulator: 'js' | 'tensor';
+  /** Pass in `callbacks` of fit or fitDataset. */
+  readonly callback: MonitorCallback;
+  /** Calls `fn` with each window as it closes. Returns a function that unsubscribes. */
+  onWindow(fn: (window: WindowRecord) => void): () => void;
+  /** The windows so far (the most recent 10000). */
+  windows(): readonly WindowRecord[];
+  /** The current phase of the network and of each layer ('undetermined' until phase detection lands). */
+  phase(): PhaseState;
+  markers(): readonly Marker[];
+  /** Problems the monitor absorbed, once per kind. */
+  warnings(): readonly MonitorWarning[];
+  /** Writes what is buffered to the store. */
+  flush(): Promise<void>;
+  /** Closes the last partial window (when it has ≥ 2 minibatches), restores the optimizer, closes the store. */
+  close(): Promise<void>;
+}
+
+function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
+  if (typeof store !== 'string') return store;
+  if (store === 'memory') return new MemorySink();
+  return new JsonlSink(store, { onError });
+}
+
+function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {
+  const useJs = kind === 'js' || (kind === 'auto' && HOST_MEMORY_BACKENDS.has(tf.getBackend()));
+  return useJs ? new JsAccumulator(view) : new TensorAccumulator(view);
+}
+
+interface LogSum {
+  sum: number;
+  n: number;
+}
+
+class MonitorSession implements Monitor {
+  readonly runId: string;
+  readonly name: string;
+  readonly callback: MonitorCallback;
+  private readonly opts: ResolvedOptions;
+  private readonly view: ModelView;
+  private readonly acc: Accumulator;
+  private readonly schedule: WindowSchedule;
+  private readonly removeTap: () => void;
+  private sink: Sink | null;
+  private readonly listeners = new Set<(w: WindowRecord) => void>();
+  private readonly windowList: WindowRecord[] = [];
+  private readonly markerList: Marker[] = [];
+  private readonly warningList: MonitorWarning[] = [];
+  private readonly warningCounts = new Map<ErrorCode, number>();
+  private readonly travel = new Map<string, { steps: number[]; travels: number[] }>();
+  private readonly lastNonfinite = new Map<string, number>();
+  private chain: Promise<void> = Promise.resolve();
+  private closed = false;
+  private inFit = false;
+  private step = 0;
+  private windowIndex = 0;
+  private windowFirstStep = 1;
+  private epoch = 0;
+  private batchesThisEpoch = 0;
+  private batchesPerEpoch: number | null = null;
+  private logSums = new Map<string, LogSum>();
+  private sizeSum = 0;
+  private sizeCount = 0;
+  private epochLogs: Record<string, number> = {};
+  private sampleThisStep = false;
+
+  constructor(opts: ResolvedOptions, view: ModelView, runId: string) {
+    this.opts = opts;
+    this.view = view;
+    this.runId = runId;
+    this.name = opts.run;
+    this.acc = chooseAccumulator(opts.accumulator, view);
+    this.schedule = new WindowSchedule(opts.window);
+    this.sink = openSink(opts.store, (e) => this.report('TIDEMARK_ERR_SINK_WRITE', e));
+    this.removeTap = installTap(view.optimizer, {
+      before: (grads) => this.tapBefore(grads),
+      after: () => this.tapAfter(),
+      onError: (e) => this.fail('TIDEMARK_ERR_STATISTIC', e),
+    });
+    this.callback = {
+      onTrainBegin: async () => {
+        if (this.closed) return;
+        this.inFit = true;
+      },
+      onTrainEnd: async () => {
+        if (this.closed) return;
+        if (this.acc.pending >= MIN_WINDOW) await this.closeWindow();
+        this.inFit = false;
+      },
+      onEpochBegin: async () => {
+        if (this.closed) return;
+        this.batchesThisEpoch = 0;
+      },
+      onEpochEnd: async (_epoch, logs) => {
+        if (this.closed) return;
+        try {
+          if (this.batchesPerEpoch === null && this.batchesThisEpoch > 0) this.batchesPerEpoch = this.batchesThisEpoch;
+          for (const [k, v] of Object.entries(logs ?? {})) {
+            if (k.startsWith('val_') && typeof v === 'number') this.epochLogs[k] = v;
+          }
+          const close = this.schedule.closeAtEpochEnd(this.acc.pending, this.batchesPerEpoch);
+          if (close) await this.closeWindow();
+        } catch (e) {
+          this.fail('TIDEMARK_ERR_STATISTIC', e);
+        } finally {
+          this.epoch++;
+        }
+      },
+      onBatchEnd: async (_batch, logs) => {
+        if (this.closed) return;
+        try {
+          this.batchesThisEpoch++;
+          for (const [k, v] of Object.entries(logs ?? {})) {
+            if (typeof v !== 'number' || k === 'batch') continue;
+            if (k === 'size') {
+              this.sizeSum += v;
+              this.sizeCount++;
+              continue;
+            }
+            const s = this.logSums.get(k);
+            if (s === undefined) this.logSums.set(k, { sum: v, n: 1 });
+            else {
+              s.sum += v;
+              s.n++;
+            }
+          }
+          if (this.schedule.closeAfterStep(this.acc.pending, this.batchesPerEpoch, true)) await this.closeWindow();
+        } catch (e) {
+          this.fail('TIDEMARK_ERR_STATISTIC', e);
+        }
+      },
+    };
+  }
+
+  get accumulator(): 'js' | 'tensor' {
+    return this.acc.kind;
+  }
+
+  async start(run: RunInfo): Promise<void> {
+    const sink = this.sink;
+    if (sink === null) return;
+    try {
+      await sink.open(run);
+      sink.write({ type: 'run', run });
+    } catch (e) {
+      this.sink = null;
+      this.fail('TIDEMARK_ERR_SINK_OPEN', e, 'Records stay in memory only (mon.windows()).');
+    }
+  }
+
+  private tapBefore(grads: readonly GradientPair[]): void {
+    if (this.closed) return;
+    this.step++;
+    this.sampleThisStep = this.acc.pending === 0;
+    this.acc.before(grads, this.sampleThisStep);
+  }
+
+  private tapAfter(): void {
+    if (this.closed) return;
+    this.acc.after(this.sampleThisStep);
+    if (!this.inFit && this.schedule.closeAfterStep(this.acc.pending, null, false)) {
+      // No fit hooks in a custom loop: close here; the read-back, if any, finishes in the background.
+      this.closeWindow().catch(() => {});
+    }
+  }
+
+  private takeLogs(): Record<string, number> {
+    const logs: Record<string, number> = {};
+    for (const [k, s] of this.logSums) logs[k] = s.sum / s.n;
+    Object.assign(logs, this.epochLogs);
+    this.logSums = new Map();
+    this.epochLogs = {};
+    return logs;
+  }
+
+  private closeWindow(): Promise<void> {
+    const batches = this.acc.pending;
+    const meta = {
+      index: this.windowIndex++,
+      first_step: this.windowFirstStep,
+      step: this.step,
+      epoch: this.inFit ? this.epoch : null,
+      batches,
+      batch_size: this.sizeCount > 0 ? this.sizeSum / this.sizeCount : this.opts.batchSize,
+      batches_per_epoch: this.inFit ? this.batchesPerEpoch : null,
+      logs: this.takeLogs(),
+    };
+    this.sizeSum = 0;
+    this.sizeCount = 0;
+    this.windowFirstStep = this.step + 1;
+    this.schedule.closed();
+    let raw: Promise<RawVariableWindow[]>;
+    try {
+      raw = this.acc.close();
+    } catch (e) {
+      raw = Promise.reject(e);
+    }
+    const done = this.chain.then(async () => this.finishWindow(await raw, meta));
+    this.chain = done.catch((e) => this.fail('TIDEMARK_ERR_STATISTIC', e));
+    return this.opts.strict ? done : this.chain;
+  }
+
+  private finishWindow(
+    raw: RawVariableWindow[],
+    meta: Omit<WindowRecord, 'run' | 'snr_floor' | 'time' | 'layers' | 'network'>,
+  ): void {
+    const ctx: WindowContext = { batchSize: meta.batch_size, batchesPerEpoch: meta.batches_per_epoch };
+    const layers: Record<string, LayerStats> = {};
+    const all: { raw: RawVariableWindow; params: number }[] = [];
+    for (const layer of this.view.layers) {
+      const parts = layer.variables.map((v) => ({ raw: raw[v.index]!, params: v.size }));
+      all.push(...parts);
+      const variables: Record<string, VariableStats> = {};
+      for (const v of layer.variables) variables[v.name] = variableStats(raw[v.index]!, v.size, ctx);
+      const stats = pooledStats(parts, ctx);
+      layers[layer.name] = { ...stats, travel_exponent: this.exponent(layer.name, meta.step, stats.weight_travel), variables };
+      this.noteNonfinite(layer.name, stats.nonfinite, meta.first_step, meta.step);
+    }
+    const net = pooledStats(all, ctx);
+    const network: LayerStats = { ...net, travel_exponent: this.exponent('', meta.step, net.weight_travel) };
+    const record: WindowRecord = {
+      run: this.runId,
+      ...meta,
+      snr_floor: snrFloor(meta.batches, meta.batches_per_epoch),
+      time: Date.now(),
+      layers,
+      network,
+    };
+    this.windowList.push(record);
+    if (this.windowList.length > MAX_WINDOWS_IN_MEMORY) this.windowList.shift();
+    this.write({ type: 'window', window: record });
+    for (const fn of this.listeners) {
+      try {
+        fn(record);
+      } catch (e) {
+        this.fail('TIDEMARK_ERR_LISTENER', e);
+      }
+    }
+    const sink = this.sink;
+    if (sink !== null) sink.flush().catch((e) => this.report('TIDEMARK_ERR_SINK_WRITE', e));
+  }
+
+  private exponent(key: string, step: number, travel: number): number | null {
+    let h = this.travel.get(key);
+    if (h === undefined) {
+      h = { steps: [], travels: [] };
+      this.travel.set(key, h);
+    }
+    h.steps.push(step);
+    h.travels.push(travel);
+    if (h.steps.length > TRAVEL_HISTORY) {
+      h.steps.shift();
+      h.travels.shift();
+    }
+    return travelExponent(h.steps, h.travels);
+  }
+
+  private noteNonfinite(layer: string, count: number, firstStep: number, step: number): void {
+    const before = this.lastNonfinite.get(layer) ?? 0;
+    this.lastNonfinite.set(layer, count);
+    if (count === 0 || before > 0) return;
+    this.addMarker({
+      run: this.runId,
+      layer,
+      kind: 'nonfinite',
+      step: firstStep,
+      detected_step: step,
+      confidence: 1,
+      details: { count, message: 'NaN or infinite gradient values; the affected minibatches were left out of the statistics' },
+    });
+    this.report(
+      'TIDEMARK_ERR_NONFINITE',
+      `layer ${layer}: ${count} non-finite gradient values in steps ${firstStep}–${step}; those minibatches were left out of the statistics.`,
+    );
+  }
+
+  private addMarker(marker: Marker): void {
+    this.markerList.push(marker);
+    this.write({ type: 'marker', marker });
+  }
+
+  private write(record: SinkRecord): void {
+    const sink = this.sink;
+    if (sink === null) return;
+    try {
+      sink.write(record);
+    } catch (e) {
+      this.report('TIDEMARK_ERR_SINK_WRITE', e);
+    }
+  }
+
+  /** A problem during training: thrown in strict mode, otherwise reported once per kind. */
+  private fail(code: ErrorCode, error: unknown, advice = ''): void {
+    if (this.opts.strict) {
+      if (error instanceof TidemarkError) throw error;
+      throw new TidemarkError(code, `${describeCause(error)}${advice ? ` ${advice}` : ''}`, { cause: error });
+    }
+    this.report(code, error, advice);
+  }
+
+  private report(code: ErrorCode, error: unknown, advice = ''): void {
+    const count = this.warningCounts.get(code) ?? 0;
+    this.warningCounts.set(code, count + 1);
+    if (count > 0) return;
+    const message = `${typeof error === 'string' ? error : describeCause(error)}${advice ? ` ${advice}` : ''}`;
+    const warning: MonitorWarning = { code, message, step: this.step, cause: error };
+    this.warningList.push(warning);
+    this.write({ type: 'warning', run: this.runId, code, message, step: this.step, time: Date.now() });
+    try {
+      if (this.opts.onWarning) this.opts.onWarning(warning);
+      else console.warn(`tidemark [${code}]: ${message}`);
+    } catch {
+      // A throwing warning handler must not reach fit either.
+    }
+  }
+
+  onWindow(fn: (window: WindowRecord) => void): () => void {
+    if (typeof fn !== 'function') throw new TypeError('onWindow(fn) needs a function');
+    this.listeners.add(fn);
+    return () => {
+      this.listeners.delete(fn);
+    };
+  }
+
+  windows(): readonly WindowRecord[] {
+    return this.windowList.slice();
+  }
+
+  phase(): PhaseState {
+    const layers: Record<string, Phase> = {};
+    for (const l of this.view.layers) layers[l.name] = 'undetermined';
+    return { network: 'undetermined', layers };
+  }
+
+  markers(): readonly Marker[] {
+    return this.markerList.slice();
+  }
+
+  warnings(): readonly MonitorWarning[] {
+    return this.warningList.slice();
+  }
+
+  async flush(): Promise<void> {
+    await this.chain;
+    if (this.sink !== null) await this.sink.flush();
+  }
+
+  async close(): Promise<void> {
+    if (this.closed) return;
+    this.removeTap();
+    if (this.acc.pending >= MIN_WINDOW) await this.closeWindow().catch(() => {});
+    await this.chain;
+    this.closed = true;
+    // fit never reached onTrainEnd: it threw.
+    const status = this.inFit ? 'failed' : 'finished';
+    this.write({ type: 'end', run: this.runId, status, step: this.step, time: Date.now() });
+    this.acc.dispose();
+    const sink = this.sink;
+    this.sink = null;
+    if (sink !== null) {
+      try {
+        await sink.close();
+      } catch (e) {
+        this.report('TIDEMARK_ERR_SINK_WRITE', e);
+      }
+    }
+  }
+}
+
+/**
+ * Starts monitoring a compiled model. Pass `mon.callback` to fit or fitDataset; custom loops that
+ * call `minimize` or `applyGradients` on the model's optimizer are seen too.
+ */
+export async function monitor(model: tf.LayersModel, options: MonitorOptions = {}): Promise<Monitor> {
+  const opts = resolveOptions(options);
+  const view = viewModel(model);
+  const runId = randomUUID();
+  const session = new MonitorSession(opts, view, runId);
+  const run: RunInfo = {
+    id: runId,
+    name: opts.run,
+    group: opts.group,
+    tags: { ...opts.tags },
+    started_at: Date.now(),
+    config: {
+      window: opts.window,
+      batch_size: opts.batchSize,
+      accumulator: session.accumulator,
+      backend: tf.getBackend(),
+    },
+    layers: layerInfo(view),
+  };
+  try {
+    await session.start(run);
+  } catch (e) {
+    await session.close();
+    throw e;
+  }
+  return session;
+}

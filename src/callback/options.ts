@@ -1,0 +1,206 @@
+/**
+ * monitor() options: one defaults table, validated and frozen before training starts. Unknown or
+ * misspelt names throw with a hint, so a typo never silently turns a feature off.
+ */
+import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../errors.js';
+import type { Sink } from '../storage/sink.js';
+
+export type WindowSetting = 'auto' | 'epoch' | number;
+export type AccumulatorKind = 'auto' | 'js' | 'tensor';
+
+export interface MonitorOptions {
+  /** Run name. Default: `run-` and the start time. Each run also gets a UUID. */
+  run?: string;
+  /**
+   * Where records go: a path ending in `.jsonl` (JSON Lines file, appended), `'memory'` (kept in the
+   * monitor only), or a {@link Sink}. Default `'memory'`.
+   */
+  store?: string | Sink;
+  /**
+   * Window of minibatches per record. `'auto'` (default): 8 steps, growing ×1.25 a window up to one
+   * epoch, then one epoch. `'epoch'`: one window per epoch. A number N ≥ 2: every N steps.
+   */
+  window?: WindowSetting;
+  /** Examples per minibatch, for the noise scale in custom loops. Default: read from fit's batch logs. */
+  batchSize?: number;
+  /**
+   * How gradients are accumulated. `'auto'` (default): float64 JavaScript arrays on the cpu, wasm and
+   * tensorflow backends, tensor ops elsewhere (webgl, webgpu), where reading each gradient back would stall.
+   */
+  accumulator?: AccumulatorKind;
+  /** Group name, for comparing runs. Default none. */
+  group?: string;
+  /** Free string tags. Default none. */
+  tags?: Record<string, string>;
+  /** Throw monitoring errors into fit instead of degrading. Default false. */
+  strict?: boolean;
+  /** Told about each absorbed problem. Default: one console warning per kind of problem. */
+  onWarning?: (warning: MonitorWarning) => void;
+}
+
+export interface ResolvedOptions {
+  readonly run: string;
+  readonly store: string | Sink;
+  readonly window: WindowSetting;
+  readonly batchSize: number | null;
+  readonly accumulator: AccumulatorKind;
+  readonly group: string | null;
+  readonly tags: Readonly<Record<string, string>>;
+  readonly strict: boolean;
+  readonly onWarning: ((warning: MonitorWarning) => void) | null;
+}
+
+const KNOWN = [
+  'run',
+  'store',
+  'window',
+  'batchSize',
+  'accumulator',
+  'group',
+  'tags',
+  'strict',
+  'onWarning',
+] as const;
+
+/** In design.md's contract, built in later versions. */
+const NOT_YET: Record<string, string> = {
+  probe: 'layer information estimates (probe) are not available in this version',
+  serve: 'the in-process server (serve) is not available in this version',
+  advice: 'stop advice (advice) is not available in this version',
+};
+
+function editDistance(a: string, b: string): number {
+  const x = a.toLowerCase();
+  const y = b.toLowerCase();
+  const prev = Array.from({ length: y.length + 1 }, (_, j) => j);
+  for (let i = 1; i <= x.length; i++) {
+    let diag = prev[0]!;
+    prev[0] = i;
+    for (let j = 1; j <= y.length; j++) {
+      const tmp = prev[j]!;
+      prev[j] = Math.min(prev[j]! + 1, prev[j - 1]! + 1, diag + (x[i - 1] === y[j - 1] ? 0 : 1));
+      diag = tmp;
+    }
+  }
+  return prev[y.length]!;
+}
+
+function hint(name: string): string {
+  let best: string | null = null;
+  let bestD = 3;
+  for (const k of KNOWN) {
+    const d = editDistance(name, k);
+    if (d < bestD) {
+      bestD = d;
+      best = k;
+    }
+  }
+  return best === null ? `Known options: ${KNOWN.join(', ')}.` : `Did you mean '${best}'?`;
+}
+
+function invalid(name: string, expected: string, got: unknown): TidemarkTypeError {
+  const shown = typeof got === 'string' ? `'${got}'` : typeof got === 'function' ? 'a function' : JSON.stringify(got);
+  return new TidemarkTypeError(
+    'TIDEMARK_ERR_OPTION_INVALID',
+    `Option '${name}' must be ${expected}; received ${shown}.`,
+  );
+}
+
+function isSink(value: unknown): value is Sink {
+  if (value === null || typeof value !== 'object') return false;
+  const s = value as Record<string, unknown>;
+  return ['open', 'write', 'flush', 'close'].every((m) => typeof s[m] === 'function');
+}
+
+/** Copies, validates and freezes the options. Throws a coded TypeError or RangeError. */
+export function resolveOptions(input: unknown, now: () => number = Date.now): ResolvedOptions {
+  if (input === undefined || input === null) input = {};
+  if (typeof input !== 'object' || Array.isArray(input)) throw invalid('options', 'an object', input);
+  const o = input as Record<string, unknown>;
+  for (const key of Object.keys(o)) {
+    if (key in NOT_YET) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_UNSUPPORTED',
+        `Option '${key}': ${NOT_YET[key]}. Remove it to monitor gradients and weights.`,
+      );
+    }
+    if (!(KNOWN as readonly string[]).includes(key)) {
+      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_UNKNOWN', `Unknown option '${key}'. ${hint(key)}`);
+    }
+  }
+
+  const run = o.run ?? `run-${new Date(now()).toISOString()}`;
+  if (typeof run !== 'string' || run.length === 0 || run.length > 10_000) {
+    throw invalid('run', 'a non-empty string of at most 10000 characters', o.run);
+  }
+
+  const store = o.store ?? 'memory';
+  if (typeof store === 'string') {
+    if (store !== 'memory' && !store.endsWith('.jsonl')) {
+      throw invalid('store', "'memory', a path ending in .jsonl, or a Sink object", store);
+    }
+  } else if (!isSink(store)) {
+    throw invalid('store', "'memory', a path ending in .jsonl, or a Sink object", store);
+  }
+
+  const window = o.window ?? 'auto';
+  if (typeof window === 'number') {
+    if (!Number.isInteger(window) || window < 2 || window > 1_000_000) {
+      throw new TidemarkRangeError(
+        'TIDEMARK_ERR_OPTION_INVALID',
+        `Option 'window' as a number of steps must be an integer from 2 to 1000000; received ${window}. ` +
+          'A window needs at least two minibatches for a spread.',
+      );
+    }
+  } else if (window !== 'auto' && window !== 'epoch') {
+    throw invalid('window', "'auto', 'epoch' or an integer number of steps ≥ 2", window);
+  }
+
+  let batchSize: number | null = null;
+  if (o.batchSize !== undefined) {
+    if (typeof o.batchSize !== 'number' || !Number.isInteger(o.batchSize) || o.batchSize < 1) {
+      throw invalid('batchSize', 'a positive integer', o.batchSize);
+    }
+    batchSize = o.batchSize;
+  }
+
+  const accumulator = o.accumulator ?? 'auto';
+  if (accumulator !== 'auto' && accumulator !== 'js' && accumulator !== 'tensor') {
+    throw invalid('accumulator', "'auto', 'js' or 'tensor'", accumulator);
+  }
+
+  let group: string | null = null;
+  if (o.group !== undefined) {
+    if (typeof o.group !== 'string' || o.group.length === 0) throw invalid('group', 'a non-empty string', o.group);
+    group = o.group;
+  }
+
+  const tags: Record<string, string> = {};
+  if (o.tags !== undefined) {
+    if (o.tags === null || typeof o.tags !== 'object' || Array.isArray(o.tags)) {
+      throw invalid('tags', 'an object of string values', o.tags);
+    }
+    for (const [k, v] of Object.entries(o.tags as Record<string, unknown>)) {
+      if (typeof v !== 'string') throw invalid(`tags.${k}`, 'a string', v);
+      tags[k] = v;
+    }
+  }
+
+  const strict = o.strict ?? false;
+  if (typeof strict !== 'boolean') throw invalid('strict', 'true or false', strict);
+
+  const onWarning = o.onWarning ?? null;
+  if (onWarning !== null && typeof onWarning !== 'function') throw invalid('onWarning', 'a function', onWarning);
+
+  return Object.freeze({
+    run,
+    store: store as string | Sink,
+    window: window as WindowSetting,
+    batchSize,
+    accumulator: accumulator as AccumulatorKind,
+    group,
+    tags: Object.freeze(tags),
+    strict,
+    onWarning: onWarning as ResolvedOptions['onWarning'],
+  });
+}

@@ -1,0 +1,77 @@
+/**
+ * Turns an accumulator's raw sums into the per-variable, per-layer and network statistics of a
+ * window record. The formulas live in src/analysis; this file only pools and names.
+ */
+import { gradientStats, poolMoments, type GradientMoments } from '../analysis/gradient-stats.js';
+import type { LayerStats, VariableStats } from '../protocol/records.js';
+import type { RawVariableWindow } from './accumulator.js';
+
+export interface WindowContext {
+  batchSize: number | null;
+  batchesPerEpoch: number | null;
+}
+
+interface Pooled {
+  moments: GradientMoments;
+  weightSq: number;
+  travelSq: number;
+  updateSq: number | null;
+  updateWeightSq: number | null;
+  nonfinite: number;
+  params: number;
+}
+
+function pool(parts: { raw: RawVariableWindow; params: number }[]): Pooled {
+  const moments = poolMoments(
+    parts.map(({ raw }) => ({ batches: raw.count, meanSquaredNorm: raw.meanSquaredNorm, varianceTrace: raw.varianceTrace })),
+  );
+  let weightSq = 0;
+  let travelSq = 0;
+  let updateSq: number | null = 0;
+  let updateWeightSq: number | null = 0;
+  let nonfinite = 0;
+  let params = 0;
+  for (const { raw, params: p } of parts) {
+    weightSq += raw.weightSq;
+    travelSq += raw.travelSq;
+    nonfinite += raw.nonfinite;
+    params += p;
+    if (raw.updateSq === null || raw.updateWeightSq === null || updateSq === null || updateWeightSq === null) {
+      updateSq = null;
+      updateWeightSq = null;
+    } else {
+      updateSq += raw.updateSq;
+      updateWeightSq += raw.updateWeightSq;
+    }
+  }
+  return { moments, weightSq, travelSq, updateSq, updateWeightSq, nonfinite, params };
+}
+
+function toStats(p: Pooled, ctx: WindowContext): VariableStats {
+  const g = gradientStats(p.moments, ctx);
+  return {
+    grad_mean_norm: g.grad_mean_norm,
+    grad_std_norm: g.grad_std_norm,
+    grad_snr: g.grad_snr,
+    grad_snr_db: g.grad_snr_db,
+    noise_scale: g.noise_scale,
+    weight_norm: Math.sqrt(p.weightSq),
+    weight_travel: Math.sqrt(p.travelSq),
+    update_ratio:
+      p.updateSq === null || p.updateWeightSq === null ? Number.NaN : Math.sqrt(p.updateSq) / Math.sqrt(p.updateWeightSq),
+    nonfinite: p.nonfinite,
+    batches: p.moments.batches,
+    params: p.params,
+  };
+}
+
+export function variableStats(raw: RawVariableWindow, params: number, ctx: WindowContext): VariableStats {
+  return toStats(pool([{ raw, params }]), ctx);
+}
+
+/** Pools variables (a layer) or layers' variables (the network): norms add in squares. */
+export function pooledStats(parts: { raw: RawVariableWindow; params: number }[], ctx: WindowContext): VariableStats {
+  return toStats(pool(parts), ctx);
+}
+
+export type { LayerStats };

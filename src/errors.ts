@@ -1,0 +1,68 @@
+/**
+ * The error catalogue. Every error tidemark throws or reports carries a stable `code` from this
+ * table; docs/errors.md documents each one (a test keeps the two in step).
+ */
+
+export const ERROR_CODES = {
+  TIDEMARK_ERR_OPTION_UNKNOWN: 'An option name is not recognised.',
+  TIDEMARK_ERR_OPTION_INVALID: 'An option has a value of the wrong type or out of range.',
+  TIDEMARK_ERR_OPTION_UNSUPPORTED: 'An option names a feature this version does not provide yet.',
+  TIDEMARK_ERR_MODEL_INVALID: 'The first argument of monitor() is not a tf.LayersModel.',
+  TIDEMARK_ERR_MODEL_NOT_COMPILED: 'The model has no optimizer because it was not compiled.',
+  TIDEMARK_ERR_MODEL_NO_TRAINABLE: 'The model has no trainable weights to measure.',
+  TIDEMARK_ERR_MONITOR_CLOSED: 'The monitor was used after close().',
+  TIDEMARK_ERR_SINK_OPEN: 'The record sink could not be opened.',
+  TIDEMARK_ERR_SINK_WRITE: 'Records could not be written to the sink; monitoring continues in memory.',
+  TIDEMARK_ERR_STATISTIC: 'Computing a statistic failed during training; the monitor skipped it.',
+  TIDEMARK_ERR_LISTENER: 'An onWindow listener threw; the error was caught.',
+  TIDEMARK_ERR_NONFINITE: 'NaN or infinite gradient values were seen and kept out of the statistics.',
+} as const;
+
+export type ErrorCode = keyof typeof ERROR_CODES;
+
+/** An error with a stable code. `message` names what was received and what to do. */
+export class TidemarkError extends Error {
+  readonly code: ErrorCode;
+  override readonly cause?: unknown;
+
+  constructor(code: ErrorCode, message: string, options: { cause?: unknown } = {}) {
+    super(message);
+    this.name = 'TidemarkError';
+    this.code = code;
+    if (options.cause !== undefined) this.cause = options.cause;
+  }
+}
+
+/** A TypeError with a code, for arguments of the wrong kind. */
+export class TidemarkTypeError extends TypeError {
+  readonly code: ErrorCode;
+  constructor(code: ErrorCode, message: string) {
+    super(message);
+    this.name = 'TidemarkTypeError';
+    this.code = code;
+  }
+}
+
+/** A RangeError with a code, for values outside their limits. */
+export class TidemarkRangeError extends RangeError {
+  readonly code: ErrorCode;
+  constructor(code: ErrorCode, message: string) {
+    super(message);
+    this.name = 'TidemarkRangeError';
+    this.code = code;
+  }
+}
+
+/** Something went wrong during training that the monitor absorbed instead of throwing into fit. */
+export interface MonitorWarning {
+  code: ErrorCode;
+  message: string;
+  /** Step at which it happened, when known. */
+  step: number | null;
+  cause?: unknown;
+}
+
+export function describeCause(cause: unknown): string {
+  if (cause instanceof Error) return cause.message;
+  return String(cause);
+}

@@ -1,0 +1,25 @@
+/**
+ * tidemark's public API. Nothing outside what this file exports is public.
+ */
+export { monitor } from './callback/monitor.js';
+export type { Monitor, MonitorCallback, PhaseState } from './callback/monitor.js';
+export type { MonitorOptions, WindowSetting, AccumulatorKind } from './callback/options.js';
+export { TidemarkError, TidemarkTypeError, TidemarkRangeError, ERROR_CODES } from './errors.js';
+export type { ErrorCode, MonitorWarning } from './errors.js';
+export type {
+  LayerStats,
+  VariableStats,
+  WindowRecord,
+  Marker,
+  MarkerKind,
+  Phase,
+  RunInfo,
+  RunStatus,
+  LayerInfo,
+  SinkRecord,
+} from './protocol/records.js';
+export type { Sink } from './storage/sink.js';
+export { MemorySink } from './storage/memory-sink.js';
+export { JsonlSink, type JsonlSinkOptions } from './storage/jsonl-sink.js';
+export { encodeRecord, decodeRecord } from './storage/sink.js';
+export * as analysis from './analysis/index.js';

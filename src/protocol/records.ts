@@ -1,0 +1,118 @@
+/**
+ * The records a run produces, shared by the callback, the sinks and (later) the server and page.
+ * Field names are the stable snake_case metric names of design.md.
+ */
+
+/** Statistics of one trainable variable (a kernel or a bias) over one window. */
+export interface VariableStats {
+  /** ||m||₂, the norm of the mean minibatch gradient over the window. */
+  grad_mean_norm: number;
+  /** sqrt(Σ s²), the root of the summed unbiased elementwise gradient variance. */
+  grad_std_norm: number;
+  /** grad_mean_norm / grad_std_norm, an amplitude ratio. Reads near `snr_floor` on pure noise. */
+  grad_snr: number;
+  /** 20·log10(grad_snr). */
+  grad_snr_db: number;
+  /** Simple gradient noise scale B·Σs²/|G|²_est (McCandlish et al. 2018); null when |G|²_est ≤ 0 or B unknown. */
+  noise_scale: number | null;
+  /** ||w|| at the window's end. */
+  weight_norm: number;
+  /** ||w − w₀||, the distance from the weights at monitor() time. */
+  weight_travel: number;
+  /** ||Δw|| / ||w|| of one optimizer step, sampled at the window's first minibatch. */
+  update_ratio: number;
+  /** Non-finite gradient values seen in the window (kept out of the statistics). */
+  nonfinite: number;
+  /** K: minibatch gradients that entered the statistics. */
+  batches: number;
+  /** Number of scalar parameters. */
+  params: number;
+}
+
+/** Statistics of one layer (its variables pooled) or of the whole network (all layers pooled). */
+export interface LayerStats extends VariableStats {
+  /** Local log-log slope of weight_travel against step; null until enough windows. */
+  travel_exponent: number | null;
+  /** Per-variable values, keyed by the variable's name. Absent on the network entry. */
+  variables?: Record<string, VariableStats>;
+}
+
+/** One window of minibatches. */
+export interface WindowRecord {
+  /** Run id (UUID). */
+  run: string;
+  /** Sequence number of the window in the run, from 0. */
+  index: number;
+  /** Minibatches since the run began, counted at the window's last minibatch. */
+  step: number;
+  /** First step of the window. */
+  first_step: number;
+  /** Epoch (from 0) in which the window ended, or null outside fit. */
+  epoch: number | null;
+  /** K, minibatches in the window. */
+  batches: number;
+  /** Mean examples per minibatch, B; null when unknown. */
+  batch_size: number | null;
+  /** M, minibatches per epoch, once an epoch has been seen; null before or outside fit. */
+  batches_per_epoch: number | null;
+  /** The SNR that pure noise reads at for this window: sqrt((1 − K/M)/K), or 1/sqrt(K) when M is unknown. */
+  snr_floor: number;
+  /** Wall-clock time the window closed, ms since the epoch. */
+  time: number;
+  layers: Record<string, LayerStats>;
+  network: LayerStats;
+  /** Means over the window of the numbers fit logged per batch, and val_* of an epoch that ended in it. */
+  logs: Record<string, number>;
+}
+
+export type Phase = 'drift' | 'diffusion' | 'undetermined';
+
+export type MarkerKind =
+  | 'drift-start'
+  | 'diffusion-start'
+  | 'compression-start'
+  | 'nonfinite'
+  | 'advice'
+  | 'stopped'
+  | 'note';
+
+export interface Marker {
+  run: string;
+  /** Layer name, or null for the whole network. */
+  layer: string | null;
+  kind: MarkerKind;
+  /** Estimated step where the change happened. */
+  step: number;
+  /** Step at which it was known. */
+  detected_step: number;
+  /** In [0, 1]. */
+  confidence: number;
+  details: Record<string, unknown>;
+}
+
+export interface LayerInfo {
+  name: string;
+  class_name: string;
+  params: number;
+  variables: { name: string; shape: number[]; params: number }[];
+}
+
+export interface RunInfo {
+  id: string;
+  name: string;
+  group: string | null;
+  tags: Record<string, string>;
+  started_at: number;
+  config: Record<string, unknown>;
+  layers: LayerInfo[];
+}
+
+export type RunStatus = 'running' | 'finished' | 'failed' | 'interrupted';
+
+/** Everything a sink is given, one JSON object per record in a JSON Lines file. */
+export type SinkRecord =
+  | { type: 'run'; run: RunInfo }
+  | { type: 'window'; window: WindowRecord }
+  | { type: 'marker'; marker: Marker }
+  | { type: 'warning'; run: string; code: string; message: string; step: number | null; time: number }
+  | { type: 'end'; run: string; status: RunStatus; step: number; time: number };

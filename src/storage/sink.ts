@@ -1,0 +1,34 @@
+/**
+ * Where a monitor's records go. A sink's `write` is called from training hooks, so it must return
+ * at once and buffer; the slow part happens in `flush`, off the training path.
+ */
+import type { RunInfo, SinkRecord } from '../protocol/records.js';
+
+export interface Sink {
+  /** Called once before any record. May reject: the monitor then degrades to memory only. */
+  open(run: RunInfo): Promise<void>;
+  /** Queue a record. Must not throw or block. */
+  write(record: SinkRecord): void;
+  /** Write what is queued. Rejects when that fails; what could not be written stays queued. */
+  flush(): Promise<void>;
+  /** Flush and release. */
+  close(): Promise<void>;
+  /** Records given up after repeated failures (the buffer bound was reached). */
+  readonly dropped: number;
+}
+
+/** JSON cannot hold NaN or ±Infinity; we write them as the strings "NaN", "Infinity", "-Infinity". */
+export function encodeRecord(record: SinkRecord): string {
+  return JSON.stringify(record, (_key, value: unknown) =>
+    typeof value === 'number' && !Number.isFinite(value) ? String(value) : value,
+  );
+}
+
+const NON_FINITE: Record<string, number> = { NaN: Number.NaN, Infinity: Infinity, '-Infinity': -Infinity };
+
+/** Inverse of {@link encodeRecord}. */
+export function decodeRecord(line: string): SinkRecord {
+  return JSON.parse(line, (_key, value: unknown) =>
+    typeof value === 'string' && value in NON_FINITE ? NON_FINITE[value] : value,
+  ) as SinkRecord;
+}
