@@ -136,6 +136,7 @@ export class ShiftedMoments {
       // Clamp tiny negative round-off; the shifted form keeps it at the level of float64 epsilon.
       const m2 = this.s2[j]! - (a * a) / n;
       if (m2 > 0) acc += m2;
+      else if (Number.isNaN(m2)) return Number.NaN;
     }
     return acc / (n - 1);
   }

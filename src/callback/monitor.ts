@@ -199,11 +199,12 @@ class MonitorSession implements Monitor {
     if (sink === null) return;
     try {
       await sink.open(run);
-      sink.write({ type: 'run', run });
     } catch (e) {
       this.sink = null;
       this.fail('TIDEMARK_ERR_SINK_OPEN', e, 'Records stay in memory only (mon.windows()).');
+      return;
     }
+    this.write({ type: 'run', run });
   }
 
   private tapBefore(grads: readonly GradientPair[]): void {
@@ -254,8 +255,11 @@ class MonitorSession implements Monitor {
       raw = Promise.reject(e);
     }
     const done = this.chain.then(async () => this.finishWindow(await raw, meta));
-    this.chain = done.catch((e) => this.fail('TIDEMARK_ERR_STATISTIC', e));
-    return this.opts.strict ? done : this.chain;
+    // The chain itself never rejects, so one failed window does not block the next.
+    this.chain = done.catch((e) => {
+      if (!this.opts.strict) this.report('TIDEMARK_ERR_STATISTIC', e);
+    });
+    return this.opts.strict ? done.catch((e) => this.fail('TIDEMARK_ERR_STATISTIC', e)) : this.chain;
   }
 
   private finishWindow(

@@ -1,0 +1,58 @@
+/**
+ * The same monitor on the wasm backend, where dataSync copies out of the wasm heap: the automatic
+ * choice is the float64 JavaScript accumulator, training stays bit-identical, and the statistics
+ * agree with the tensor-op path.
+ */
+import { createRequire } from 'node:module';
+import { dirname, join } from 'node:path';
+import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
+import { beforeAll, describe, expect, it } from 'vitest';
+import { monitor } from '../../src/index.js';
+import { blobTensors, denseModel, tf, weightsOf } from '../helpers/tf.js';
+
+beforeAll(async () => {
+  const require = createRequire(import.meta.url);
+  setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
+  expect(await tf.setBackend('wasm')).toBe(true);
+  await tf.ready();
+});
+
+describe('monitor on the wasm backend', () => {
+  it('chooses the JavaScript accumulator and leaves training bit-identical', async () => {
+    expect(tf.getBackend()).toBe('wasm');
+    const plain = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 8 });
+    const watched = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 8 });
+    const { xs, ys } = blobTensors(160, 6, 3);
+    await plain.fit(xs, ys, { epochs: 2, batchSize: 16, shuffle: false, verbose: 0 });
+    const mon = await monitor(watched, { window: 4 });
+    expect(mon.accumulator).toBe('js');
+    await watched.fit(xs, ys, { epochs: 2, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
+    await mon.close();
+    expect(mon.windows().length).toBe(5);
+    const a = await weightsOf(plain);
+    const b = await weightsOf(watched);
+    for (let i = 0; i < a.length; i++) expect(Buffer.from(b[i]!.buffer).equals(Buffer.from(a[i]!.buffer))).toBe(true);
+    tf.dispose([xs, ys]);
+  });
+
+  it('agrees with the tensor-op accumulator to 1e-4', async () => {
+    const run = async (accumulator: 'js' | 'tensor') => {
+      const model = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 9 });
+      const { xs, ys } = blobTensors(160, 6, 3);
+      const mon = await monitor(model, { window: 5, accumulator });
+      await model.fit(xs, ys, { epochs: 2, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
+      await mon.close();
+      tf.dispose([xs, ys]);
+      return mon.windows().map((w) => w.network);
+    };
+    const a = await run('js');
+    const b = await run('tensor');
+    expect(b.length).toBe(a.length);
+    a.forEach((x, i) => {
+      const y = b[i]!;
+      for (const f of ['grad_mean_norm', 'grad_std_norm', 'weight_travel'] as const) {
+        expect(Math.abs(y[f] - x[f]) / x[f]).toBeLessThan(1e-4);
+      }
+    });
+  });
+});
