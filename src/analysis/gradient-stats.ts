@@ -18,8 +18,13 @@ export interface GradientMoments {
 export interface GradientContext {
   /** B, examples per minibatch. Without it the noise scale is unknown (null). */
   batchSize?: number | null;
-  /** M, minibatches per epoch, when the window's batches come from one shuffled pass. */
+  /** M, minibatches per epoch, when the window's batches come from shuffled passes over the data. */
   batchesPerEpoch?: number | null;
+  /**
+   * How the window's K minibatches split over the passes (epochs) it touched, e.g. [40, 8]. Each pass is
+   * a draw without replacement; passes are independent. Default: all K from one pass.
+   */
+  passBatches?: readonly number[] | null;
 }
 
 export interface GradientStats {
@@ -36,18 +41,31 @@ export interface GradientStats {
 }
 
 /**
- * Finite-population factor for the noise part of ||m||²: 1 − K/M when the K minibatches are drawn
- * without replacement from an epoch of M, else 1 (independent draws). Cochran, Sampling Techniques.
+ * Finite-population factor f for the noise part of ||m||², E||m||² = |G|² + f·tr(Σ)/(B·K).
+ * Minibatches drawn without replacement from an epoch of M partly cancel: a window with k_p of its K
+ * minibatches in pass p has f = Σ_p k_p(1 − k_p/M) / K, which is 1 − K/M for one pass and 0 for a
+ * whole epoch (Cochran, Sampling Techniques, finite population correction). Without M, f = 1.
  */
-export function finitePopulationFactor(batches: number, batchesPerEpoch?: number | null): number {
-  if (batchesPerEpoch == null || !(batchesPerEpoch > 0)) return 1;
-  return Math.max(0, 1 - batches / batchesPerEpoch);
+export function finitePopulationFactor(
+  batches: number,
+  batchesPerEpoch?: number | null,
+  passBatches?: readonly number[] | null,
+): number {
+  if (batchesPerEpoch == null || !(batchesPerEpoch > 0) || !(batches > 0)) return 1;
+  const parts = passBatches != null && passBatches.length > 0 ? passBatches : [batches];
+  let acc = 0;
+  for (const k of parts) acc += k * Math.max(0, 1 - k / batchesPerEpoch);
+  return acc / batches;
 }
 
 /** The SNR that pure noise reads at: sqrt(f/K) (1/sqrt(K) for independent draws). */
-export function snrFloor(batches: number, batchesPerEpoch?: number | null): number {
+export function snrFloor(
+  batches: number,
+  batchesPerEpoch?: number | null,
+  passBatches?: readonly number[] | null,
+): number {
   if (!(batches > 0)) return Number.NaN;
-  return Math.sqrt(finitePopulationFactor(batches, batchesPerEpoch) / batches);
+  return Math.sqrt(finitePopulationFactor(batches, batchesPerEpoch, passBatches) / batches);
 }
 
 export function gradientStats(m: GradientMoments, ctx: GradientContext = {}): GradientStats {
@@ -55,7 +73,7 @@ export function gradientStats(m: GradientMoments, ctx: GradientContext = {}): Gr
   const stdNorm = Math.sqrt(m.varianceTrace);
   const snr = meanNorm / stdNorm;
   // E||m||² = |G|² + f·tr(Σ)/(B·K) and E Σs² = tr(Σ)/B, so subtracting f·Σs²/K removes the bias.
-  const f = finitePopulationFactor(m.batches, ctx.batchesPerEpoch);
+  const f = finitePopulationFactor(m.batches, ctx.batchesPerEpoch, ctx.passBatches);
   const signal = m.meanSquaredNorm - (f * m.varianceTrace) / m.batches;
   const b = ctx.batchSize;
   const noiseScale =

@@ -121,6 +121,9 @@ class MonitorSession implements Monitor {
   private sizeCount = 0;
   private epochLogs: Record<string, number> = {};
   private sampleThisStep = false;
+  /** Minibatches of the open window per epoch touched. */
+  private passBatches: number[] = [];
+  private passOpen = false;
 
   constructor(opts: ResolvedOptions, view: ModelView, runId: string) {
     this.opts = opts;
@@ -148,6 +151,7 @@ class MonitorSession implements Monitor {
       onEpochBegin: async () => {
         if (this.closed) return;
         this.batchesThisEpoch = 0;
+        this.passOpen = false;
       },
       onEpochEnd: async (_epoch, logs) => {
         if (this.closed) return;
@@ -168,6 +172,7 @@ class MonitorSession implements Monitor {
         if (this.closed) return;
         try {
           this.batchesThisEpoch++;
+          this.countPassBatch();
           for (const [k, v] of Object.entries(logs ?? {})) {
             if (typeof v !== 'number' || k === 'batch') continue;
             if (k === 'size') {
@@ -223,6 +228,14 @@ class MonitorSession implements Monitor {
     }
   }
 
+  private countPassBatch(): void {
+    if (!this.passOpen || this.passBatches.length === 0) {
+      this.passBatches.push(0);
+      this.passOpen = true;
+    }
+    this.passBatches[this.passBatches.length - 1]!++;
+  }
+
   private takeLogs(): Record<string, number> {
     const logs: Record<string, number> = {};
     for (const [k, s] of this.logSums) logs[k] = s.sum / s.n;
@@ -242,8 +255,11 @@ class MonitorSession implements Monitor {
       batches,
       batch_size: this.sizeCount > 0 ? this.sizeSum / this.sizeCount : this.opts.batchSize,
       batches_per_epoch: this.inFit ? this.batchesPerEpoch : null,
+      pass_batches: this.passBatches,
       logs: this.takeLogs(),
     };
+    this.passBatches = [];
+    this.passOpen = false;
     this.sizeSum = 0;
     this.sizeCount = 0;
     this.windowFirstStep = this.step + 1;
@@ -266,7 +282,11 @@ class MonitorSession implements Monitor {
     raw: RawVariableWindow[],
     meta: Omit<WindowRecord, 'run' | 'snr_floor' | 'time' | 'layers' | 'network'>,
   ): void {
-    const ctx: WindowContext = { batchSize: meta.batch_size, batchesPerEpoch: meta.batches_per_epoch };
+    const ctx: WindowContext = {
+      batchSize: meta.batch_size,
+      batchesPerEpoch: meta.batches_per_epoch,
+      passBatches: meta.pass_batches,
+    };
     const layers: Record<string, LayerStats> = {};
     const all: { raw: RawVariableWindow; params: number }[] = [];
     for (const layer of this.view.layers) {
@@ -283,7 +303,7 @@ class MonitorSession implements Monitor {
     const record: WindowRecord = {
       run: this.runId,
       ...meta,
-      snr_floor: snrFloor(meta.batches, meta.batches_per_epoch),
+      snr_floor: snrFloor(meta.batches, meta.batches_per_epoch, meta.pass_batches),
       time: Date.now(),
       layers,
       network,

@@ -9,6 +9,7 @@ import type { RawVariableWindow } from './accumulator.js';
 export interface WindowContext {
   batchSize: number | null;
   batchesPerEpoch: number | null;
+  passBatches: readonly number[];
 }
 
 interface Pooled {

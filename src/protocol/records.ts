@@ -55,7 +55,12 @@ export interface WindowRecord {
   batch_size: number | null;
   /** M, minibatches per epoch, once an epoch has been seen; null before or outside fit. */
   batches_per_epoch: number | null;
-  /** The SNR that pure noise reads at for this window: sqrt((1 − K/M)/K), or 1/sqrt(K) when M is unknown. */
+  /** Minibatches of the window in each epoch it touched, in order (e.g. [40, 8]); empty outside fit. */
+  pass_batches: number[];
+  /**
+   * The SNR that pure noise reads at for this window: sqrt(f/K) with f = Σ_p k_p(1 − k_p/M)/K over the
+   * epochs it touched (sqrt((1 − K/M)/K) within one epoch), or 1/sqrt(K) when M is unknown.
+   */
   snr_floor: number;
   /** Wall-clock time the window closed, ms since the epoch. */
   time: number;

@@ -316,6 +316,53 @@ describe('gradientStats on windows that partition a finite data set', () => {
   });
 });
 
+describe('gradientStats on windows that span two shuffled passes', () => {
+  // A window with k_p of its K minibatches in pass p: each pass is a draw without replacement and the
+  // passes are independent, so f = Σ_p k_p(1 − k_p/M)/K (Cochran's finite population correction applied
+  // per pass [memory]; derivation as in methods.md §1.4).
+  const d = 4;
+  const M = 10;
+  const B = 16;
+  const N = M * B;
+  const rng = mulberry32(4242);
+  const examples = Array.from({ length: N }, () => Array.from({ length: d }, () => 0.5 + Math.sqrt(10) * gaussian(rng)));
+  const G = Array.from({ length: d }, (_, j) => examples.reduce((acc, e) => acc + e[j]!, 0) / N);
+  const gSq = G.reduce((acc, x) => acc + x * x, 0);
+  const minibatch = (order: number[], k: number) => {
+    const g = new Float64Array(d);
+    for (let i = 0; i < B; i++) for (let j = 0; j < d; j++) g[j] = g[j]! + examples[order[k * B + i]!]![j]! / B;
+    return g;
+  };
+
+  it('has the factor Σ k_p(1 − k_p/M)/K', () => {
+    expect(finitePopulationFactor(8, 10, [6, 2])).toBeCloseTo((6 * 0.4 + 2 * 0.8) / 8, 15);
+    expect(finitePopulationFactor(8, 10, [8])).toBeCloseTo(0.2, 15);
+    expect(snrFloor(8, 10, [6, 2])).toBeCloseTo(Math.sqrt(0.5 / 8), 15);
+  });
+
+  it('averages the corrected signal_sq to |G|² where the one-pass factor is biased', () => {
+    const order1 = Array.from({ length: N }, (_, i) => i);
+    const order2 = order1.slice();
+    const split = emptyMoments();
+    const onePass = emptyMoments();
+    for (let r = 0; r < 20_000; r++) {
+      shuffleInPlace(order1, rng);
+      shuffleInPlace(order2, rng);
+      // The last 6 minibatches of one pass and the first 2 of the next.
+      const grads = [4, 5, 6, 7, 8, 9].map((k) => minibatch(order1, k)).concat([0, 1].map((k) => minibatch(order2, k)));
+      const m = accumulate(grads);
+      welfordPush(split, gradientStats(m, { batchSize: B, batchesPerEpoch: M, passBatches: [6, 2] }).signal_sq);
+      welfordPush(onePass, gradientStats(m, { batchSize: B, batchesPerEpoch: M }).signal_sq);
+    }
+    const a = meanAndSe(split);
+    const b = meanAndSe(onePass);
+    // The formula drops O(1/N) terms (N = 160 examples), hence a relative tolerance as in the test above.
+    expect(relErr(a.mean, gSq)).toBeLessThan(0.03);
+    expect(b.mean - gSq).toBeGreaterThan(10 * b.se);
+    expect(b.mean - gSq).toBeGreaterThan(3 * Math.abs(a.mean - gSq));
+  });
+});
+
 describe('poolMoments', () => {
   it('pools layers as a ratio of sums: per-layer 4 and 100, whole model 110/25.1 (§1.5 row 5)', () => {
     // methods.md §1.5 check row 5 [computed], tolerance 1e-9: layer A S = 100, |G|² = 25; layer B S = 10,

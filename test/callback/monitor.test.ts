@@ -86,6 +86,13 @@ describe('monitor windows', () => {
     // A whole-epoch window is a partition of the data: the floor is sqrt((1 − K/M)/K) = 0.
     expect(ws[ws.length - 1]!.snr_floor).toBe(0);
     expect(ws.every((w, i) => i === 0 || w.first_step === ws[i - 1]!.step + 1)).toBe(true);
+    // Window 4 (steps 48–67) spans the end of epoch 0: 17 minibatches of one pass, 3 of the next. Each pass
+    // is a draw without replacement, so f = Σ k_p(1 − k_p/M)/K (Cochran's finite population correction,
+    // from memory; derivation in methods.md §1.4).
+    expect(ws[4]!.pass_batches).toEqual([17, 3]);
+    const f = (17 * (1 - 17 / 64) + 3 * (1 - 3 / 64)) / 20;
+    expect(ws[4]!.snr_floor).toBeCloseTo(Math.sqrt(f / 20), 12);
+    expect(ws.at(-1)!.pass_batches).toEqual([64]);
     tf.dispose([xs, ys]);
   });
 
