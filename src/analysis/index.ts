@@ -5,3 +5,4 @@ export * from './gradient-stats.js';
 export * from './power-law.js';
 export { studentTCdf, regularizedBeta } from './student-t.js';
 export * from './travel-exponent.js';
+export * from './lttb.js';

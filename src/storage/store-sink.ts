@@ -1,0 +1,126 @@
+/**
+ * Feeds a monitor's records into a Store. `write` only queues; `flush` stores the queue in one
+ * transaction. A failed flush (disk full, a lock held too long) keeps the records queued and is
+ * retried on the next flush; past `maxQueued` the oldest are dropped and counted. A heartbeat marks
+ * the run alive, so a run whose process died shows as interrupted.
+ */
+import type { RunInfo, SinkRecord } from '../protocol/records.js';
+import type { Sink } from './sink.js';
+import type { Store } from './store.js';
+
+export interface StoreSinkOptions {
+  /** Milliseconds between heartbeats and background flushes. Default 2000. */
+  heartbeatInterval?: number;
+  /** Records kept while the store refuses writes. Default 100000. */
+  maxQueued?: number;
+  /** Told about each failed flush or heartbeat. */
+  onError?: (error: unknown) => void;
+  /** Close the store when the sink closes. Default true. */
+  closeStore?: boolean;
+}
+
+export class StoreSink implements Sink {
+  private readonly openStore: () => Store;
+  private store: Store | null = null;
+  private runId: string | null = null;
+  private queue: SinkRecord[] = [];
+  private timer: NodeJS.Timeout | null = null;
+  private droppedCount = 0;
+  private readonly heartbeatInterval: number;
+  private readonly maxQueued: number;
+  private readonly onError: (error: unknown) => void;
+  private readonly closeStore: boolean;
+
+  /** `open` is a function so that opening errors surface in `Sink.open`, where the monitor handles them. */
+  constructor(openStore: () => Store, options: StoreSinkOptions = {}) {
+    this.openStore = openStore;
+    this.heartbeatInterval = options.heartbeatInterval ?? 2000;
+    this.maxQueued = options.maxQueued ?? 100_000;
+    this.onError = options.onError ?? (() => {});
+    this.closeStore = options.closeStore ?? true;
+  }
+
+  get dropped(): number {
+    return this.droppedCount;
+  }
+
+  async open(run: RunInfo): Promise<void> {
+    const store = this.openStore();
+    try {
+      store.beginRun(run);
+    } catch (e) {
+      if (this.closeStore) store.close();
+      throw e;
+    }
+    this.store = store;
+    this.runId = run.id;
+    this.timer = setInterval(() => this.tick(), this.heartbeatInterval);
+    this.timer.unref();
+  }
+
+  write(record: SinkRecord): void {
+    // beginRun already stored the run in open().
+    if (record.type === 'run') return;
+    this.queue.push(record);
+    if (this.queue.length > this.maxQueued) {
+      const excess = this.queue.length - this.maxQueued;
+      this.queue.splice(0, excess);
+      this.droppedCount += excess;
+    }
+  }
+
+  async flush(): Promise<void> {
+    this.flushNow();
+  }
+
+  private flushNow(): void {
+    const store = this.store;
+    if (store === null || this.queue.length === 0) return;
+    const batch = this.queue;
+    this.queue = [];
+    try {
+      store.append(batch);
+    } catch (e) {
+      // Keep the batch ahead of anything queued meanwhile; the store ignores windows it already has.
+      this.queue = batch.concat(this.queue);
+      if (this.queue.length > this.maxQueued) {
+        const excess = this.queue.length - this.maxQueued;
+        this.queue.splice(0, excess);
+        this.droppedCount += excess;
+      }
+      throw e;
+    }
+  }
+
+  private tick(): void {
+    try {
+      this.flushNow();
+      if (this.store !== null && this.runId !== null) this.store.heartbeat(this.runId);
+    } catch (e) {
+      this.onError(e);
+    }
+  }
+
+  async close(): Promise<void> {
+    if (this.timer !== null) {
+      clearInterval(this.timer);
+      this.timer = null;
+    }
+    const store = this.store;
+    try {
+      // A lock held by another writer usually clears quickly; try a few times before giving up.
+      for (let attempt = 0; ; attempt++) {
+        try {
+          this.flushNow();
+          break;
+        } catch (e) {
+          if (attempt >= 2) throw e;
+          await new Promise((r) => setTimeout(r, 100 * (attempt + 1)));
+        }
+      }
+    } finally {
+      this.store = null;
+      if (store !== null && this.closeStore) store.close();
+    }
+  }
+}
