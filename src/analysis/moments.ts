@@ -48,10 +48,21 @@ export function populationVariance(m: Moments): number {
 export function countNonFinite(values: ArrayLike<number>): number {
   // A float64 sum of float32 values cannot overflow, so a finite sum proves every entry finite:
   // one cheap pass in the common case.
-  let sum = 0;
+  // Four partial sums break the add-latency chain of a single running sum.
+  let s0 = 0;
+  let s1 = 0;
+  let s2 = 0;
+  let s3 = 0;
   const len = values.length;
-  for (let i = 0; i < len; i++) sum += values[i]!;
-  if (Number.isFinite(sum)) return 0;
+  const end4 = len - (len % 4);
+  for (let i = 0; i < end4; i += 4) {
+    s0 += values[i]!;
+    s1 += values[i + 1]!;
+    s2 += values[i + 2]!;
+    s3 += values[i + 3]!;
+  }
+  for (let i = end4; i < len; i++) s0 += values[i]!;
+  if (Number.isFinite(s0 + s1 + s2 + s3)) return 0;
   let bad = 0;
   for (let i = 0; i < len; i++) if (!Number.isFinite(values[i]!)) bad++;
   return bad;
@@ -99,6 +110,86 @@ export class ShiftedMoments {
       s2[j] = s2[j]! + d * d;
     }
     this.n += 1;
+  }
+
+  /**
+   * Adds several vectors in one pass: one read-modify-write of the sums per block instead of per
+   * vector, which is what makes per-minibatch accumulation cheap. If any value is NaN or infinite
+   * nothing is added (partial work is subtracted again) and it returns false.
+   */
+  pushBlock(block: readonly ArrayLike<number>[]): boolean {
+    const m = block.length;
+    if (m === 0) return true;
+    const len = this.size;
+    for (const v of block) if (v.length !== len) throw new RangeError(`expected ${len} values, got ${v.length}`);
+    const fresh = this.n === 0;
+    if (fresh) {
+      const first = block[0]!;
+      if (countNonFinite(first) > 0) return false;
+      const ref = this.ref;
+      for (let j = 0; j < len; j++) ref[j] = first[j]!;
+    }
+    const stop = this.addBlock(block, 1, len);
+    if (stop < len) {
+      if (fresh) {
+        this.s1.fill(0);
+        this.s2.fill(0);
+      } else this.addBlock(block, -1, stop);
+      return false;
+    }
+    this.n += m;
+    return true;
+  }
+
+  /** Takes back a block added by {@link pushBlock} (up to float64 rounding of the sums). */
+  unpushBlock(block: readonly ArrayLike<number>[]): void {
+    const m = block.length;
+    if (m === 0) return;
+    if (m > this.n) throw new RangeError(`cannot remove ${m} vectors from ${this.n}`);
+    this.n -= m;
+    if (this.n === 0) {
+      this.s1.fill(0);
+      this.s2.fill(0);
+    } else this.addBlock(block, -1, this.size);
+  }
+
+  /**
+   * s1 += sign·Σ d, s2 += sign·Σ d² over coordinates [0, end); stops before the first coordinate
+   * whose contribution is not finite and returns its index (`end` when all were finite).
+   */
+  private addBlock(block: readonly ArrayLike<number>[], sign: 1 | -1, end: number): number {
+    const { ref, s1, s2 } = this;
+    if (block.length === 4) {
+      const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
+      for (let j = 0; j < end; j++) {
+        const r = ref[j]!;
+        const d1 = a[j]! - r;
+        const d2 = b[j]! - r;
+        const d3 = c[j]! - r;
+        const d4 = e[j]! - r;
+        const x = d1 + d2 + d3 + d4;
+        // x − x is 0 for finite x and NaN for NaN or ±Infinity; any bad d makes x bad.
+        if (x - x !== 0) return j;
+        s1[j] = s1[j]! + sign * x;
+        s2[j] = s2[j]! + sign * (d1 * d1 + d2 * d2 + d3 * d3 + d4 * d4);
+      }
+      return end;
+    }
+    const m = block.length;
+    for (let j = 0; j < end; j++) {
+      const r = ref[j]!;
+      let x = 0;
+      let y = 0;
+      for (let k = 0; k < m; k++) {
+        const d = block[k]![j]! - r;
+        x += d;
+        y += d * d;
+      }
+      if (x - x !== 0) return j;
+      s1[j] = s1[j]! + sign * x;
+      s2[j] = s2[j]! + sign * y;
+    }
+    return end;
   }
 
   reset(): void {

@@ -28,14 +28,17 @@ function diffSq(a: Values, b: Values): number {
   return s;
 }
 
+/** Minibatches folded into the sums in one pass; see ShiftedMoments.pushBlock. */
+export const BLOCK = 4;
+
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
   private readonly view: ModelView;
   private readonly moments: ShiftedMoments[];
   private readonly initial: Float32Array[];
   private readonly nonfinite: Float64Array;
-  private readonly current: (Values | null)[];
-  private readonly currentBad: Float64Array;
+  /** Gradients read but not yet folded in: one entry per step, indexed by variable. */
+  private queued: (Values | null)[][] = [];
   private readonly beforeWeights: (Values | null)[];
   private updateSq: Float64Array;
   private updateWeightSq: Float64Array;
@@ -49,8 +52,6 @@ export class JsAccumulator implements Accumulator {
     // Copies: the backend may hand out its live buffer, which the optimizer replaces each step.
     this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
     this.nonfinite = new Float64Array(n);
-    this.current = new Array<Values | null>(n).fill(null);
-    this.currentBad = new Float64Array(n);
     this.beforeWeights = new Array<Values | null>(n).fill(null);
     this.updateSq = new Float64Array(n);
     this.updateWeightSq = new Float64Array(n);
@@ -61,36 +62,56 @@ export class JsAccumulator implements Accumulator {
   }
 
   before(grads: readonly GradientPair[], sample: boolean): void {
-    const { byName, layers } = this.view;
-    const current = this.current;
+    const { byName } = this.view;
+    // Tensors never change after creation, so holding the array until the block is folded is safe:
+    // cpu hands out its (never reused) buffer, wasm and tensorflow a copy.
+    const step = new Array<Values | null>(this.view.variables.length).fill(null);
     for (const [name, tensor] of grads) {
       if (tensor === null) continue;
       const v = byName.get(name);
-      if (v === undefined) continue;
-      const data = tensor.dataSync() as Values;
-      current[v.index] = data;
-      this.currentBad[v.index] = countNonFinite(data);
+      if (v !== undefined) step[v.index] = tensor.dataSync() as Values;
     }
-    // A layer's variables enter together or not at all, so the layer's K is the same for all.
-    for (const layer of layers) {
-      let bad = 0;
-      for (const v of layer.variables) bad += this.currentBad[v.index]!;
-      if (bad > 0) {
-        for (const v of layer.variables) this.nonfinite[v.index] = this.nonfinite[v.index]! + this.currentBad[v.index]!;
-      } else {
+    this.queued.push(step);
+    this.steps++;
+    if (this.queued.length >= BLOCK) this.fold();
+    if (sample) {
+      for (const v of this.view.variables) this.beforeWeights[v.index] = v.variable.dataSync() as Values;
+    }
+  }
+
+  /** Folds the pending steps into the sums. A layer's variables enter together or not at all. */
+  private fold(): void {
+    const steps = this.queued;
+    if (steps.length === 0) return;
+    this.queued = [];
+    for (const layer of this.view.layers) {
+      const blocks = layer.variables.map((v) => {
+        const b: Values[] = [];
+        for (const st of steps) {
+          const data = st[v.index];
+          if (data != null) b.push(data);
+        }
+        return b;
+      });
+      let ok = 0;
+      while (ok < blocks.length && this.moments[layer.variables[ok]!.index]!.pushBlock(blocks[ok]!)) ok++;
+      if (ok === blocks.length) continue;
+      // Something was NaN or infinite: take the block back and go step by step.
+      for (let i = 0; i < ok; i++) this.moments[layer.variables[i]!.index]!.unpushBlock(blocks[i]!);
+      for (const st of steps) {
+        let bad = 0;
         for (const v of layer.variables) {
-          const data = current[v.index];
+          const data = st[v.index];
+          const n = data == null ? 0 : countNonFinite(data);
+          this.nonfinite[v.index] = this.nonfinite[v.index]! + n;
+          bad += n;
+        }
+        if (bad > 0) continue;
+        for (const v of layer.variables) {
+          const data = st[v.index];
           if (data != null) this.moments[v.index]!.push(data);
         }
       }
-      for (const v of layer.variables) {
-        current[v.index] = null;
-        this.currentBad[v.index] = 0;
-      }
-    }
-    this.steps++;
-    if (sample) {
-      for (const v of this.view.variables) this.beforeWeights[v.index] = v.variable.dataSync() as Values;
     }
   }
 
@@ -108,6 +129,7 @@ export class JsAccumulator implements Accumulator {
   }
 
   close(): Promise<RawVariableWindow[]> {
+    this.fold();
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
       const w = v.variable.dataSync() as Values;
@@ -132,6 +154,7 @@ export class JsAccumulator implements Accumulator {
   }
 
   dispose(): void {
+    this.queued = [];
     this.beforeWeights.fill(null);
   }
 }

@@ -256,3 +256,54 @@ describe('ShiftedMoments', () => {
     expect(() => acc.push([1, 2])).toThrow(RangeError);
   });
 });
+
+describe('ShiftedMoments.pushBlock', () => {
+  // The block form must give the same per-coordinate mean and unbiased variance as pushing the
+  // vectors one by one (and as simple-statistics on the same numbers).
+  const rng = mulberry32(31);
+  const vectors = Array.from({ length: 11 }, () => Float32Array.from({ length: 37 }, () => 5 + gaussian(rng)));
+
+  it('matches one-by-one pushes for blocks of 4 and of other sizes', () => {
+    const one = new ShiftedMoments(37);
+    for (const v of vectors) one.push(v);
+    const blocks = new ShiftedMoments(37);
+    expect(blocks.pushBlock(vectors.slice(0, 4))).toBe(true);
+    expect(blocks.pushBlock(vectors.slice(4, 8))).toBe(true);
+    expect(blocks.pushBlock(vectors.slice(8, 11))).toBe(true);
+    expect(blocks.count).toBe(11);
+    expect(blocks.meanSquaredNorm()).toBeCloseTo(one.meanSquaredNorm(), 10);
+    expect(blocks.varianceTrace() / one.varianceTrace()).toBeCloseTo(1, 12);
+    const col = vectors.map((v) => v[5]!);
+    expect(blocks.mean()[5]).toBeCloseTo(ssMean(col), 12);
+    expect(blocks.varianceTrace()).toBeGreaterThan(0);
+    expect(ssSampleVariance(col)).toBeGreaterThan(0);
+  });
+
+  it('adds nothing and says so when a value is NaN or infinite', () => {
+    const m = new ShiftedMoments(37);
+    m.pushBlock(vectors.slice(0, 4));
+    const before = { n: m.count, ms: m.meanSquaredNorm(), vt: m.varianceTrace() };
+    const bad = vectors.slice(4, 8).map((v) => Float32Array.from(v));
+    bad[2]![30] = Number.NaN;
+    expect(m.pushBlock(bad)).toBe(false);
+    expect(m.count).toBe(before.n);
+    expect(m.meanSquaredNorm()).toBeCloseTo(before.ms, 10);
+    expect(m.varianceTrace()).toBeCloseTo(before.vt, 10);
+    const inf = vectors.slice(0, 4).map((v) => Float32Array.from(v));
+    inf[0]![0] = Infinity;
+    const fresh = new ShiftedMoments(37);
+    expect(fresh.pushBlock(inf)).toBe(false);
+    expect(fresh.count).toBe(0);
+  });
+
+  it('takes a block back with unpushBlock', () => {
+    const m = new ShiftedMoments(37);
+    m.pushBlock(vectors.slice(0, 4));
+    const ref = { ms: m.meanSquaredNorm(), vt: m.varianceTrace() };
+    m.pushBlock(vectors.slice(4, 8));
+    m.unpushBlock(vectors.slice(4, 8));
+    expect(m.count).toBe(4);
+    expect(m.meanSquaredNorm()).toBeCloseTo(ref.ms, 9);
+    expect(m.varianceTrace() / ref.vt).toBeCloseTo(1, 9);
+  });
+});
