@@ -6,6 +6,8 @@ export default defineConfig({
     // tfjs training tests are CPU-heavy; two cores, so at most two files at once.
     maxWorkers: 2,
     testTimeout: 60_000,
+    // Monitors left on the default store write to an in-memory SQLite database, not into the checkout.
+    env: { TIDEMARK_DB: ':memory:' },
     hookTimeout: 60_000,
   },
 });

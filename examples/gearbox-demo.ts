@@ -3,13 +3,13 @@
  * window of minibatches, how strongly each layer's gradients agree, the gradient noise scale and how far
  * the weights have moved from where they started.
  *
- *   npx tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE.jsonl] [--exit]
+ *   npx tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--exit]
  */
 import { resolve } from 'node:path';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import cliProgress from 'cli-progress';
-import { monitor, type LayerStats, type WindowRecord } from '../src/index.js';
+import { defaultStore, monitor, type LayerStats, type WindowRecord } from '../src/index.js';
 import { buildGearboxModel, makeGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
@@ -22,7 +22,7 @@ const NEAR_FLOOR_DB = 3;
 
 function fail(message: string): never {
   console.error(`gearbox-demo: ${message}`);
-  console.error('usage: tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE.jsonl] [--exit]');
+  console.error('usage: tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--exit]');
   process.exit(2);
 }
 
@@ -51,8 +51,8 @@ function parseCli(): { epochs: number; seed: number; lr: number; out: string } {
   };
   const lr = values.lr === undefined ? 0.01 : Number(values.lr);
   if (!(lr > 0 && lr < 10)) fail(`--lr must be a positive number below 10; received '${values.lr}'`);
-  const out = values.out ?? 'gearbox-demo.jsonl';
-  if (!out.endsWith('.jsonl')) fail(`--out must name a .jsonl file; received '${out}'`);
+  // The default store: $TIDEMARK_DB or tidemark.db; a path ending in .jsonl writes JSON Lines instead.
+  const out = values.out ?? defaultStore();
   return {
     epochs: int('epochs', values.epochs, DEFAULT_EPOCHS, 1),
     seed: int('seed', values.seed, 1, 0),
@@ -281,6 +281,9 @@ summary.push(
       .map(([k, v]) => `${k} ${v}`)
       .join(', '),
   `Stored ${mon.windows().length} windows of run ${mon.runId} in ${outPath}`,
+  outPath.endsWith('.jsonl')
+    ? `Read it back with: npx tidemark summary ${args.out}`
+    : `Read it back with: npx tidemark runs --db ${args.out}   and   npx tidemark show ${mon.runId.slice(0, 8)} --db ${args.out}`,
   '',
   'Caution: these numbers are statistical estimates from minibatches, not guarantees about the model;' +
     ' confirm any decision to stop training on held-out data.',

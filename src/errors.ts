@@ -16,6 +16,16 @@ export const ERROR_CODES = {
   TIDEMARK_ERR_STATISTIC: 'Computing a statistic failed during training; the monitor skipped it.',
   TIDEMARK_ERR_LISTENER: 'An onWindow listener threw; the error was caught.',
   TIDEMARK_ERR_NONFINITE: 'NaN or infinite gradient values were seen and kept out of the statistics.',
+  TIDEMARK_ERR_STORE_OPEN: 'The store file could not be opened: missing, not a SQLite file, or not a tidemark store.',
+  TIDEMARK_ERR_STORE_SCHEMA: 'The store was written by a newer tidemark (its schema version is higher than this code knows).',
+  TIDEMARK_ERR_STORE_WRITE: 'Writing to the store failed (disk full, locked too long, read-only file); nothing of that batch was kept.',
+  TIDEMARK_ERR_STORE_READ: 'Reading from the store failed (damaged file, I/O error, locked too long).',
+  TIDEMARK_ERR_STORE_READONLY: 'A write was asked of a store opened read-only.',
+  TIDEMARK_ERR_STORE_CLOSED: 'The store was used after close().',
+  TIDEMARK_ERR_RUN_NOT_FOUND: 'No run matches the given id, id prefix or name.',
+  TIDEMARK_ERR_RUN_AMBIGUOUS: 'More than one run matches the given id prefix or name.',
+  TIDEMARK_ERR_RECORD_INVALID: 'A record given to the store, or a line of an import file, is malformed.',
+  TIDEMARK_ERR_FILE_READ: 'A file to import could not be read.',
 } as const;
 
 export type ErrorCode = keyof typeof ERROR_CODES;

@@ -4,6 +4,7 @@
 export { monitor } from './callback/monitor.js';
 export type { Monitor, MonitorCallback, PhaseState } from './callback/monitor.js';
 export type { MonitorOptions, WindowSetting, AccumulatorKind } from './callback/options.js';
+export { defaultStore } from './callback/options.js';
 export { TidemarkError, TidemarkTypeError, TidemarkRangeError, ERROR_CODES } from './errors.js';
 export type { ErrorCode, MonitorWarning } from './errors.js';
 export type {

@@ -20,6 +20,8 @@ import type {
 import { JsonlSink } from '../storage/jsonl-sink.js';
 import { MemorySink } from '../storage/memory-sink.js';
 import type { Sink } from '../storage/sink.js';
+import { openStore } from '../storage/sqlite-store.js';
+import { StoreSink } from '../storage/store-sink.js';
 import type { Accumulator, RawVariableWindow } from './accumulator.js';
 import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
@@ -77,7 +79,8 @@ export interface Monitor {
 function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
   if (typeof store !== 'string') return store;
   if (store === 'memory') return new MemorySink();
-  return new JsonlSink(store, { onError });
+  if (store.endsWith('.jsonl')) return new JsonlSink(store, { onError });
+  return new StoreSink(() => openStore(store), { onError });
 }
 
 function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {

@@ -12,8 +12,8 @@ export interface MonitorOptions {
   /** Run name. Default: `run-` and the start time. Each run also gets a UUID. */
   run?: string;
   /**
-   * Where records go: a path ending in `.jsonl` (JSON Lines file, appended), `'memory'` (kept in the
-   * monitor only), or a {@link Sink}. Default `'memory'`.
+   * Where records go: a SQLite file (default `$TIDEMARK_DB` or `tidemark.db` in the working directory),
+   * a path ending in `.jsonl` (JSON Lines, appended), `'memory'` (kept in the monitor only), or a {@link Sink}.
    */
   store?: string | Sink;
   /**
@@ -68,6 +68,12 @@ const NOT_YET: Record<string, string> = {
   serve: 'the in-process server (serve) is not available in this version',
   advice: 'stop advice (advice) is not available in this version',
 };
+
+/** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
+export function defaultStore(): string {
+  const env = process.env.TIDEMARK_DB;
+  return env !== undefined && env !== '' ? env : 'tidemark.db';
+}
 
 function editDistance(a: string, b: string): number {
   const x = a.toLowerCase();
@@ -134,13 +140,17 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
     throw invalid('run', 'a non-empty string of at most 10000 characters', o.run);
   }
 
-  const store = o.store ?? 'memory';
+  const store = o.store ?? defaultStore();
   if (typeof store === 'string') {
-    if (store !== 'memory' && !store.endsWith('.jsonl')) {
-      throw invalid('store', "'memory', a path ending in .jsonl, or a Sink object", store);
+    if (store.length === 0) throw invalid('store', "a file path, 'memory', or a Sink object", store);
+    if (/^wss?:\/\//.test(store)) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_UNSUPPORTED',
+        `Option 'store': sending records to a server (${store}) is not available in this version. Use a file path.`,
+      );
     }
   } else if (!isSink(store)) {
-    throw invalid('store', "'memory', a path ending in .jsonl, or a Sink object", store);
+    throw invalid('store', "a file path (SQLite, or .jsonl for JSON Lines), 'memory', or a Sink object", store);
   }
 
   const window = o.window ?? 'auto';

@@ -1,94 +1,313 @@
-#!/usr/bin/env node
 /**
- * The `tidemark` command. Exit codes: 0 success, 1 a failure while working, 2 a usage error.
+ * The `tidemark` command. Exit codes: 0 success; 1 a failure while working (unreadable store, write
+ * error); 2 a usage error; 3 the named run does not exist or is ambiguous.
  */
-import { readFileSync } from 'node:fs';
-import { parseArgs } from 'node:util';
+import { readFileSync, writeFileSync } from 'node:fs';
+import { Command, CommanderError, Option } from 'commander';
+import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.js';
+import type { RunStatus } from '../protocol/records.js';
 import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
+import { exportRun, importJsonl } from '../storage/export.js';
+import { openStore } from '../storage/sqlite-store.js';
+import type { RunDetail, RunRow, Store } from '../storage/store.js';
+import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 
-const HELP = `tidemark: per-layer gradient signal-to-noise, noise scale and weight travel of TensorFlow.js runs
+export const EXIT = { ok: 0, failed: 1, usage: 2, notFound: 3 } as const;
 
-Usage:
-  tidemark summary FILE.jsonl    runs in a JSON Lines store, with each layer's latest numbers
-  tidemark --version
-  tidemark --help
+const CAUTION =
+  'These numbers are statistical estimates from minibatches, not guarantees about the model; confirm any decision to stop training on held-out data.';
 
-Exit codes: 0 ok, 1 failed (e.g. unreadable file), 2 usage error.
-The numbers are statistical estimates; confirm any decision to stop training on held-out data.
-`;
+interface Io {
+  out: (s: string) => void;
+  err: (s: string) => void;
+}
+
+function defaultDb(): string {
+  return process.env.TIDEMARK_DB ?? 'tidemark.db';
+}
 
 function version(): string {
   const pkg = JSON.parse(readFileSync(new URL('../../package.json', import.meta.url), 'utf8')) as { version: string };
   return pkg.version;
 }
 
-function fmt(x: number | null | undefined, digits = 3): string {
-  if (x === null || x === undefined) return '—';
-  if (Number.isNaN(x)) return 'NaN';
-  if (!Number.isFinite(x)) return x > 0 ? '+Inf' : '-Inf';
-  const a = Math.abs(x);
-  return a !== 0 && (a >= 1e5 || a < 1e-3) ? x.toExponential(2) : x.toFixed(digits);
+/** Accepts an ISO date/time or an age such as 30d, 12h, 90m. */
+export function parseBefore(text: string, now = Date.now()): number {
+  const age = /^(\d+(?:\.\d+)?)([dhm])$/.exec(text.trim());
+  if (age) {
+    const unit = { d: 86_400_000, h: 3_600_000, m: 60_000 }[age[2] as 'd' | 'h' | 'm'];
+    return now - Number(age[1]) * unit;
+  }
+  const t = Date.parse(text);
+  if (Number.isNaN(t)) {
+    throw new TidemarkTypeError(
+      'TIDEMARK_ERR_OPTION_INVALID',
+      `--before takes a date (2026-11-30, 2026-11-30T12:00Z) or an age (30d, 12h, 90m); received '${text}'.`,
+    );
+  }
+  return t;
 }
 
-function table(rows: string[][]): string {
-  const widths = rows[0]!.map((_, c) => Math.max(...rows.map((r) => r[c]!.length)));
-  return rows.map((r) => r.map((cell, c) => (c === 0 ? cell.padEnd(widths[c]!) : cell.padStart(widths[c]!))).join('  ')).join('\n');
+function statusMark(s: RunStatus): string {
+  return s;
 }
 
-function render(s: RunSummary): string {
-  const head = `${s.run.name}  (${s.run.id}, ${s.status}, ${s.windows} windows)`;
+function runsTable(rows: RunRow[]): string {
+  const lines = [['name', 'id', 'status', 'group', 'steps', 'windows', 'started']];
+  for (const r of rows) {
+    lines.push([
+      printable(r.name, 40),
+      r.id.slice(0, 8),
+      statusMark(r.status),
+      r.group === null ? '—' : printable(r.group, 24),
+      r.last_step === null ? '—' : String(r.last_step),
+      String(r.windows),
+      fmtTime(r.created_at),
+    ]);
+  }
+  return table(lines);
+}
+
+const SHOW_METRICS = ['grad_snr_db', 'noise_scale', 'weight_travel', 'travel_exponent', 'update_ratio', 'nonfinite'] as const;
+
+interface LatestRow {
+  layer: string;
+  values: Partial<Record<(typeof SHOW_METRICS)[number], number | null>>;
+}
+
+function latest(store: Store, run: RunDetail): { step: number | null; rows: LatestRow[]; logs: Record<string, number> } {
+  const step = run.last_step;
+  if (step === null) return { step, rows: [], logs: {} };
+  const at = (metric: string, layer: string | null): number | null => {
+    const pts = store.series(run.id, metric, { layer, from: step, to: step });
+    return pts.length > 0 ? pts[pts.length - 1]!.value : null;
+  };
+  const layers = [...run.layers.map((l) => l.name), null];
+  const rows = layers.map((layer) => {
+    const values: LatestRow['values'] = {};
+    for (const m of SHOW_METRICS) values[m] = at(m, layer);
+    return { layer: layer ?? '(network)', values };
+  });
+  const logs: Record<string, number> = {};
+  const layerNames = new Set(run.layers.map((l) => l.name));
+  for (const key of store.seriesKeys(run.id)) {
+    if (key.layer !== null || layerNames.has(key.metric)) continue;
+    if (['loss', 'val_loss', 'acc', 'val_acc', 'accuracy', 'val_accuracy'].includes(key.metric)) {
+      const v = at(key.metric, null);
+      if (v !== null) logs[key.metric] = v;
+    }
+  }
+  return { step, rows, logs };
+}
+
+function renderShow(store: Store, run: RunDetail): string {
+  const out: string[] = [];
+  out.push(`${printable(run.name, 200)}`);
+  out.push(`  id       ${run.id}`);
+  out.push(`  status   ${run.status}${run.ended_at !== null ? ` at ${fmtTime(run.ended_at)}` : ''}`);
+  out.push(`  started  ${fmtTime(run.created_at)}`);
+  if (run.group !== null) out.push(`  group    ${printable(run.group)}`);
+  const tags = Object.entries(run.tags);
+  if (tags.length > 0) out.push(`  tags     ${tags.map(([k, v]) => `${printable(k)}=${printable(v)}`).join(', ')}`);
+  const l = latest(store, run);
+  out.push(`  windows  ${run.windows}${l.step !== null ? `, last at step ${l.step}` : ''}`);
+  const logs = Object.entries(l.logs);
+  if (logs.length > 0) out.push(`  logs     ${logs.map(([k, v]) => `${k} ${fmt(v, 4)}`).join(', ')}`);
+  if (l.rows.length > 0) {
+    out.push('');
+    const rows = [['layer', 'SNR dB', 'noise scale', 'travel', 'exponent', 'update', 'non-finite']];
+    for (const r of l.rows) {
+      rows.push([
+        printable(r.layer, 40),
+        fmtDb(r.values.grad_snr_db),
+        fmt(r.values.noise_scale, 1),
+        fmt(r.values.weight_travel),
+        fmt(r.values.travel_exponent, 2),
+        fmt(r.values.update_ratio),
+        r.values.nonfinite == null ? '—' : String(r.values.nonfinite),
+      ]);
+    }
+    out.push(table(rows, '  '));
+  }
+  const markers = store.markers(run.id);
+  out.push('');
+  if (markers.length === 0) out.push('  no markers');
+  else {
+    const rows = [['marker', 'layer', 'step', 'known at', 'confidence']];
+    for (const m of markers) {
+      rows.push([m.kind, m.layer === null ? '(network)' : printable(m.layer, 40), String(m.step), String(m.detected_step), fmt(m.confidence, 2)]);
+    }
+    out.push(table(rows, '  '));
+  }
+  out.push('');
+  out.push(CAUTION);
+  return out.join('\n');
+}
+
+function renderSummary(s: RunSummary): string {
+  const head = `${printable(s.run.name)}  (${s.run.id}, ${s.status}, ${s.windows} windows)`;
   const w = s.last;
   if (w === null) return `${head}\n  no windows yet`;
   const rows = [['layer', 'SNR dB', 'noise scale', 'travel', 'exponent', 'K']];
   for (const [name, l] of [...Object.entries(w.layers), ['(network)', w.network] as const]) {
-    rows.push([name, fmt(l.grad_snr_db, 1), fmt(l.noise_scale, 1), fmt(l.weight_travel), fmt(l.travel_exponent, 2), String(l.batches)]);
+    rows.push([printable(name, 40), fmtDb(l.grad_snr_db), fmt(l.noise_scale, 1), fmt(l.weight_travel), fmt(l.travel_exponent, 2), String(l.batches)]);
   }
   const floor = w.snr_floor > 0 ? `${fmt(20 * Math.log10(w.snr_floor), 1)} dB` : '0 (whole epoch)';
-  return `${head}\n  step ${w.step}, epoch ${w.epoch ?? '—'}, SNR floor ${floor}\n${table(rows)
-    .split('\n')
-    .map((l) => `  ${l}`)
-    .join('\n')}`;
+  return `${head}\n  step ${w.step}, epoch ${w.epoch ?? '—'}, SNR floor ${floor}\n${table(rows, '  ')}`;
 }
 
-export async function main(argv: string[]): Promise<number> {
-  let parsed;
+function parseTag(value: string, previous: Record<string, string> = {}): Record<string, string> {
+  const i = value.indexOf('=');
+  if (i <= 0) throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `--tag takes key=value; received '${value}'.`);
+  return { ...previous, [value.slice(0, i)]: value.slice(i + 1) };
+}
+
+function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T): T {
+  const store = openStore(db, { readonly });
   try {
-    parsed = parseArgs({
-      args: argv,
-      allowPositionals: true,
-      options: { help: { type: 'boolean', short: 'h' }, version: { type: 'boolean', short: 'v' } },
-    });
-  } catch (e) {
-    process.stderr.write(`${(e as Error).message}\n\n${HELP}`);
-    return 2;
+    return fn(store);
+  } finally {
+    store.close();
   }
-  const { values, positionals } = parsed;
-  if (values.version) {
-    process.stdout.write(`${version()}\n`);
-    return 0;
-  }
-  const [command, ...rest] = positionals;
-  if (values.help || command === undefined) {
-    process.stdout.write(HELP);
-    return values.help ? 0 : 2;
-  }
-  if (command === 'summary') {
-    if (rest.length !== 1) {
-      process.stderr.write(`tidemark summary takes one JSON Lines file; got ${rest.length} arguments.\n`);
-      return 2;
-    }
-    try {
-      const runs = await summarizeJsonl(rest[0]!);
-      if (runs.length === 0) process.stdout.write('No runs in this file.\n');
-      for (const s of runs) process.stdout.write(`${render(s)}\n\n`);
-      return 0;
-    } catch (e) {
-      process.stderr.write(`tidemark: cannot read ${rest[0]}: ${(e as Error).message}\n`);
-      return 1;
-    }
-  }
-  process.stderr.write(`Unknown command '${command}'.\n\n${HELP}`);
-  return 2;
 }
 
-process.exitCode = await main(process.argv.slice(2));
+export function buildProgram(io: Io): Command {
+  const program = new Command();
+  program
+    .name('tidemark')
+    .description('Per-layer gradient signal-to-noise, noise scale and weight travel of TensorFlow.js runs, kept in a SQLite store.')
+    .version(version(), '-v, --version')
+    .addOption(new Option('--db <file>', 'SQLite store (default: $TIDEMARK_DB or tidemark.db)'))
+    .configureOutput({ writeOut: io.out, writeErr: io.err })
+    .showHelpAfterError()
+    .exitOverride();
+  const db = () => (program.opts<{ db?: string }>().db ?? defaultDb());
+
+  program
+    .command('runs')
+    .description('list runs, newest first')
+    .option('--name <text>', 'only runs whose name contains text')
+    .option('--group <group>', 'only runs in this group')
+    .option('--tag <key=value>', 'only runs with this tag (repeatable)', parseTag)
+    .addOption(new Option('--status <status>', 'only runs with this status').choices(['running', 'finished', 'failed', 'interrupted']))
+    .option('--limit <n>', 'at most n runs', (v) => Number.parseInt(v, 10), 1000)
+    .option('--json', 'machine-readable output')
+    .action((o: { name?: string; group?: string; tag?: Record<string, string>; status?: RunStatus; limit: number; json?: boolean }) => {
+      const rows = withStore(db(), true, (s) =>
+        s.runs({
+          ...(o.name !== undefined && { name: o.name }),
+          ...(o.group !== undefined && { group: o.group }),
+          ...(o.tag !== undefined && { tags: o.tag }),
+          ...(o.status !== undefined && { status: o.status }),
+          limit: o.limit,
+        }),
+      );
+      if (o.json) io.out(`${JSON.stringify(rows, null, 2)}\n`);
+      else io.out(rows.length === 0 ? 'No runs.\n' : `${runsTable(rows)}\n`);
+    });
+
+  program
+    .command('show')
+    .description("a run's latest per-layer numbers and its markers")
+    .argument('<run>', 'run id, unique id prefix, or name')
+    .option('--json', 'machine-readable output')
+    .action((ref: string, o: { json?: boolean }) => {
+      withStore(db(), true, (s) => {
+        const run = s.resolveRun(ref);
+        if (o.json) {
+          const l = latest(s, run);
+          io.out(`${JSON.stringify({ run, latest: l, markers: s.markers(run.id), caution: CAUTION }, null, 2)}\n`);
+        } else io.out(`${renderShow(s, run)}\n`);
+      });
+    });
+
+  program
+    .command('export')
+    .description('write a run as CSV or JSON Lines')
+    .argument('<run>', 'run id, unique id prefix, or name')
+    .addOption(new Option('--format <format>', 'output format').choices(['csv', 'jsonl']).makeOptionMandatory())
+    .option('--out <file>', 'write to a file instead of standard output')
+    .action((ref: string, o: { format: 'csv' | 'jsonl'; out?: string }) => {
+      const text = withStore(db(), true, (s) => exportRun(s, s.resolveRun(ref).id, o.format));
+      if (o.out !== undefined) writeFileSync(o.out, text);
+      else io.out(text);
+    });
+
+  program
+    .command('import')
+    .description('add a run from a JSON Lines export (or a JSON Lines store file)')
+    .argument('<file>', 'JSON Lines file')
+    .action(async (file: string) => {
+      const store = openStore(db());
+      try {
+        const ids = await importJsonl(store, file);
+        io.out(`Imported ${ids.length} run${ids.length === 1 ? '' : 's'}: ${ids.join(', ')}\n`);
+      } finally {
+        store.close();
+      }
+    });
+
+  program
+    .command('delete')
+    .description('delete a run and everything stored for it')
+    .argument('<run>', 'run id, unique id prefix, or name')
+    .action((ref: string) => {
+      withStore(db(), false, (s) => {
+        const run = s.resolveRun(ref);
+        s.deleteRun(run.id);
+        io.out(`Deleted ${printable(run.name)} (${run.id}).\n`);
+      });
+    });
+
+  program
+    .command('prune')
+    .description('delete runs started before a date or older than an age')
+    .requiredOption('--before <date|age>', 'e.g. 2026-11-01 or 30d')
+    .action((o: { before: string }) => {
+      const before = parseBefore(o.before);
+      const ids = withStore(db(), false, (s) => s.prune(before));
+      io.out(`Deleted ${ids.length} run${ids.length === 1 ? '' : 's'} started before ${fmtTime(before)}.\n`);
+    });
+
+  program
+    .command('summary')
+    .description('runs in a JSON Lines file, with their latest per-layer numbers')
+    .argument('<file>', 'JSON Lines file written with store: "*.jsonl"')
+    .action(async (file: string) => {
+      const runs = await summarizeJsonl(file);
+      if (runs.length === 0) io.out('No runs in this file.\n');
+      for (const s of runs) io.out(`${renderSummary(s)}\n\n`);
+      if (runs.length > 0) io.out(`${CAUTION}\n`);
+    });
+
+  return program;
+}
+
+/** Runs the command line; returns the exit code. */
+export async function main(argv: string[], io: Io = { out: (s) => process.stdout.write(s), err: (s) => process.stderr.write(s) }): Promise<number> {
+  const program = buildProgram(io);
+  try {
+    await program.parseAsync(argv, { from: 'user' });
+    return EXIT.ok;
+  } catch (e) {
+    if (e instanceof CommanderError) {
+      if (e.code === 'commander.helpDisplayed' || e.code === 'commander.version' || e.code === 'commander.help') return EXIT.ok;
+      return EXIT.usage;
+    }
+    const code = (e as { code?: string }).code;
+    if (code === 'TIDEMARK_ERR_RUN_NOT_FOUND' || code === 'TIDEMARK_ERR_RUN_AMBIGUOUS') {
+      io.err(`tidemark: ${(e as Error).message}\n`);
+      return EXIT.notFound;
+    }
+    if (e instanceof TidemarkTypeError || e instanceof TidemarkRangeError) {
+      io.err(`tidemark: ${e.message}\n`);
+      return EXIT.usage;
+    }
+    if (e instanceof TidemarkError) {
+      io.err(`tidemark: ${e.message} [${e.code}]\n`);
+      return EXIT.failed;
+    }
+    io.err(`tidemark: ${(e as Error).message ?? String(e)}\n`);
+    return EXIT.failed;
+  }
+}

@@ -14,6 +14,8 @@ export interface RunRow {
   /** ms since the epoch. */
   created_at: number;
   ended_at: number | null;
+  /** Step of the `end` record, or null while no end record was stored. */
+  end_step: number | null;
   /** Last time the writer showed it was alive; a running run whose heartbeat is older than the limit is `interrupted`. */
   heartbeat_at: number;
   /** Last step stored, or null before the first window. */
@@ -38,12 +40,15 @@ export interface RunFilter {
 }
 
 export interface SeriesQuery {
-  /** A layer name; omitted or null for the network entry; run-level metrics (loss, val_loss, …) ignore it. */
+  /**
+   * A layer name, or a variable name (as seriesKeys lists it) for per-variable statistics; omitted or
+   * null for the network entry, or else the run-level metric of that name (loss, val_loss, snr_floor, …).
+   */
   layer?: string | null;
   /** Inclusive step range. */
   from?: number;
   to?: number;
-  /** At most this many points, downsampled with Largest-Triangle-Three-Buckets (Steinarsson 2013). */
+  /** At most this many points (an integer ≥ 2), downsampled with Largest-Triangle-Three-Buckets (Steinarsson 2013). */
   points?: number;
 }
 
@@ -52,35 +57,59 @@ export interface SeriesPoint {
   value: number;
 }
 
+/**
+ * Where a series belongs: the whole network, one layer, one trainable variable of a layer, or the run
+ * (what `fit` logged, and the window fields snr_floor, epoch and batch_size).
+ */
+export type SeriesScope = 'network' | 'layer' | 'variable' | 'run';
+
 export interface SeriesKey {
   metric: string;
-  /** null for the network entry and for run-level metrics. */
+  /** The layer's name, or the variable's name for scope `variable`; null for the network and run scopes. */
   layer: string | null;
+  scope: SeriesScope;
+}
+
+/** A stored `warning` record. */
+export interface StoredWarning {
+  run: string;
+  code: string;
+  message: string;
+  step: number | null;
+  time: number;
 }
 
 export interface Store {
   readonly path: string;
+  /** True when opened read-only: every write throws TIDEMARK_ERR_STORE_READONLY. */
+  readonly readonly: boolean;
   /** Creates the run (status `running`). Idempotent for the same id. */
   beginRun(run: RunInfo): void;
   /**
    * Stores records in one transaction: windows (every numeric metric of every layer, the network entry
    * and the logs, plus the window's own fields), markers, warnings and `end` records. A window already
-   * stored for (run, index) is ignored, so a resend never doubles a point.
+   * stored for (run, index) is ignored, so a resend never doubles a point; so is a marker already stored
+   * for (run, layer, kind, step, detected_step), and a warning for (run, time, code, message).
+   * On any error nothing of the call is kept.
    */
   append(records: readonly SinkRecord[]): void;
-  /** Marks the writer of `runId` alive at `now`. */
+  /** Marks the writer of `runId` alive at `now` (default: the store's clock); an `interrupted` run without an end record becomes `running` again. */
   heartbeat(runId: string, now?: number): void;
   runs(filter?: RunFilter): RunRow[];
   /** Finds a run by id, unique id prefix or exact name; throws TIDEMARK_ERR_RUN_NOT_FOUND / TIDEMARK_ERR_RUN_AMBIGUOUS. */
   resolveRun(ref: string): RunDetail;
   /** Which series a run has. */
   seriesKeys(runId: string): SeriesKey[];
+  /** Points in step order; NaN values come back as NaN; an unknown metric gives []. */
   series(runId: string, metric: string, query?: SeriesQuery): SeriesPoint[];
+  /** In step order. */
   markers(runId: string): Marker[];
+  /** In time order. */
+  warnings(runId: string): StoredWarning[];
   /** The run's windows rebuilt from storage, in step order (for export and offline analysis). */
   windows(runId: string): WindowRecord[];
   deleteRun(runId: string): boolean;
-  /** Deletes runs created before `before` (ms since the epoch); returns their ids. */
+  /** Deletes runs created before `before` (ms since the epoch), except live ones (running, fresh heartbeat); returns their ids. */
   prune(before: number): string[];
   close(): void;
 }

@@ -34,9 +34,9 @@ describe('monitor() argument checks', () => {
   });
 
   it('rejects values of the wrong type, naming the option and the value', async () => {
-    const err = await monitor(model, { store: 'runs.db' }).catch((e: unknown) => e);
+    const err = await monitor(model, { store: 42 } as never).catch((e: unknown) => e);
     expect(err).toMatchObject({ code: 'TIDEMARK_ERR_OPTION_INVALID' });
-    expect((err as Error).message).toContain("received 'runs.db'");
+    expect((err as Error).message).toContain('received 42');
     await expect(monitor(model, { tags: { seed: 3 } } as never)).rejects.toMatchObject({
       code: 'TIDEMARK_ERR_OPTION_INVALID',
       message: expect.stringContaining('tags.seed'),
@@ -44,6 +44,9 @@ describe('monitor() argument checks', () => {
   });
 
   it('says which planned options are not available yet', async () => {
+    await expect(monitor(model, { store: 'ws://127.0.0.1:7341' })).rejects.toMatchObject({
+      code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
+    });
     await expect(monitor(model, { probe: {} } as never)).rejects.toMatchObject({
       code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
       message: expect.stringContaining('probe'),

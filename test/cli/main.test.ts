@@ -2,50 +2,161 @@ import { spawnSync } from 'node:child_process';
 import { mkdtempSync, readFileSync, rmSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
+import { parse } from 'csv-parse/sync';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
+import { EXIT, main, parseBefore } from '../../src/cli/main.js';
 import { monitor } from '../../src/index.js';
+import { openStore } from '../../src/storage/sqlite-store.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-cli-'));
 afterAll(() => rmSync(dir, { recursive: true, force: true }));
-beforeAll(useCpu);
 
-function cli(...args: string[]) {
-  const r = spawnSync(process.execPath, ['--import', 'tsx', 'src/cli/main.ts', ...args], { encoding: 'utf8' });
-  return { code: r.status, out: r.stdout, err: r.stderr };
+async function run(...args: string[]) {
+  let out = '';
+  let err = '';
+  const code = await main(args, { out: (s) => void (out += s), err: (s) => void (err += s) });
+  return { code, out, err };
 }
 
-describe('tidemark command', () => {
-  it('summarises the runs of a JSON Lines store', async () => {
-    const file = join(dir, 'runs.jsonl');
+const db = join(dir, 'runs.db');
+const jsonl = join(dir, 'runs.jsonl');
+const runIds: string[] = [];
+
+beforeAll(async () => {
+  await useCpu();
+  const { xs, ys } = blobTensors(64, 4, 2);
+  for (const [name, store, group] of [
+    ['alpha "quoted"\nrun', db, 'sweep'],
+    ['beta', db, 'other'],
+    ['gamma', jsonl, 'sweep'],
+  ] as const) {
     const model = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
-    const { xs, ys } = blobTensors(64, 4, 2);
-    const mon = await monitor(model, { store: file, run: 'cli "quoted" run', window: 4 });
+    const mon = await monitor(model, { store, run: name, window: 4, group, tags: { seed: name.slice(0, 1) } });
     await model.fit(xs, ys, { epochs: 2, batchSize: 8, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
-    tf.dispose([xs, ys]);
-    const r = cli('summary', file);
-    expect(r.code).toBe(0);
-    expect(r.out).toContain('cli "quoted" run');
+    runIds.push(mon.runId);
+  }
+  tf.dispose([xs, ys]);
+});
+
+describe('tidemark runs', () => {
+  it('lists runs with their status and filters by group and tag', async () => {
+    const all = await run('runs', '--db', db);
+    expect(all.code).toBe(EXIT.ok);
+    expect(all.out).toContain('alpha "quoted"\\nrun');
+    expect(all.out).toContain('beta');
+    expect(all.out).toContain('finished');
+    const sweep = await run('runs', '--db', db, '--group', 'sweep', '--json');
+    const rows = JSON.parse(sweep.out) as { id: string; windows: number; last_step: number }[];
+    expect(rows.map((r) => r.id)).toEqual([runIds[0]]);
+    expect(rows[0]).toMatchObject({ windows: 4, last_step: 16 });
+    const tagged = JSON.parse((await run('runs', '--db', db, '--tag', 'seed=b', '--json')).out) as { id: string }[];
+    expect(tagged.map((r) => r.id)).toEqual([runIds[1]]);
+  });
+
+  it('refuses a bad status with a usage error', async () => {
+    const r = await run('runs', '--db', db, '--status', 'sleeping');
+    expect(r.code).toBe(EXIT.usage);
+    expect(r.err).toContain('sleeping');
+  });
+});
+
+describe('tidemark show', () => {
+  it('prints the latest per-layer numbers, the markers and the caution', async () => {
+    const r = await run('show', 'beta', '--db', db);
+    expect(r.code).toBe(EXIT.ok);
+    expect(r.out).toContain(runIds[1]);
+    expect(r.out).toContain('windows  4, last at step 16');
+    expect(r.out).toContain('(network)');
+    expect(r.out).toContain('SNR dB');
+    expect(r.out).toContain('confirm any decision to stop training on held-out data');
+    // The table's SNR for the network equals the stored series value.
+    const store = openStore(db, { readonly: true });
+    const snr = store.series(runIds[1]!, 'grad_snr_db', { layer: null }).at(-1)!.value;
+    store.close();
+    expect(r.out).toMatch(new RegExp(`\\(network\\)\\s+${(snr >= 0 ? '\\+' : '') + snr.toFixed(1).replace('.', '\\.')}`));
+  });
+
+  it('finds a run by unique id prefix and says which runs match an ambiguous one', async () => {
+    expect((await run('show', runIds[0]!.slice(0, 8), '--db', db, '--json')).code).toBe(EXIT.ok);
+    const missing = await run('show', 'no-such-run', '--db', db);
+    expect(missing.code).toBe(EXIT.notFound);
+    expect(missing.err).toContain('no-such-run');
+  });
+});
+
+describe('tidemark export and import', () => {
+  it('writes CSV that a general-purpose parser reads back (RFC 4180, csv-parse)', async () => {
+    const out = join(dir, 'beta.csv');
+    expect((await run('export', 'beta', '--db', db, '--format', 'csv', '--out', out)).code).toBe(EXIT.ok);
+    const rows = parse(readFileSync(out, 'utf8'), { columns: true }) as Record<string, string>[];
+    expect(rows.length).toBeGreaterThan(0);
+    const store = openStore(db, { readonly: true });
+    const windows = store.windows(runIds[1]!);
+    store.close();
+    expect(new Set(rows.map((r) => r.step)).size).toBe(windows.length);
+  });
+
+  it('round-trips a run through JSON Lines into another store', async () => {
+    const out = join(dir, 'alpha.jsonl');
+    expect((await run('export', runIds[0]!, '--db', db, '--format', 'jsonl', '--out', out)).code).toBe(EXIT.ok);
+    const other = join(dir, 'other.db');
+    const imp = await run('import', out, '--db', other);
+    expect(imp.code).toBe(EXIT.ok);
+    expect(imp.out).toContain(runIds[0]);
+    const a = openStore(db, { readonly: true });
+    const b = openStore(other, { readonly: true });
+    expect(b.windows(runIds[0]!)).toEqual(a.windows(runIds[0]!));
+    expect(b.resolveRun(runIds[0]!).name).toBe('alpha "quoted"\nrun');
+    a.close();
+    b.close();
+  });
+
+  it('rejects a missing --format', async () => {
+    expect((await run('export', 'beta', '--db', db)).code).toBe(EXIT.usage);
+  });
+});
+
+describe('tidemark delete and prune', () => {
+  it('deletes a run, and prunes runs started before a date', async () => {
+    const copy = join(dir, 'copy.db');
+    expect((await run('import', join(dir, 'alpha.jsonl'), '--db', copy)).code).toBe(EXIT.ok);
+    const del = await run('delete', runIds[0]!.slice(0, 6), '--db', copy);
+    expect(del.code).toBe(EXIT.ok);
+    expect(JSON.parse((await run('runs', '--db', copy, '--json')).out)).toEqual([]);
+    const none = await run('prune', '--before', '2000-01-01', '--db', db);
+    expect(none.out).toContain('Deleted 0 runs');
+    const all = await run('prune', '--before', new Date(Date.now() + 60_000).toISOString(), '--db', db);
+    expect(all.out).toContain('Deleted 2 runs');
+  });
+
+  it('reads dates and ages for --before', () => {
+    const now = Date.parse('2026-12-02T00:00:00Z');
+    expect(parseBefore('30d', now)).toBe(now - 30 * 86_400_000);
+    expect(parseBefore('2026-11-01', now)).toBe(Date.parse('2026-11-01'));
+    expect(() => parseBefore('last tuesday', now)).toThrow(/--before/);
+  });
+});
+
+describe('tidemark summary', () => {
+  it('summarises the runs of a JSON Lines store', async () => {
+    const r = await run('summary', jsonl);
+    expect(r.code).toBe(EXIT.ok);
+    expect(r.out).toContain('gamma');
     expect(r.out).toContain('finished, 4 windows');
-    expect(r.out).toContain('step 16, epoch 1');
     // K = 4 of M = 8 minibatches per epoch: floor sqrt((1 − K/M)/K) = 0.354, −9.0 dB (methods.md §1.4).
     expect(r.out).toContain('SNR floor -9.0 dB');
-    for (const layer of model.layers) expect(r.out).toContain(layer.name);
-    expect(r.out).toContain('(network)');
   });
+});
 
-  it('prints its version', () => {
+describe('tidemark binary', () => {
+  it('prints its version and exits 2 on an unknown command', () => {
+    const cli = (...args: string[]) => spawnSync(process.execPath, ['--import', 'tsx', 'src/cli/bin.ts', ...args], { encoding: 'utf8' });
     const pkg = JSON.parse(readFileSync('package.json', 'utf8')) as { version: string };
-    expect(cli('--version')).toMatchObject({ code: 0, out: `${pkg.version}\n` });
-  });
-
-  it('exits 2 on an unknown command and 1 on an unreadable file', () => {
+    expect(cli('--version')).toMatchObject({ status: 0, stdout: `${pkg.version}\n` });
     const bad = cli('frobnicate');
-    expect(bad.code).toBe(2);
-    expect(bad.err).toContain("Unknown command 'frobnicate'");
-    const missing = cli('summary', join(dir, 'nope.jsonl'));
-    expect(missing.code).toBe(1);
-    expect(missing.err).toContain('cannot read');
+    expect(bad.status).toBe(2);
+    expect(bad.stderr).toContain("unknown command 'frobnicate'");
   });
 });
