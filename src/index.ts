@@ -24,3 +24,17 @@ export { MemorySink } from './storage/memory-sink.js';
 export { JsonlSink, type JsonlSinkOptions } from './storage/jsonl-sink.js';
 export { encodeRecord, decodeRecord } from './storage/sink.js';
 export * as analysis from './analysis/index.js';
+export { openStore, type StoreOptions } from './storage/sqlite-store.js';
+export type {
+  Store,
+  RunRow,
+  RunDetail,
+  RunFilter,
+  SeriesQuery,
+  SeriesPoint,
+  SeriesKey,
+  SeriesScope,
+  StoredWarning,
+} from './storage/store.js';
+export { StoreSink, type StoreSinkOptions } from './storage/store-sink.js';
+export { exportRun, importJsonl, type ExportFormat } from './storage/export.js';

@@ -1,0 +1,32 @@
+import { describe, expect, it } from 'vitest';
+import * as api from '../src/index.js';
+
+describe('public API', () => {
+  it('exports exactly the documented names', () => {
+    expect(Object.keys(api).sort()).toEqual(
+      [
+        'ERROR_CODES',
+        'JsonlSink',
+        'MemorySink',
+        'StoreSink',
+        'TidemarkError',
+        'TidemarkRangeError',
+        'TidemarkTypeError',
+        'analysis',
+        'decodeRecord',
+        'defaultStore',
+        'encodeRecord',
+        'exportRun',
+        'importJsonl',
+        'monitor',
+        'openStore',
+      ].sort(),
+    );
+  });
+
+  it('offers the pure functions of design.md under analysis', () => {
+    for (const name of ['gradientStats', 'snrFloor', 'travelExponent', 'fitPowerLaw', 'lttb', 'ShiftedMoments']) {
+      expect(typeof (api.analysis as Record<string, unknown>)[name]).toBe('function');
+    }
+  });
+});
