@@ -6,3 +6,6 @@ export * from './power-law.js';
 export { studentTCdf, regularizedBeta } from './student-t.js';
 export * from './travel-exponent.js';
 export * from './lttb.js';
+export * from './cusum.js';
+export * from './phase-detector.js';
+export * from './stop-advice.js';
