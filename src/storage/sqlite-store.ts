@@ -42,7 +42,7 @@ export interface StoreOptions {
    * TIDEMARK_ERR_STORE_READONLY. Readers (CLI listings, the server) should use it. Default `false`.
    */
   readonly?: boolean;
-  /** A `running` run whose heartbeat is older than this many ms reads as `interrupted`. Default 30000. */
+  /** A `running` run whose heartbeat is older than this many ms (≥ 0) reads as `interrupted`. Default 30000. */
   staleAfterMs?: number;
   /** How long to wait for another connection's lock before failing, in ms. Default 5000. */
   busyTimeout?: number;
@@ -147,8 +147,9 @@ function resolveOptions(path: unknown, options: unknown): Required<StoreOptions>
   checkKeys('openStore', options, Object.keys(DEFAULTS));
   const o = { ...DEFAULTS, ...(options as StoreOptions) };
   if (typeof o.readonly !== 'boolean') throw invalidOption('openStore', 'readonly', 'true or false', o.readonly);
-  if (typeof o.staleAfterMs !== 'number' || !(o.staleAfterMs > 0)) {
-    throw invalidOption('openStore', 'staleAfterMs', 'a positive number of milliseconds', o.staleAfterMs);
+  // 0 is allowed: every running run then reads as interrupted (a check after the writers are known dead).
+  if (typeof o.staleAfterMs !== 'number' || !(o.staleAfterMs >= 0) || o.staleAfterMs === Infinity) {
+    throw invalidOption('openStore', 'staleAfterMs', 'a non-negative, finite number of milliseconds', o.staleAfterMs);
   }
   if (typeof o.busyTimeout !== 'number' || !Number.isInteger(o.busyTimeout) || o.busyTimeout < 0 || o.busyTimeout > 2 ** 31 - 1) {
     throw invalidOption('openStore', 'busyTimeout', 'a non-negative integer number of milliseconds', o.busyTimeout);
@@ -312,7 +313,12 @@ export class SqliteStore implements Store {
     this.inTransaction = (fn) => tx.immediate(fn);
     // A read of several statements (a run's windows) sees one snapshot, never a writer's later commit.
     this.inSnapshot = <T>(fn: () => T): T => tx.deferred(fn) as T;
-    this.prepareStatements();
+    try {
+      this.prepareStatements();
+    } catch (e) {
+      this.close();
+      throw wrap('TIDEMARK_ERR_STORE_OPEN', `openStore: could not read the schema of ${show(path)}`, e);
+    }
     if (!this.readonly) this.persistInterrupted();
   }
 

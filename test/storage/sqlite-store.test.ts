@@ -425,7 +425,7 @@ describe('SQLite store: bad input and faults', () => {
     s.close();
     expectCoded(() => s.runs(), TidemarkError, 'TIDEMARK_ERR_STORE_CLOSED', /was closed/);
     expectCoded(() => openStore(freshPath(), { readOnly: true } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /'readOnly'. Did you mean 'readonly'\?/);
-    expectCoded(() => openStore(freshPath(), { staleAfterMs: -1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'staleAfterMs' must be a positive number/);
+    expectCoded(() => openStore(freshPath(), { staleAfterMs: -1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'staleAfterMs' must be a non-negative, finite number/);
     expectCoded(() => openStore(''), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /path must be a non-empty string/);
   });
 
