@@ -9,7 +9,7 @@ import { resolve } from 'node:path';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import cliProgress from 'cli-progress';
-import { defaultStore, monitor, type LayerStats, type WindowRecord } from '../src/index.js';
+import { defaultStore, monitor, type LayerStats, type Marker, type WindowRecord } from '../src/index.js';
 import { buildGearboxModel, makeGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
@@ -83,7 +83,7 @@ function floorDb(w: WindowRecord): number {
 
 const COLUMNS = { layer: 14, snr: 8, noise: 12, travel: 9, exponent: 9 };
 
-function row(name: string, s: LayerStats, floor: number): string {
+function row(name: string, s: LayerStats, floor: number, phase: string): string {
   const nearFloor = Number.isFinite(floor) && s.grad_snr_db <= floor + NEAR_FLOOR_DB;
   return (
     `   ${name.padEnd(COLUMNS.layer)}` +
@@ -91,7 +91,8 @@ function row(name: string, s: LayerStats, floor: number): string {
     compact(s.noise_scale).padStart(COLUMNS.noise) +
     s.weight_travel.toFixed(3).padStart(COLUMNS.travel) +
     (s.travel_exponent === null ? '-' : s.travel_exponent.toFixed(2)).padStart(COLUMNS.exponent) +
-    (nearFloor ? '   near floor' : '')
+    `  ${phase.padEnd(12)}` +
+    (nearFloor ? ' near floor' : '')
   );
 }
 
@@ -104,7 +105,17 @@ function describeLogs(logs: Record<string, number>): string {
   return shown.join('  ');
 }
 
-function windowTable(w: WindowRecord, epochs: number): string {
+function describeMarker(m: Marker): string {
+  const where = m.layer ?? 'network';
+  if (m.kind === 'drift-start' || m.kind === 'diffusion-start') {
+    return `${where}: ${m.kind === 'drift-start' ? 'drift' : 'diffusion'} since about step ${m.step} (known at step ${m.detected_step}, confidence ${m.confidence.toFixed(2)})`;
+  }
+  if (m.kind === 'advice') return `advice changed to ${String(m.details.verdict)}`;
+  if (m.kind === 'stopped') return 'training stopped on the advice';
+  return `${where}: ${m.kind} at step ${m.step}`;
+}
+
+function windowTable(w: WindowRecord, epochs: number, phases: Record<string, string>, network: string): string {
   const floor = floorDb(w);
   const floorText = Number.isFinite(floor)
     ? `SNR floor ${signedDb(floor)} dB`
@@ -115,10 +126,10 @@ function windowTable(w: WindowRecord, epochs: number): string {
     `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  K ${w.batches}${m}  ${describeLogs(w.logs)}`,
     `   ${floorText}`,
     `   ${'layer'.padEnd(COLUMNS.layer)}${'SNR dB'.padStart(COLUMNS.snr)}${'noise scale'.padStart(COLUMNS.noise)}` +
-      `${'travel'.padStart(COLUMNS.travel)}${'exponent'.padStart(COLUMNS.exponent)}`,
+      `${'travel'.padStart(COLUMNS.travel)}${'exponent'.padStart(COLUMNS.exponent)}  phase`,
   ];
-  for (const [name, stats] of Object.entries(w.layers)) lines.push(row(name, stats, floor));
-  lines.push(row('(network)', w.network, floor));
+  for (const [name, stats] of Object.entries(w.layers)) lines.push(row(name, stats, floor, phases[name] ?? 'undetermined'));
+  lines.push(row('(network)', w.network, floor, network));
   return lines.join('\n');
 }
 
@@ -131,6 +142,7 @@ const LEGEND = [
   '  travel       distance of the weights from where they started',
   '  exponent     local slope of log travel against log step: near 1 while drifting, 1/2 for a',
   '               random walk, lower when the wandering is confined',
+  '  phase        drift or diffusion as the detector currently judges it (a statistical estimate)',
   '  near floor   within 3 dB of what pure noise would read for this window',
 ].join('\n');
 
@@ -198,8 +210,16 @@ say(
 
 // Where each layer's current run of windows below 0 dB began; a single early dip does not count.
 const belowZeroSince = new Map<string, WindowRecord | null>();
+let markersShown = 0;
 mon.onWindow((w) => {
-  say(`${windowTable(w, args.epochs)}\n`);
+  const phases = mon.phase();
+  const lines = [windowTable(w, args.epochs, phases.layers, phases.network)];
+  const markers = mon.markers();
+  for (const m of markers.slice(markersShown)) lines.push(`   ▸ ${describeMarker(m)}`);
+  markersShown = markers.length;
+  const advice = mon.advice();
+  if (advice !== null) lines.push(`   advice: ${advice.verdict}. ${advice.reason}`);
+  say(`${lines.join('\n')}\n`);
   for (const [name, s] of [...Object.entries(w.layers), ['(network)', w.network] as const]) {
     if (s.grad_snr_db >= 0) belowZeroSince.set(name, null);
     else if (!belowZeroSince.get(name)) belowZeroSince.set(name, w);

@@ -6,6 +6,7 @@
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
 import type { Accumulator, RawVariableWindow } from './accumulator.js';
 import type { ModelView } from './model-layers.js';
+import { benefitsFromBuffers, readValues } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
 
 type Values = ArrayLike<number>;
@@ -40,6 +41,8 @@ export class JsAccumulator implements Accumulator {
   /** Gradients read but not yet folded in: one entry per step, indexed by variable. */
   private queued: (Values | null)[][] = [];
   private readonly beforeWeights: (Values | null)[];
+  /** Per block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
+  private readonly buffers: (Float32Array[] | null)[];
   private updateSq: Float64Array;
   private updateWeightSq: Float64Array;
   private sampled = false;
@@ -53,6 +56,10 @@ export class JsAccumulator implements Accumulator {
     this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
     this.nonfinite = new Float64Array(n);
     this.beforeWeights = new Array<Values | null>(n).fill(null);
+    const useBuffers = benefitsFromBuffers();
+    this.buffers = Array.from({ length: BLOCK }, () =>
+      useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
+    );
     this.updateSq = new Float64Array(n);
     this.updateWeightSq = new Float64Array(n);
   }
@@ -66,10 +73,11 @@ export class JsAccumulator implements Accumulator {
     // Tensors never change after creation, so holding the array until the block is folded is safe:
     // cpu hands out its (never reused) buffer, wasm and tensorflow a copy.
     const step = new Array<Values | null>(this.view.variables.length).fill(null);
+    const slot = this.buffers[this.queued.length] ?? null;
     for (const [name, tensor] of grads) {
       if (tensor === null) continue;
       const v = byName.get(name);
-      if (v !== undefined) step[v.index] = tensor.dataSync() as Values;
+      if (v !== undefined) step[v.index] = readValues(tensor, slot?.[v.index] ?? null);
     }
     this.queued.push(step);
     this.steps++;

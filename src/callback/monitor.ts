@@ -7,6 +7,8 @@ import { randomUUID } from 'node:crypto';
 import * as tf from '@tensorflow/tfjs';
 import { snrFloor } from '../analysis/gradient-stats.js';
 import { travelExponent } from '../analysis/travel-exponent.js';
+import { PhaseDetector } from '../analysis/phase-detector.js';
+import { StopAdvisor, type Advice } from '../analysis/stop-advice.js';
 import { describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
   LayerStats,
@@ -41,6 +43,9 @@ const TRAVEL_HISTORY = 512;
 export interface PhaseState {
   network: Phase;
   layers: Record<string, Phase>;
+  /** Estimated step at which each layer's current phase began; null while undetermined. */
+  since: Record<string, number | null>;
+  networkSince: number | null;
 }
 
 /** The plain callback object fit and fitDataset accept. */
@@ -65,8 +70,10 @@ export interface Monitor {
   onWindow(fn: (window: WindowRecord) => void): () => void;
   /** The windows so far (the most recent 10000). */
   windows(): readonly WindowRecord[];
-  /** The current phase of the network and of each layer ('undetermined' until phase detection lands). */
+  /** The current phase of the network and of each layer. */
   phase(): PhaseState;
+  /** The latest stop advice (a statistical estimate; confirm on held-out data), or null before the first window. */
+  advice(): Advice | null;
   markers(): readonly Marker[];
   /** Problems the monitor absorbed, once per kind. */
   warnings(): readonly MonitorWarning[];
@@ -124,12 +131,19 @@ class MonitorSession implements Monitor {
   private sizeCount = 0;
   private epochLogs: Record<string, number> = {};
   private sampleThisStep = false;
+  private readonly detector: PhaseDetector;
+  private readonly advisor: StopAdvisor;
+  private lastAdvice: Advice | null = null;
+  private readonly model: { stopTraining: boolean };
   /** Minibatches of the open window per epoch touched. */
   private passBatches: number[] = [];
   private passOpen = false;
 
-  constructor(opts: ResolvedOptions, view: ModelView, runId: string) {
+  constructor(opts: ResolvedOptions, view: ModelView, runId: string, model: { stopTraining: boolean }) {
     this.opts = opts;
+    this.model = model;
+    this.detector = new PhaseDetector(opts.phases);
+    this.advisor = new StopAdvisor(opts.advice);
     this.view = view;
     this.runId = runId;
     this.name = opts.run;
@@ -314,6 +328,7 @@ class MonitorSession implements Monitor {
     this.windowList.push(record);
     if (this.windowList.length > MAX_WINDOWS_IN_MEMORY) this.windowList.shift();
     this.write({ type: 'window', window: record });
+    this.judge(record);
     for (const fn of this.listeners) {
       try {
         fn(record);
@@ -323,6 +338,38 @@ class MonitorSession implements Monitor {
     }
     const sink = this.sink;
     if (sink !== null) sink.flush().catch((e) => this.report('TIDEMARK_ERR_SINK_WRITE', e));
+  }
+
+  /** Phase changes become markers as they are found; the advice is a marker when its verdict changes. */
+  private judge(record: WindowRecord): void {
+    for (const c of this.detector.update(record)) this.addMarker({ run: this.runId, ...c, details: { ...c.details, source: 'online' } });
+    const advice = this.advisor.update(record, this.detector.snapshot());
+    const previous = this.lastAdvice;
+    this.lastAdvice = advice;
+    if (previous?.verdict !== advice.verdict && !(previous === null && advice.verdict === 'continue')) {
+      this.addMarker({
+        run: this.runId,
+        layer: null,
+        kind: 'advice',
+        step: record.step,
+        detected_step: record.step,
+        confidence: 1,
+        details: { verdict: advice.verdict, reason: advice.reason, watched: advice.watched, best: advice.best, source: 'online' },
+      });
+    }
+    if (advice.verdict === 'stop' && this.opts.advice.act && this.inFit && !this.model.stopTraining) {
+      // fit checks stopTraining after each batch; this window's epoch end still runs.
+      this.model.stopTraining = true;
+      this.addMarker({
+        run: this.runId,
+        layer: null,
+        kind: 'stopped',
+        step: record.step,
+        detected_step: record.step,
+        confidence: 1,
+        details: { reason: advice.reason, by: 'advice.act' },
+      });
+    }
   }
 
   private exponent(key: string, step: number, travel: number): number | null {
@@ -412,9 +459,18 @@ class MonitorSession implements Monitor {
   }
 
   phase(): PhaseState {
+    const snap = this.detector.snapshot();
     const layers: Record<string, Phase> = {};
-    for (const l of this.view.layers) layers[l.name] = 'undetermined';
-    return { network: 'undetermined', layers };
+    const since: Record<string, number | null> = {};
+    for (const l of this.view.layers) {
+      layers[l.name] = snap.layers[l.name] ?? 'undetermined';
+      since[l.name] = snap.since[l.name] ?? null;
+    }
+    return { network: snap.network, layers, since, networkSince: snap.networkSince };
+  }
+
+  advice(): Advice | null {
+    return this.lastAdvice;
   }
 
   markers(): readonly Marker[] {
@@ -460,7 +516,7 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
   const opts = resolveOptions(options);
   const view = viewModel(model);
   const runId = randomUUID();
-  const session = new MonitorSession(opts, view, runId);
+  const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean });
   const run: RunInfo = {
     id: runId,
     name: opts.run,

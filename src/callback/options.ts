@@ -3,6 +3,8 @@
  * misspelt names throw with a hint, so a typo never silently turns a feature off.
  */
 import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../errors.js';
+import { ADVICE_DEFAULTS, type AdviceOptions } from '../analysis/stop-advice.js';
+import { PHASE_DEFAULTS, type PhaseOptions } from '../analysis/phase-detector.js';
 import type { Sink } from '../storage/sink.js';
 
 export type WindowSetting = 'auto' | 'epoch' | number;
@@ -36,6 +38,13 @@ export interface MonitorOptions {
   strict?: boolean;
   /** Told about each absorbed problem. Default: one console warning per kind of problem. */
   onWarning?: (warning: MonitorWarning) => void;
+  /**
+   * Stop advice. `act: true` lets a `stop` verdict end fit (model.stopTraining); default false, the
+   * advice is only reported. The other fields tune the policy (see the README for the defaults).
+   */
+  advice?: AdviceOptions & { act?: boolean };
+  /** Settings of the drift/diffusion detector (see the README for the defaults). */
+  phases?: PhaseOptions;
 }
 
 export interface ResolvedOptions {
@@ -48,6 +57,8 @@ export interface ResolvedOptions {
   readonly tags: Readonly<Record<string, string>>;
   readonly strict: boolean;
   readonly onWarning: ((warning: MonitorWarning) => void) | null;
+  readonly advice: Readonly<AdviceOptions & { act: boolean }>;
+  readonly phases: Readonly<PhaseOptions>;
 }
 
 const KNOWN = [
@@ -60,13 +71,14 @@ const KNOWN = [
   'tags',
   'strict',
   'onWarning',
+  'advice',
+  'phases',
 ] as const;
 
 /** In design.md's contract, built in later versions. */
 const NOT_YET: Record<string, string> = {
   probe: 'layer information estimates (probe) are not available in this version',
   serve: 'the in-process server (serve) is not available in this version',
-  advice: 'stop advice (advice) is not available in this version',
 };
 
 /** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
@@ -110,6 +122,33 @@ function invalid(name: string, expected: string, got: unknown): TidemarkTypeErro
     'TIDEMARK_ERR_OPTION_INVALID',
     `Option '${name}' must be ${expected}; received ${shown}.`,
   );
+}
+
+function numeric(defaults: Readonly<Record<string, number>>): Record<string, 'number'> {
+  return Object.fromEntries(Object.keys(defaults).map((k) => [k, 'number' as const]));
+}
+
+/** Validates a nested options object against the names and types it may hold. */
+function nestedOptions(
+  name: string,
+  value: unknown,
+  schema: Record<string, 'number' | 'boolean' | 'string'>,
+): Record<string, unknown> {
+  if (value === undefined) return {};
+  if (value === null || typeof value !== 'object' || Array.isArray(value)) throw invalid(name, 'an object', value);
+  const out: Record<string, unknown> = {};
+  for (const [k, v] of Object.entries(value as Record<string, unknown>)) {
+    const type = schema[k];
+    if (type === undefined) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_UNKNOWN',
+        `Unknown option '${name}.${k}'. Known: ${Object.keys(schema).join(', ')}.`,
+      );
+    }
+    if (typeof v !== type || (type === 'number' && !Number.isFinite(v))) throw invalid(`${name}.${k}`, `a ${type}`, v);
+    out[k] = v;
+  }
+  return out;
 }
 
 function isSink(value: unknown): value is Sink {
@@ -202,7 +241,12 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const onWarning = o.onWarning ?? null;
   if (onWarning !== null && typeof onWarning !== 'function') throw invalid('onWarning', 'a function', onWarning);
 
+  const advice = nestedOptions('advice', o.advice, { act: 'boolean', watch: 'string', ...numeric(ADVICE_DEFAULTS) });
+  const phases = nestedOptions('phases', o.phases, numeric(PHASE_DEFAULTS));
+
   return Object.freeze({
+    advice: Object.freeze({ act: false, ...advice }) as ResolvedOptions['advice'],
+    phases: Object.freeze(phases) as PhaseOptions,
     run,
     store: store as string | Sink,
     window: window as WindowSetting,

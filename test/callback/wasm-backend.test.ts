@@ -7,6 +7,7 @@ import { createRequire } from 'node:module';
 import { dirname, join } from 'node:path';
 import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { beforeAll, describe, expect, it } from 'vitest';
+import { readValues } from '../../src/callback/host-read.js';
 import { monitor } from '../../src/index.js';
 import { blobTensors, denseModel, tf, weightsOf } from '../helpers/tf.js';
 
@@ -18,6 +19,15 @@ beforeAll(async () => {
 });
 
 describe('monitor on the wasm backend', () => {
+  it('copies gradient values into a reused buffer, equal to dataSync', () => {
+    const t = tf.randomNormal([37, 5]);
+    const buf = new Float32Array(t.size);
+    const got = readValues(t, buf);
+    expect(got).toBe(buf);
+    expect(Array.from(buf)).toEqual(Array.from(t.dataSync()));
+    t.dispose();
+  });
+
   it('chooses the JavaScript accumulator and leaves training bit-identical', async () => {
     expect(tf.getBackend()).toBe('wasm');
     const plain = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 8 });
