@@ -38,7 +38,11 @@ export interface PhaseOptions {
   floorClampDb?: number;
   /** Travel exponents above this corroborate drift, below it diffusion (confidence only). Default 0.75. */
   exponentSplit?: number;
-  /** Share of the trainable parameters whose layers must agree for the network to change phase. Default 0.5. */
+  /**
+   * The network is in diffusion once layers holding at least this share of the trainable parameters
+   * are, and in drift while layers holding more than the rest drift. Default 1: the network diffuses
+   * when every layer does and drifts while any layer drifts (0.5 gives a parameter-weighted majority).
+   */
   networkShare?: number;
 }
 
@@ -52,7 +56,7 @@ export const PHASE_DEFAULTS: Readonly<Required<PhaseOptions>> = Object.freeze({
   minNoiseDb: 0.5,
   floorClampDb: -15,
   exponentSplit: 0.75,
-  networkShare: 0.5,
+  networkShare: 1,
 });
 
 /** The per-layer numbers the detector reads from a window. */
@@ -247,9 +251,12 @@ export class PhaseDetector {
     }
     if (total === 0) return null;
     const share = this.o.networkShare;
+    // Diffusion needs `share` of the parameters; drift needs more than what is left over.
+    const enough = (phase: PhaseName, w: number): boolean =>
+      phase === 'diffusion' ? w / total >= share - 1e-12 : w / total > 1 - share + 1e-12;
     let next: PhaseName = this.network;
-    if (weight.drift / total > share) next = 'drift';
-    else if (weight.diffusion / total > share) next = 'diffusion';
+    if (this.network !== 'drift' && enough('drift', weight.drift)) next = 'drift';
+    else if (this.network !== 'diffusion' && enough('diffusion', weight.diffusion)) next = 'diffusion';
     if (next === this.network || next === 'undetermined') return null;
     // Place the network's change where the layer that tipped the balance changed; name the first one.
     const inPhase = [...this.tracks.entries()].filter(([, t]) => t.phase === next && t.since !== null);
@@ -258,7 +265,7 @@ export class PhaseDetector {
     let tipping = inPhase[inPhase.length - 1]!;
     for (const entry of inPhase) {
       acc += entry[1].params;
-      if (acc / total > share) {
+      if (enough(next, acc)) {
         tipping = entry;
         break;
       }
@@ -275,7 +282,10 @@ export class PhaseDetector {
       detected_step: w.step,
       confidence: confidences.length > 0 ? Math.max(...confidences) : 0.6,
       details: {
-        rule: `more than ${Math.round(share * 100)}% of the trainable parameters in layers that are in ${next}`,
+        rule:
+          next === 'diffusion'
+            ? `at least ${Math.round(share * 100)}% of the trainable parameters in layers that diffuse`
+            : `more than ${Math.round((1 - share) * 100)}% of the trainable parameters in layers that drift`,
         share: weight[next] / total,
         first_layer: inPhase[0]?.[0] ?? null,
         first_step: inPhase[0]?.[1].since ?? null,

@@ -10,6 +10,7 @@ import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
+import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 
 export const EXIT = { ok: 0, failed: 1, usage: 2, notFound: 3 } as const;
@@ -156,6 +157,33 @@ function renderSummary(s: RunSummary): string {
   return `${head}\n  step ${w.step}, epoch ${w.epoch ?? '—'}, SNR floor ${floor}\n${table(rows, '  ')}`;
 }
 
+function renderAnalysis(run: RunDetail, r: AnalyzeResult, written: boolean): string {
+  const out = [`${printable(run.name, 200)} (${run.id}): ${r.windows} windows re-analysed`];
+  const rows = [['change', 'layer', 'step', 'known at', 'confidence', 'online']];
+  for (const c of r.changes) {
+    const m = r.matched.find((x) => x.offline === c);
+    const online =
+      m === undefined
+        ? 'new'
+        : m.stepShift === 0 && m.online.detected_step === c.detected_step
+          ? 'same'
+          : `step ${m.online.step}, known at ${m.online.detected_step}`;
+    rows.push([c.kind, c.layer === null ? '(network)' : printable(c.layer, 40), String(c.step), String(c.detected_step), fmt(c.confidence, 2), online]);
+  }
+  out.push('', r.changes.length === 0 ? '  no phase changes found' : table(rows, '  '));
+  if (r.missing.length > 0) {
+    out.push('', '  online markers not found with these settings:');
+    for (const m of r.missing) out.push(`    ${m.kind} ${m.layer === null ? '(network)' : printable(m.layer, 40)} at step ${m.step}`);
+  }
+  if (r.added.length === 0 && r.missing.length === 0 && r.matched.every((m) => m.stepShift === 0)) {
+    out.push('', '  Same phase changes as recorded online.');
+  }
+  if (r.advice !== null) out.push('', `  advice at the last window: ${r.advice.verdict}. ${r.advice.reason}`);
+  out.push('', written ? '  Offline markers written (marked source: offline; the online ones stay).' : '  Nothing written (use --write to store these markers).');
+  out.push('', CAUTION);
+  return out.join('\n');
+}
+
 function parseTag(value: string, previous: Record<string, string> = {}): Record<string, string> {
   const i = value.indexOf('=');
   if (i <= 0) throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `--tag takes key=value; received '${value}'.`);
@@ -267,6 +295,59 @@ export function buildProgram(io: Io): Command {
       const before = parseBefore(o.before);
       const ids = withStore(db(), false, (s) => s.prune(before));
       io.out(`Deleted ${ids.length} run${ids.length === 1 ? '' : 's'} started before ${fmtTime(before)}.\n`);
+    });
+
+  const num = (flag: string) => (v: string) => {
+    const n = Number(v);
+    if (!Number.isFinite(n)) throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `${flag} takes a number; received '${v}'.`);
+    return n;
+  };
+  program
+    .command('analyze')
+    .description('recompute phases, markers and advice from the stored windows with other settings')
+    .argument('<run>', 'run id, unique id prefix, or name')
+    .option('--boundary-db <dB>', 'drift/diffusion boundary of the floor-corrected SNR (default 0)', num('--boundary-db'))
+    .option('--k <sigma>', 'CUSUM allowance in noise units (default 0.5)', num('--k'))
+    .option('--h <sigma>', 'CUSUM decision interval in noise units (default 4)', num('--h'))
+    .option('--clip <sigma>', 'clip standardised inputs at ±clip (default 2.5)', num('--clip'))
+    .option('--noise-db <dB>', 'assumed SNR noise before an estimate exists (default 1.5)', num('--noise-db'))
+    .option('--network-share <share>', 'share of parameters in diffusion for the network to diffuse (default 1)', num('--network-share'))
+    .option('--patience <windows>', 'windows without improvement before may-stop (default 10)', num('--patience'))
+    .option('--min-improvement <relative>', 'relative improvement that counts (default 0.001)', num('--min-improvement'))
+    .option('--diffusion-ratio <ratio>', 'diffusion length, in drift lengths, before may-stop (default 1)', num('--diffusion-ratio'))
+    .option('--watch <metric>', 'logged quantity the advice watches (default val_loss, else loss)')
+    .option('--write', 'store the offline markers next to the online ones (marked as offline)')
+    .option('--json', 'machine-readable output')
+    .action((ref: string, o: Record<string, number | string | boolean | undefined>) => {
+      const phases = Object.fromEntries(
+        (
+          [
+            ['boundaryDb', o.boundaryDb],
+            ['k', o.k],
+            ['h', o.h],
+            ['clip', o.clip],
+            ['noiseDb', o.noiseDb],
+            ['networkShare', o.networkShare],
+          ] as const
+        ).filter(([, v]) => v !== undefined),
+      );
+      const advice = Object.fromEntries(
+        (
+          [
+            ['patience', o.patience],
+            ['minRelativeImprovement', o.minImprovement],
+            ['diffusionRatio', o.diffusionRatio],
+            ['watch', o.watch],
+          ] as const
+        ).filter(([, v]) => v !== undefined),
+      );
+      withStore(db(), !o.write, (s) => {
+        const run = s.resolveRun(ref);
+        const result = analyzeRun(s, run.id, phases, advice);
+        if (o.write) s.append(offlineMarkers(result, { phases, advice }).map((marker) => ({ type: 'marker' as const, marker })));
+        if (o.json) io.out(`${JSON.stringify({ ...result, caution: CAUTION }, null, 2)}\n`);
+        else io.out(`${renderAnalysis(run, result, Boolean(o.write))}\n`);
+      });
     });
 
   program

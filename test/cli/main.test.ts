@@ -160,3 +160,43 @@ describe('tidemark binary', () => {
     expect(bad.stderr).toContain("unknown command 'frobnicate'");
   });
 });
+
+describe('tidemark analyze', () => {
+  it('reproduces the online markers with the same settings, and writes offline ones only with --write', async () => {
+    const file = join(dir, 'analyze.db');
+    const { xs, ys } = blobTensors(256, 4, 2);
+    const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
+    const mon = await monitor(model, { store: file, run: 'to-analyze', window: 4 });
+    await model.fit(xs, ys, { epochs: 12, batchSize: 16, verbose: 0, callbacks: [mon.callback] });
+    await mon.close();
+    tf.dispose([xs, ys]);
+    const online = mon.markers().filter((m) => m.kind === 'drift-start' || m.kind === 'diffusion-start');
+    expect(online.length).toBeGreaterThan(0);
+
+    const same = await run('analyze', 'to-analyze', '--db', file, '--json');
+    expect(same.code).toBe(EXIT.ok);
+    const r = JSON.parse(same.out) as { added: unknown[]; missing: unknown[]; matched: { stepShift: number }[] };
+    expect(r.added).toEqual([]);
+    expect(r.missing).toEqual([]);
+    expect(r.matched.length).toBe(online.length);
+    expect(r.matched.every((m) => m.stepShift === 0)).toBe(true);
+
+    const text = await run('analyze', 'to-analyze', '--db', file, '--h', '8');
+    expect(text.code).toBe(EXIT.ok);
+    expect(text.out).toContain('re-analysed');
+    expect(text.out).toContain('Nothing written');
+    const before = openStore(file, { readonly: true });
+    const count = before.markers(mon.runId).length;
+    before.close();
+
+    const write = await run('analyze', 'to-analyze', '--db', file, '--h', '8', '--write');
+    expect(write.out).toContain('Offline markers written');
+    const after = openStore(file, { readonly: true });
+    const stored = after.markers(mon.runId);
+    after.close();
+    expect(stored.length).toBeGreaterThan(count);
+    // The online markers stay as they were; the offline ones come in addition.
+    expect(stored.filter((m) => m.details.source !== 'offline').length).toBe(count);
+    expect(stored.some((m) => m.details.source === 'offline')).toBe(true);
+  });
+});
