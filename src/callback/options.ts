@@ -2,6 +2,7 @@
  * monitor() options: one defaults table, validated and frozen before training starts. Unknown or
  * misspelt names throw with a hint, so a typo never silently turns a feature off.
  */
+import { closestName } from '../option-hints.js';
 import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../errors.js';
 import { ADVICE_DEFAULTS, type AdviceOptions } from '../analysis/stop-advice.js';
 import { PHASE_DEFAULTS, type PhaseOptions } from '../analysis/phase-detector.js';
@@ -87,32 +88,8 @@ export function defaultStore(): string {
   return env !== undefined && env !== '' ? env : 'tidemark.db';
 }
 
-function editDistance(a: string, b: string): number {
-  const x = a.toLowerCase();
-  const y = b.toLowerCase();
-  const prev = Array.from({ length: y.length + 1 }, (_, j) => j);
-  for (let i = 1; i <= x.length; i++) {
-    let diag = prev[0]!;
-    prev[0] = i;
-    for (let j = 1; j <= y.length; j++) {
-      const tmp = prev[j]!;
-      prev[j] = Math.min(prev[j]! + 1, prev[j - 1]! + 1, diag + (x[i - 1] === y[j - 1] ? 0 : 1));
-      diag = tmp;
-    }
-  }
-  return prev[y.length]!;
-}
-
 function hint(name: string): string {
-  let best: string | null = null;
-  let bestD = 3;
-  for (const k of KNOWN) {
-    const d = editDistance(name, k);
-    if (d < bestD) {
-      bestD = d;
-      best = k;
-    }
-  }
+  const best = closestName(name, KNOWN);
   return best === null ? `Known options: ${KNOWN.join(', ')}.` : `Did you mean '${best}'?`;
 }
 

@@ -6,6 +6,7 @@
  * Every SQLite failure is rethrown as a coded TidemarkError with the original as `cause`: SQLite's
  * own messages can quote SQL and never reach users as they are.
  */
+import { closestName } from '../option-hints.js';
 import { mkdirSync } from 'node:fs';
 import { dirname } from 'node:path';
 import Database from 'better-sqlite3';
@@ -91,37 +92,10 @@ function num(x: number | null): number {
 // ---------------------------------------------------------------------------------------------
 // Validation of options and arguments
 
-function closest(name: string, known: readonly string[]): string | null {
-  let best: string | null = null;
-  let bestD = 3;
-  for (const k of known) {
-    const d = editDistance(name.toLowerCase(), k.toLowerCase());
-    if (d < bestD) {
-      bestD = d;
-      best = k;
-    }
-  }
-  return best;
-}
-
-function editDistance(a: string, b: string): number {
-  const row = Array.from({ length: b.length + 1 }, (_, j) => j);
-  for (let i = 1; i <= a.length; i++) {
-    let prev = row[0]!;
-    row[0] = i;
-    for (let j = 1; j <= b.length; j++) {
-      const cur = row[j]!;
-      row[j] = Math.min(row[j]! + 1, row[j - 1]! + 1, prev + (a[i - 1] === b[j - 1] ? 0 : 1));
-      prev = cur;
-    }
-  }
-  return row[b.length]!;
-}
-
 function checkKeys(where: string, given: object, known: readonly string[]): void {
   for (const key of Object.keys(given)) {
     if (known.includes(key)) continue;
-    const hint = closest(key, known);
+    const hint = closestName(key, known);
     throw new TidemarkTypeError(
       'TIDEMARK_ERR_OPTION_UNKNOWN',
       `${where}: unknown option '${key}'.${hint === null ? '' : ` Did you mean '${hint}'?`} Known options: ${known.join(', ')}.`,
