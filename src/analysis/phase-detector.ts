@@ -10,10 +10,11 @@
  * boundary, standardised by a robust running estimate of its window-to-window noise and clipped
  * against outliers. A signal below marks `diffusion-start`, one above marks `drift-start`; after a
  * signal only the opposite side is watched (hysteresis), so a phase does not flicker. The change is
- * placed after the last window where that side's sum was zero, i.e. where the level crossed the
- * boundary, not where the detector became sure. The travel exponent only adjusts the confidence:
- * faster growth of the distance can come from a larger learning rate in diffusion (methods.md §1.4),
- * so it never marks drift by itself.
+ * placed where the level crossed the boundary, not where the detector became sure: at the peak of the
+ * running sum of the standardised inputs since the previous change (the CUSUM without allowance),
+ * interpolated in log-step between the two windows around it. The travel exponent only adjusts the
+ * confidence: faster growth of the distance can come from a larger learning rate in diffusion
+ * (methods.md §1.4), so it never marks drift by itself.
  */
 import { Cusum } from './cusum.js';
 
@@ -96,30 +97,50 @@ export interface PhaseSnapshot {
   networkSince: number | null;
 }
 
+/** Windows of history kept per layer (at least): the noise estimate and the search for where a change began. */
+const HISTORY = 64;
+
 interface LayerTrack {
   cusum: Cusum;
   phase: PhaseName;
   since: number | null;
-  /** first_step, mid-step and level of each window seen, by input index, to place changes. */
-  firstSteps: number[];
-  centers: number[];
-  history: number[];
-  /** The recent levels, for the noise estimate. */
-  levels: number[];
+  /** Ring buffers over the last `cap` windows with a finite level, indexed by input index mod `cap`. */
+  firstSteps: Float64Array;
+  centers: Float64Array;
+  levels: Float64Array;
+  /** Standardised, clipped inputs that went into the CUSUM. */
+  zs: Float64Array;
+  /** The last `noiseWindows` absolute successive differences of the level: in arrival order (ring) and sorted. */
+  diffRing: Float64Array;
+  diffSorted: Float64Array;
+  /** Windows with a finite level seen. */
+  n: number;
+  /** Input index of the window at which the current phase was detected (−1 before any). */
+  changedAt: number;
   params: number;
 }
 
-function median(values: number[]): number {
-  const s = values.slice().sort((a, b) => a - b);
-  const m = s.length >> 1;
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
+/** Inserts v into the sorted first n entries of a (which has room for n + 1). */
+function insertSorted(a: Float64Array, n: number, v: number): void {
+  let j = n - 1;
+  while (j >= 0 && a[j]! > v) {
+    a[j + 1] = a[j]!;
+    j--;
+  }
+  a[j + 1] = v;
+}
+
+/** Removes one entry equal to v from the sorted first n entries of a. */
+function removeSorted(a: Float64Array, n: number, v: number): void {
+  let j = 0;
+  while (j < n - 1 && a[j] !== v) j++;
+  for (; j < n - 1; j++) a[j] = a[j + 1]!;
 }
 
 /** Floor-corrected SNR level of one layer in dB, clamped below. */
-export function correctedSnrDb(snr: number, floor: number, clampDb: number): number {
+export function correctedSnrDb(snr: number, floor: number, clampDb: number, lowest = 10 ** (clampDb / 10)): number {
   if (!Number.isFinite(snr)) return Number.NaN;
   const c2 = snr * snr - floor * floor;
-  const lowest = 10 ** (clampDb / 10);
   return 10 * Math.log10(Math.max(c2, lowest));
 }
 
@@ -128,9 +149,17 @@ export class PhaseDetector {
   private readonly tracks = new Map<string, LayerTrack>();
   private network: PhaseName = 'undetermined';
   private networkSince: number | null = null;
+  /** Floor-corrected squared SNR below which levels are clamped: 10^(floorClampDb/10). */
+  private readonly lowestSq: number;
+  /** Successive differences in the noise estimate, and the length of each layer's ring buffers. */
+  private readonly noiseWindows: number;
+  private readonly cap: number;
 
   constructor(options: PhaseOptions = {}) {
     this.o = { ...PHASE_DEFAULTS, ...options };
+    this.noiseWindows = Math.max(1, Math.floor(this.o.noiseWindows) || 1);
+    this.cap = Math.max(HISTORY, this.noiseWindows + 1);
+    this.lowestSq = 10 ** (this.o.floorClampDb / 10);
   }
 
   get options(): Readonly<Required<PhaseOptions>> {
@@ -143,48 +172,50 @@ export class PhaseDetector {
     const changes: PhaseChange[] = [];
     // The window's floor is sqrt(f/K); a layer that lost minibatches to NaN has its own K.
     const fOverK = w.snr_floor * w.snr_floor;
-    for (const [name, l] of Object.entries(w.layers)) {
+    const center = (w.first_step + w.step) / 2;
+    const cap = this.cap;
+    for (const name of Object.keys(w.layers)) {
+      const l = w.layers[name]!;
       let t = this.tracks.get(name);
       if (t === undefined) {
         t = {
           cusum: new Cusum({ k: o.k, h: o.h }),
           phase: 'undetermined',
           since: null,
-          firstSteps: [],
-          centers: [],
-          history: [],
-          levels: [],
+          firstSteps: new Float64Array(this.cap),
+          centers: new Float64Array(this.cap),
+          levels: new Float64Array(this.cap),
+          zs: new Float64Array(this.cap),
+          diffRing: new Float64Array(this.noiseWindows),
+          diffSorted: new Float64Array(this.noiseWindows + 1),
+          n: 0,
+          changedAt: -1,
           params: l.params,
         };
         this.tracks.set(name, t);
       }
       const floor = l.batches > 0 ? Math.sqrt((fOverK * w.batches) / l.batches) : Number.NaN;
-      const level = correctedSnrDb(l.grad_snr, floor, o.floorClampDb);
+      const level = correctedSnrDb(l.grad_snr, floor, o.floorClampDb, this.lowestSq);
       if (!Number.isFinite(level)) continue; // a window with no clean minibatches says nothing
-      t.levels.push(level);
-      t.firstSteps.push(w.first_step);
-      t.centers.push((w.first_step + w.step) / 2);
-      t.history.push(level);
-      if (t.levels.length > o.noiseWindows + 1) t.levels.shift();
-      const noise = this.noise(t.levels);
+      const i = t.n++;
+      const slot = i % cap;
+      t.firstSteps[slot] = w.first_step;
+      t.centers[slot] = center;
+      t.levels[slot] = level;
+      const noise = this.noise(t, i);
       const z = Math.max(-o.clip, Math.min(o.clip, (level - o.boundaryDb) / noise));
+      t.zs[slot] = z;
       const signal = t.cusum.push(z);
       const s = t.cusum.state;
       let kind: PhaseChange['kind'] | null = null;
-      let zeroAt = -1;
-      if (signal === 'down' && t.phase !== 'diffusion') {
-        kind = 'diffusion-start';
-        zeroAt = s.lowerZeroAt;
-      } else if (signal === 'up' && t.phase !== 'drift') {
-        kind = 'drift-start';
-        zeroAt = s.upperZeroAt;
-      }
+      if (signal === 'down' && t.phase !== 'diffusion') kind = 'diffusion-start';
+      else if (signal === 'up' && t.phase !== 'drift') kind = 'drift-start';
       if (kind === null) {
         // Hysteresis: the side that agrees with the current phase carries no news; keep it at 0.
         if (signal !== null) t.cusum.resetSide(signal);
         continue;
       }
-      const step = this.placeChange(t, Math.min(zeroAt + 1, t.firstSteps.length - 1));
+      const step = Math.min(this.placeChange(t, kind), w.step);
       const exponent = l.travel_exponent;
       const corroborated =
         exponent === null ? null : kind === 'diffusion-start' ? exponent < o.exponentSplit : exponent > o.exponentSplit;
@@ -193,7 +224,7 @@ export class PhaseDetector {
       changes.push({
         layer: name,
         kind,
-        step: Math.min(step, w.step),
+        step,
         detected_step: w.step,
         confidence,
         details: {
@@ -206,7 +237,8 @@ export class PhaseDetector {
         },
       });
       t.phase = kind === 'drift-start' ? 'drift' : 'diffusion';
-      t.since = Math.min(step, w.step);
+      t.since = step;
+      t.changedAt = i;
       t.cusum.reset();
     }
     const net = this.networkChange(w, changes);
@@ -215,31 +247,64 @@ export class PhaseDetector {
   }
 
   /**
-   * Where the level crossed the boundary: interpolated in log-step between the centres of the last
-   * window on the old side and the first on the new side; else the first step of the window where the
-   * CUSUM began to accumulate.
+   * Where the level crossed the boundary. Over the windows since the previous change (at most the 64 kept),
+   * the old phase ends at the window where the running sum of the standardised inputs, signed towards the
+   * old phase, peaks: the CUSUM with no allowance. Its peak is the maximum-likelihood change point when the
+   * mean moves between two values symmetric about the boundary (Hinkley 1970, from memory), so the change
+   * sits at the crossing itself, not where the level had fallen k noise units past it, as the last zero of
+   * the detecting sum would place it (that put changes late by up to 10 % of t* on slow slides). The step
+   * is interpolated in log-step between the centres of that window and the next, whose inputs straddle 0
+   * there; a phase that holds from the first window seen starts at its first step.
    */
-  private placeChange(t: LayerTrack, index: number): number {
-    const b = this.o.boundaryDb;
-    const prev = index - 1;
-    const fallback = t.firstSteps[index]!;
-    if (prev < 0) return fallback;
-    const l0 = t.history[prev]!;
-    const l1 = t.history[index]!;
-    if ((l0 - b) * (l1 - b) > 0 || l0 === l1) return fallback;
-    const c0 = Math.log(t.centers[prev]!);
-    const c1 = Math.log(t.centers[index]!);
-    const c = c0 + ((l0 - b) / (l0 - l1)) * (c1 - c0);
-    return Math.round(Math.exp(c));
+  private placeChange(t: LayerTrack, kind: PhaseChange['kind']): number {
+    const cap = this.cap;
+    const last = t.n - 1;
+    const start = Math.max(t.changedAt + 1, t.n - cap);
+    const sign = kind === 'diffusion-start' ? 1 : -1;
+    let acc = 0;
+    let best = 0;
+    let split = start - 1; // last window on the old side
+    for (let i = start; i <= last; i++) {
+      acc += sign * t.zs[i % cap]!;
+      if (acc > best) {
+        best = acc;
+        split = i;
+      }
+    }
+    const next = Math.min(split + 1, last);
+    const fallback = t.firstSteps[next % cap]!;
+    if (split < start || split >= last) return fallback;
+    const z0 = sign * t.zs[split % cap]!;
+    const z1 = sign * t.zs[next % cap]!;
+    if (!(z0 - z1 > 0)) return fallback;
+    const c0 = Math.log(t.centers[split % cap]!);
+    const c1 = Math.log(t.centers[next % cap]!);
+    return Math.round(Math.exp(c0 + (z0 / (z0 - z1)) * (c1 - c0)));
   }
 
-  private noise(levels: number[]): number {
+  /**
+   * Robust noise of the level: 1.4826·median|Δ|/√2 over the last `noiseWindows` successive differences
+   * (the MAD of differences estimates the level's own standard deviation); `noiseDb` until there are 5.
+   */
+  private noise(t: LayerTrack, i: number): number {
     const o = this.o;
-    if (levels.length < 6) return o.noiseDb;
-    const diffs: number[] = [];
-    for (let i = 1; i < levels.length; i++) diffs.push(Math.abs(levels[i]! - levels[i - 1]!));
-    // MAD of differences: 1.4826·median|Δ|/√2 estimates the level's own standard deviation.
-    return Math.max(o.minNoiseDb, (1.4826 * median(diffs)) / Math.SQRT2);
+    const cap = this.cap;
+    const w = this.noiseWindows;
+    if (i > 0) {
+      const d = Math.abs(t.levels[i % cap]! - t.levels[(i - 1) % cap]!);
+      const seen = i - 1; // differences before this one
+      const have = Math.min(seen, w);
+      const slot = seen % w;
+      if (seen >= w) removeSorted(t.diffSorted, have, t.diffRing[slot]!);
+      insertSorted(t.diffSorted, seen >= w ? have - 1 : have, d);
+      t.diffRing[slot] = d;
+    }
+    const n = Math.min(i, w);
+    if (n < 5) return o.noiseDb;
+    const a = t.diffSorted;
+    const m = n >> 1;
+    const med = n % 2 === 1 ? a[m]! : (a[m - 1]! + a[m]!) / 2;
+    return Math.max(o.minNoiseDb, (1.4826 * med) / Math.SQRT2);
   }
 
   private networkChange(w: PhaseInput, layerChanges: PhaseChange[]): PhaseChange | null {

@@ -19,7 +19,7 @@ export interface AdviceOptions {
   minRelativeImprovement?: number;
   /** Diffusion must have lasted this many times the drift for `may-stop` (twice that for `stop`). Default 1. */
   diffusionRatio?: number;
-  /** The logged quantity to watch; default `val_loss` when present, else `loss`. */
+  /** The logged quantity to watch; default `val_loss` once it has been logged, else `loss`. */
   watch?: string;
 }
 
@@ -53,14 +53,34 @@ export class StopAdvisor {
     this.o = { ...ADVICE_DEFAULTS, watch: null, ...options } as StopAdvisor['o'];
   }
 
+  /**
+   * Forgets the best value and the count of windows without improvement, e.g. when a new fit starts:
+   * the user chose to train on, perhaps on new data, so the patience starts over.
+   */
+  restart(): void {
+    this.best = null;
+    this.stale = 0;
+  }
+
   update(w: AdviceInput, phase: PhaseSnapshot): Advice {
-    const watch = this.o.watch ?? (w.logs.val_loss !== undefined ? 'val_loss' : w.logs.loss !== undefined ? 'loss' : null);
+    // val_loss arrives only in windows where an epoch ended: once it has been seen it stays the watched
+    // quantity, and windows without it neither improve nor age it.
+    const watch =
+      this.o.watch ??
+      (w.logs.val_loss !== undefined || this.watched === 'val_loss' ? 'val_loss' : w.logs.loss !== undefined ? 'loss' : this.watched);
     if (watch !== this.watched) {
       // Switching to val_loss once validation appears restarts the count.
       this.watched = watch;
       this.best = null;
       this.stale = 0;
     }
+    // A new drift (new data, a new task) starts the clock again, and the old best no longer applies.
+    if (phase.network === 'drift' && this.lastNetwork !== 'drift') {
+      this.driftStart = phase.networkSince ?? 0;
+      this.best = null;
+      this.stale = 0;
+    }
+    this.lastNetwork = phase.network;
     const value = watch === null ? undefined : w.logs[watch];
     if (value !== undefined && Number.isFinite(value)) {
       if (this.best === null || value < this.best - this.o.minRelativeImprovement * Math.abs(this.best)) {
@@ -68,9 +88,6 @@ export class StopAdvisor {
         this.stale = 0;
       } else this.stale++;
     }
-    // A new drift (new data, a new task) starts the clock again.
-    if (phase.network === 'drift' && this.lastNetwork !== 'drift') this.driftStart = phase.networkSince ?? 0;
-    this.lastNetwork = phase.network;
     const base = { step: w.step, watched: watch, best: this.best, stale_windows: this.stale };
     const net: PhaseName = phase.network;
     if (net !== 'diffusion' || phase.networkSince === null) {

@@ -159,6 +159,8 @@ class MonitorSession implements Monitor {
       onTrainBegin: async () => {
         if (this.closed) return;
         this.inFit = true;
+        // A new fit after the advice said stop is a decision to train on: the patience starts over.
+        this.advisor.restart();
       },
       onTrainEnd: async () => {
         if (this.closed) return;
