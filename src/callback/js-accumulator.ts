@@ -43,6 +43,8 @@ export class JsAccumulator implements Accumulator {
   private readonly beforeWeights: (Values | null)[];
   /** Per block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
   private readonly buffers: (Float32Array[] | null)[];
+  /** Reusable copies of the weights before and after a sampled step, and at a window's end (wasm). */
+  private readonly weightBuffers: { before: Float32Array[]; after: Float32Array[] } | null;
   private updateSq: Float64Array;
   private updateWeightSq: Float64Array;
   private sampled = false;
@@ -60,6 +62,9 @@ export class JsAccumulator implements Accumulator {
     this.buffers = Array.from({ length: BLOCK }, () =>
       useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
     );
+    this.weightBuffers = useBuffers
+      ? { before: view.variables.map((v) => new Float32Array(v.size)), after: view.variables.map((v) => new Float32Array(v.size)) }
+      : null;
     this.updateSq = new Float64Array(n);
     this.updateWeightSq = new Float64Array(n);
   }
@@ -83,7 +88,9 @@ export class JsAccumulator implements Accumulator {
     this.steps++;
     if (this.queued.length >= BLOCK) this.fold();
     if (sample) {
-      for (const v of this.view.variables) this.beforeWeights[v.index] = v.variable.dataSync() as Values;
+      for (const v of this.view.variables) {
+        this.beforeWeights[v.index] = readValues(v.variable, this.weightBuffers?.before[v.index] ?? null);
+      }
     }
   }
 
@@ -128,7 +135,7 @@ export class JsAccumulator implements Accumulator {
     for (const v of this.view.variables) {
       const before = this.beforeWeights[v.index];
       if (before == null) continue;
-      const now = v.variable.dataSync() as Values;
+      const now = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
       this.updateSq[v.index] = diffSq(now, before);
       this.updateWeightSq[v.index] = sumSq(now);
       this.beforeWeights[v.index] = null;
@@ -140,7 +147,7 @@ export class JsAccumulator implements Accumulator {
     this.fold();
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
-      const w = v.variable.dataSync() as Values;
+      const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
       return {
         count: m.count,
         meanSquaredNorm: m.meanSquaredNorm(),
