@@ -19,16 +19,9 @@ import { StopAdvisor } from '../src/analysis/stop-advice.js';
 import type { PhaseInput } from '../src/analysis/phase-detector.js';
 import { logUniform, snrSeries, spreadDrop, type LayerSpec } from '../test/helpers/snr-series.js';
 import { mulberry32 } from '../test/helpers/random.js';
+import { BATCH, buildReferenceModel, CLASSES, DATA_SEED, FEATURES, SAMPLES } from './reference-model.js';
 import { teacherData } from './seeded-data.js';
 
-const FEATURES = 32;
-const HIDDEN = [64, 128, 64, 32] as const;
-const CLASSES = 4;
-const SAMPLES = 4096;
-const BATCH = 32;
-const LR = 0.05;
-const DATA_SEED = 20_240_601;
-const MODEL_SEED = 7;
 const TARGET = 0.01;
 const WINDOWS = 300;
 
@@ -47,29 +40,6 @@ function median(xs: number[]): number {
 // ---------------------------------------------------------------------------------------------
 // One training step of the reference model
 
-function buildModel(): tf.Sequential {
-  const model = tf.sequential();
-  HIDDEN.forEach((units, i) => {
-    model.add(
-      tf.layers.dense({
-        units,
-        activation: 'tanh',
-        kernelInitializer: tf.initializers.glorotUniform({ seed: MODEL_SEED + i }),
-        ...(i === 0 ? { inputShape: [FEATURES] } : {}),
-      }),
-    );
-  });
-  model.add(
-    tf.layers.dense({
-      units: CLASSES,
-      activation: 'softmax',
-      kernelInitializer: tf.initializers.glorotUniform({ seed: MODEL_SEED + HIDDEN.length }),
-    }),
-  );
-  model.compile({ optimizer: tf.train.sgd(LR), loss: 'categoricalCrossentropy' });
-  return model;
-}
-
 /** Median ms per trainOnBatch over STEPS steps after WARMUP steps, per round; returns the per-round medians. */
 async function stepTimes(): Promise<number[]> {
   const data = teacherData(SAMPLES, FEATURES, CLASSES, DATA_SEED);
@@ -80,7 +50,7 @@ async function stepTimes(): Promise<number[]> {
   const ys = Array.from({ length: perBatch }, (_, b) => y.slice([b * BATCH, 0], [BATCH, CLASSES]));
   const rounds: number[] = [];
   for (let r = 0; r < ROUNDS; r++) {
-    const model = buildModel();
+    const model = buildReferenceModel();
     const times: number[] = [];
     for (let s = 0; s < WARMUP + STEPS; s++) {
       const b = s % perBatch;

@@ -22,20 +22,14 @@ import { viewModel, type ModelView, type TrackedVariable } from '../src/callback
 import { monitor, type Monitor, type MonitorCallback } from '../src/callback/monitor.js';
 import { installTap, type GradientPair } from '../src/callback/optimizer-tap.js';
 import { TensorAccumulator } from '../src/callback/tensor-accumulator.js';
+import { BATCH, buildReferenceModel, CLASSES, DATA_SEED, FEATURES, HIDDEN, LR, MODEL_SEED, SAMPLES } from './reference-model.js';
+import { printTable, progress } from './report.js';
 import { normal, teacherData, xorshift32 } from './seeded-data.js';
 
 // ---------------------------------------------------------------------------------------------
 // Settings
 
-const FEATURES = 32;
-const HIDDEN = [64, 128, 64, 32] as const;
-const CLASSES = 4;
-const SAMPLES = 4096;
-const BATCH = 32;
 const STEPS_PER_EPOCH = SAMPLES / BATCH;
-const LR = 0.05;
-const DATA_SEED = 20_240_601;
-const MODEL_SEED = 7;
 /** The overhead target, as a fraction of an unmonitored step. */
 const TARGET = 0.03;
 /** Minibatch gradients the recompute design draws per window. */
@@ -140,21 +134,6 @@ function mark(fraction: number): string {
   return fraction <= TARGET ? 'PASS' : 'OVER';
 }
 
-function printTable(title: string, head: string[], rows: string[][], notes: string[] = []): void {
-  const widths = head.map((h, i) => Math.max(h.length, ...rows.map((r) => (r[i] ?? '').length)));
-  const line = (cells: string[]): string =>
-    cells.map((c, i) => (i === 0 ? c.padEnd(widths[i]!) : c.padStart(widths[i]!))).join('  ');
-  console.log(`\n${title}`);
-  console.log(line(head));
-  console.log(widths.map((w) => '-'.repeat(w)).join('  '));
-  for (const r of rows) console.log(line(r));
-  for (const n of notes) console.log(`  ${n}`);
-}
-
-function progress(message: string): void {
-  process.stderr.write(`  … ${message}\n`);
-}
-
 // ---------------------------------------------------------------------------------------------
 // The reference model and its data
 
@@ -164,27 +143,8 @@ interface Reference {
 }
 
 function buildModel(seed: number): Reference {
-  const model = tf.sequential();
-  HIDDEN.forEach((units, i) => {
-    model.add(
-      tf.layers.dense({
-        units,
-        activation: 'tanh',
-        kernelInitializer: tf.initializers.glorotUniform({ seed: seed + i }),
-        ...(i === 0 ? { inputShape: [FEATURES] } : {}),
-      }),
-    );
-  });
-  model.add(
-    tf.layers.dense({
-      units: CLASSES,
-      activation: 'softmax',
-      kernelInitializer: tf.initializers.glorotUniform({ seed: seed + HIDDEN.length }),
-    }),
-  );
-  const optimizer = tf.train.sgd(LR);
-  model.compile({ optimizer, loss: 'categoricalCrossentropy' });
-  return { model, optimizer };
+  const model = buildReferenceModel(seed);
+  return { model, optimizer: model.optimizer };
 }
 
 function disposeModel(ref: Reference): void {

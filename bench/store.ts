@@ -23,6 +23,7 @@ import { parseArgs } from 'node:util';
 import Database from 'better-sqlite3';
 import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
 import { openStore } from '../src/storage/sqlite-store.js';
+import { printTable, progress } from './report.js';
 import { xorshift32 } from './seeded-data.js';
 
 const USAGE = `usage: tsx bench/store.ts [--quick]
@@ -92,20 +93,6 @@ function timeMedian(f: () => void, reps: number, warm = 2): number {
 const fmtInt = (x: number): string => Math.round(x).toLocaleString('en-US');
 const fmtMs = (x: number): string => (x < 10 ? x.toFixed(2) : x.toFixed(1));
 const fmtRatio = (x: number): string => x.toFixed(2);
-
-function printTable(title: string, head: string[], rows: string[][], notes: string[] = []): void {
-  const widths = head.map((h, i) => Math.max(h.length, ...rows.map((r) => r[i]!.length)));
-  const line = (cells: string[]): string => cells.map((c, i) => (i === 0 ? c.padEnd(widths[i]!) : c.padStart(widths[i]!))).join('  ');
-  console.log(`\n${title}`);
-  console.log(line(head));
-  console.log(widths.map((w) => '-'.repeat(w)).join('  '));
-  for (const r of rows) console.log(line(r));
-  for (const n of notes) console.log(`  ${n}`);
-}
-
-function progress(message: string): void {
-  process.stderr.write(`  … ${message}\n`);
-}
 
 /** Size of a database after a checkpoint folds the WAL into it. */
 function fileSize(db: Database.Database, path: string): number {
