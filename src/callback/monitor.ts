@@ -506,6 +506,14 @@ class MonitorSession implements Monitor {
       } catch (e) {
         this.report('TIDEMARK_ERR_SINK_WRITE', e);
       }
+      if (sink.dropped > 0) {
+        // Reported even when an earlier write failure was: the count is what the user needs.
+        this.warningCounts.delete('TIDEMARK_ERR_SINK_WRITE');
+        this.report(
+          'TIDEMARK_ERR_SINK_WRITE',
+          `${sink.dropped} records could not be stored and were dropped (the store kept refusing writes); mon.windows() still has the most recent windows.`,
+        );
+      }
     }
   }
 }

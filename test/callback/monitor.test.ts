@@ -329,3 +329,27 @@ describe('monitor records', () => {
     tf.dispose([xs, ys]);
   });
 });
+
+describe('monitor with a store that keeps refusing writes', () => {
+  it('reports how many records it dropped when it closes', async () => {
+    const refusing: Sink = {
+      dropped: 7,
+      open: async () => {},
+      write: () => {},
+      flush: async () => {
+        throw new Error('database is locked');
+      },
+      close: async () => {},
+    };
+    const model = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
+    const { xs, ys } = blobTensors(64, 4, 2);
+    const c = collect();
+    const mon = await monitor(model, { store: refusing, window: 4, onWarning: c.onWarning });
+    await model.fit(xs, ys, { epochs: 1, batchSize: 8, verbose: 0, callbacks: [mon.callback] });
+    await mon.close();
+    expect(c.warnings.map((w) => w.code)).toEqual(['TIDEMARK_ERR_SINK_WRITE', 'TIDEMARK_ERR_SINK_WRITE']);
+    expect(c.warnings[0]!.message).toContain('database is locked');
+    expect(c.warnings[1]!.message).toContain('7 records could not be stored');
+    tf.dispose([xs, ys]);
+  });
+});
