@@ -9,3 +9,7 @@ export * from './lttb.js';
 export * from './cusum.js';
 export * from './phase-detector.js';
 export * from './stop-advice.js';
+export * from './entropy.js';
+export * from './binned-information.js';
+export * from './pairwise-information.js';
+export * from './label-bins.js';
