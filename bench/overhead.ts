@@ -312,8 +312,8 @@ function pairsOf(list: { name: string; tensor: tf.Tensor }[]): GradientPair[] {
   return list.map((g) => [g.name, g.tensor] as const);
 }
 
-async function isolated(kind: 'auto' | 'tensor', x: tf.Tensor, y: tf.Tensor, s: Settings): Promise<Isolated> {
-  gc?.();
+/** A fresh reference model and the gradients of its first minibatch, as applyGradients receives them. */
+function firstBatchGradients(x: tf.Tensor, y: tf.Tensor): { ref: Reference; list: { name: string; tensor: tf.Tensor }[] } {
   const ref = buildModel(MODEL_SEED);
   const vars = trainableVariables(ref.model);
   const grads = tf.tidy(() => {
@@ -321,7 +321,12 @@ async function isolated(kind: 'auto' | 'tensor', x: tf.Tensor, y: tf.Tensor, s: 
     const yb = y.slice([0, 0], [BATCH, CLASSES]);
     return tf.variableGrads(() => batchLoss(ref.model, xb, yb), vars).grads;
   });
-  const list = vars.map((v) => ({ name: v.name, tensor: grads[v.name]! }));
+  return { ref, list: vars.map((v) => ({ name: v.name, tensor: grads[v.name]! })) };
+}
+
+async function isolated(kind: 'auto' | 'tensor', x: tf.Tensor, y: tf.Tensor, s: Settings): Promise<Isolated> {
+  gc?.();
+  const { ref, list } = firstBatchGradients(x, y);
   const opt = ref.optimizer as unknown as { applyGradients: ApplyGradients };
   const original = opt.applyGradients;
   const mon = await monitor(ref.model, { store: 'memory', window: 'auto', accumulator: kind });
@@ -345,7 +350,7 @@ async function isolated(kind: 'auto' | 'tensor', x: tf.Tensor, y: tf.Tensor, s: 
     if (r >= 3) accClose.push(now() - t0);
   }
   acc.dispose();
-  tf.dispose(grads);
+  tf.dispose(list.map((g) => g.tensor));
   disposeModel(ref);
   return { tapDiff, accClose };
 }
@@ -389,14 +394,7 @@ function timeMedian(f: () => void, reps: number, warm = 20): number {
 /** Where the js tap's time goes, on one minibatch's gradients of the reference model (median ms per step). */
 function tapBreakdown(x: tf.Tensor, y: tf.Tensor, s: Settings): [string, number][] {
   gc?.();
-  const ref = buildModel(MODEL_SEED);
-  const vars = trainableVariables(ref.model);
-  const grads = tf.tidy(() => {
-    const xb = x.slice([0, 0], [BATCH, FEATURES]);
-    const yb = y.slice([0, 0], [BATCH, CLASSES]);
-    return tf.variableGrads(() => batchLoss(ref.model, xb, yb), vars).grads;
-  });
-  const list = vars.map((v) => ({ name: v.name, tensor: grads[v.name]! }));
+  const { ref, list } = firstBatchGradients(x, y);
   const tensors = list.map((g) => g.tensor);
   const reps = s.tapReps;
   const out: [string, number][] = [];
@@ -446,7 +444,7 @@ function tapBreakdown(x: tf.Tensor, y: tf.Tensor, s: Settings): [string, number]
     }, Math.max(20, reps >> 2)),
   ]);
   tens.dispose();
-  tf.dispose(grads);
+  tf.dispose(list.map((g) => g.tensor));
   disposeModel(ref);
   return out;
 }

@@ -23,6 +23,9 @@
  *
  * Nothing here imports tfjs, so the generator runs anywhere; `toTensors` takes the caller's tfjs module.
  */
+import { mulberry32 } from '../src/analysis/random.js';
+
+export { mulberry32 };
 import type * as tfjs from '@tensorflow/tfjs';
 
 /** Class names in label order. */
@@ -54,18 +57,6 @@ export interface GearboxData {
   classNames: string[];
   /** A short name per band, e.g. `order 13` or `orders 64-96`. */
   bandNames: string[];
-}
-
-/** Small, fast 32-bit PRNG (mulberry32); returns floats in [0, 1). */
-export function mulberry32(seed: number): () => number {
-  let a = seed >>> 0;
-  return () => {
-    a = (a + 0x6d2b79f5) >>> 0;
-    let t = a;
-    t = Math.imul(t ^ (t >>> 15), t | 1);
-    t ^= t + Math.imul(t ^ (t >>> 7), t | 61);
-    return ((t ^ (t >>> 14)) >>> 0) / 4294967296;
-  };
 }
 
 function normalFrom(rand: () => number): () => number {

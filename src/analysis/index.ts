@@ -13,3 +13,4 @@ export * from './entropy.js';
 export * from './binned-information.js';
 export * from './pairwise-information.js';
 export * from './label-bins.js';
+export * from './random.js';

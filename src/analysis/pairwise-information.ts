@@ -14,6 +14,7 @@
  * log-sum-exp shift already, so the sums never underflow to 0 and the logs never see 0.
  */
 
+import { mulberry32 } from './random.js';
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
 import { checkActivations, checkOptionNames, SATURATION_MARGIN_BITS } from './binned-information.js';
 import { LN2 } from './entropy.js';
@@ -61,18 +62,6 @@ export interface PairwiseInformation {
   subsampled: boolean;
   noise_variance: number;
   estimator: 'pairwise-kolchinsky-tracey';
-}
-
-/** mulberry32, a small 32-bit-state generator (Tommy Ettinger, public domain; from memory). */
-function mulberry32(seed: number): () => number {
-  let a = seed >>> 0;
-  return () => {
-    a = (a + 0x6d2b79f5) >>> 0;
-    let t = a;
-    t = Math.imul(t ^ (t >>> 15), t | 1);
-    t ^= t + Math.imul(t ^ (t >>> 7), t | 61);
-    return ((t ^ (t >>> 14)) >>> 0) / 4294967296;
-  };
 }
 
 /** `k` of the indices `items`, uniformly without replacement (partial Fisher–Yates), returned sorted. */

@@ -1,22 +1,12 @@
 /**
  * Small seeded pseudo-random helpers for tests. Deterministic across runs and platforms.
  *
- * mulberry32: a 32-bit-state generator by Tommy Ettinger (public domain) [memory];
+ * mulberry32 is the library's own (src/analysis/random.ts), re-exported here;
  * gaussian: the Box–Muller transform (Box & Muller 1958, "A note on the generation of random
  * normal deviates", Ann. Math. Statist. 29(2)) [memory].
  */
 
-/** Returns a function yielding uniform numbers in [0, 1) from a 32-bit seed. */
-export function mulberry32(seed: number): () => number {
-  let a = seed >>> 0;
-  return () => {
-    a = (a + 0x6d2b79f5) >>> 0;
-    let t = a;
-    t = Math.imul(t ^ (t >>> 15), t | 1);
-    t ^= t + Math.imul(t ^ (t >>> 7), t | 61);
-    return ((t ^ (t >>> 14)) >>> 0) / 4294967296;
-  };
-}
+export { mulberry32 } from '../../src/analysis/random.js';
 
 /** One standard normal draw from two uniforms (Box–Muller; the second deviate is discarded for simplicity). */
 export function gaussian(rng: () => number): number {
