@@ -250,6 +250,8 @@ interface RunSeriesIds {
 
 /** Window fields that read as run-level series, served from the windows table. */
 const WINDOW_SERIES = ['snr_floor', 'epoch', 'batch_size'] as const;
+/** Layer and network statistics a record carries as null (not yet estimable) rather than leaving out. */
+const NULLABLE_METRICS: ReadonlySet<string> = new Set(['noise_scale', 'travel_exponent']);
 type WindowSeries = (typeof WINDOW_SERIES)[number];
 
 const RUN_COLUMNS =
@@ -993,11 +995,12 @@ export class SqliteStore implements Store {
         values.set(s.id, m);
       }
       const has = (ids: number[], step: number): boolean => ids.some((id) => values.get(id)!.has(step));
+      // Only the statistics that can be null in a record come back as null; a missing probe value stays absent.
       const fill = (target: Record<string, number | null>, list: SeriesDbRow[], step: number, nullable: boolean): void => {
         for (const s of list) {
           const v = values.get(s.id)!.get(step);
           if (v !== undefined) target[s.metric] = v;
-          else if (nullable) target[s.metric] = null;
+          else if (nullable && NULLABLE_METRICS.has(s.metric)) target[s.metric] = null;
         }
       };
       const network = series.filter((s) => s.scope === 'network');

@@ -318,10 +318,15 @@ describe('monitor records', () => {
     const model = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
     const { xs, ys } = blobTensors(64, 4, 2);
     const mon = await monitor(model, { store: file, window: 4, group: 'g1', tags: { seed: '3' } });
-    await model.fit(xs, ys, { epochs: 2, batchSize: 8, verbose: 0, callbacks: [mon.callback] });
+    // fit shuffles with Math.random: turn it off so the run, and any phase markers it earns, are repeatable.
+    await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
     const records: SinkRecord[] = readFileSync(file, 'utf8').trim().split('\n').map(decodeRecord);
-    expect(records.map((r) => r.type)).toEqual(['run', 'window', 'window', 'window', 'window', 'end']);
+    // The phase detector's markers go out right after the window that revealed them.
+    expect(records.map((r) => r.type)).toEqual(['run', 'window', 'window', 'window', 'marker', 'marker', 'marker', 'window', 'end']);
+    const markers = records.filter((r) => r.type === 'marker').map((r) => r.marker);
+    expect(markers).toEqual(mon.markers());
+    for (const m of markers) expect(m.detected_step).toBe((records[3] as Extract<SinkRecord, { type: 'window' }>).window.step);
     expect(records[0]).toMatchObject({ run: { group: 'g1', tags: { seed: '3' }, layers: [{ params: 30 }, { params: 14 }] } });
     const w = records[1] as Extract<SinkRecord, { type: 'window' }>;
     expect(w.window).toEqual(mon.windows()[0]);

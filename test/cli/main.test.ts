@@ -33,7 +33,7 @@ beforeAll(async () => {
   ] as const) {
     const model = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
     const mon = await monitor(model, { store, run: name, window: 4, group, tags: { seed: name.slice(0, 1) } });
-    await model.fit(xs, ys, { epochs: 2, batchSize: 8, verbose: 0, callbacks: [mon.callback] });
+    await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
     runIds.push(mon.runId);
   }
@@ -167,7 +167,7 @@ describe('tidemark analyze', () => {
     const { xs, ys } = blobTensors(256, 4, 2);
     const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
     const mon = await monitor(model, { store: file, run: 'to-analyze', window: 4 });
-    await model.fit(xs, ys, { epochs: 12, batchSize: 16, verbose: 0, callbacks: [mon.callback] });
+    await model.fit(xs, ys, { epochs: 12, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
     tf.dispose([xs, ys]);
     const online = mon.markers().filter((m) => m.kind === 'drift-start' || m.kind === 'diffusion-start');
