@@ -14,3 +14,4 @@ export * from './binned-information.js';
 export * from './pairwise-information.js';
 export * from './label-bins.js';
 export * from './random.js';
+export * from './compression-detector.js';

@@ -9,6 +9,7 @@ import { snrFloor } from '../analysis/gradient-stats.js';
 import { travelExponent } from '../analysis/travel-exponent.js';
 import { PhaseDetector } from '../analysis/phase-detector.js';
 import { StopAdvisor, type Advice } from '../analysis/stop-advice.js';
+import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
 import { describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
   LayerStats,
@@ -29,6 +30,7 @@ import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
 import { installTap, type GradientPair } from './optimizer-tap.js';
 import { resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
+import { Probe, probeFailure, type ProbeResult } from './probe.js';
 import { TensorAccumulator } from './tensor-accumulator.js';
 import { pooledStats, variableStats, type WindowContext } from './window-stats.js';
 import { MIN_WINDOW, WindowSchedule } from './window-schedule.js';
@@ -135,13 +137,16 @@ class MonitorSession implements Monitor {
   private readonly advisor: StopAdvisor;
   private lastAdvice: Advice | null = null;
   private readonly model: { stopTraining: boolean };
+  private readonly probe: Probe | null;
+  private readonly compression = new CompressionDetector();
   /** Minibatches of the open window per epoch touched. */
   private passBatches: number[] = [];
   private passOpen = false;
 
-  constructor(opts: ResolvedOptions, view: ModelView, runId: string, model: { stopTraining: boolean }) {
+  constructor(opts: ResolvedOptions, view: ModelView, runId: string, model: { stopTraining: boolean }, probe: Probe | null) {
     this.opts = opts;
     this.model = model;
+    this.probe = probe;
     this.detector = new PhaseDetector(opts.phases);
     this.advisor = new StopAdvisor(opts.advice);
     this.view = view;
@@ -289,7 +294,11 @@ class MonitorSession implements Monitor {
     } catch (e) {
       raw = Promise.reject(e);
     }
-    const done = this.chain.then(async () => this.finishWindow(await raw, meta));
+    const done = this.chain.then(async () => {
+      const values = await raw;
+      const probed = this.probe !== null && this.probe.due(meta.index) ? await this.runProbe() : null;
+      this.finishWindow(values, meta, probed);
+    });
     // The chain itself never rejects, so one failed window does not block the next.
     this.chain = done.catch((e) => {
       if (!this.opts.strict) this.report('TIDEMARK_ERR_STATISTIC', e);
@@ -300,6 +309,7 @@ class MonitorSession implements Monitor {
   private finishWindow(
     raw: RawVariableWindow[],
     meta: Omit<WindowRecord, 'run' | 'snr_floor' | 'time' | 'layers' | 'network'>,
+    probed: ProbeResult | null,
   ): void {
     const ctx: WindowContext = {
       batchSize: meta.batch_size,
@@ -314,7 +324,12 @@ class MonitorSession implements Monitor {
       const variables: Record<string, VariableStats> = {};
       for (const v of layer.variables) variables[v.name] = variableStats(raw[v.index]!, v.size, ctx);
       const stats = pooledStats(parts, ctx);
-      layers[layer.name] = { ...stats, travel_exponent: this.exponent(layer.name, meta.step, stats.weight_travel), variables };
+      layers[layer.name] = {
+        ...stats,
+        travel_exponent: this.exponent(layer.name, meta.step, stats.weight_travel),
+        ...probed?.layers[layer.name],
+        variables,
+      };
       this.noteNonfinite(layer.name, stats.nonfinite, meta.first_step, meta.step);
     }
     const net = pooledStats(all, ctx);
@@ -331,6 +346,7 @@ class MonitorSession implements Monitor {
     if (this.windowList.length > MAX_WINDOWS_IN_MEMORY) this.windowList.shift();
     this.write({ type: 'window', window: record });
     this.judge(record);
+    if (probed !== null) this.watchCompression(record.step, probed);
     for (const fn of this.listeners) {
       try {
         fn(record);
@@ -370,6 +386,42 @@ class MonitorSession implements Monitor {
         detected_step: record.step,
         confidence: 1,
         details: { reason: advice.reason, by: 'advice.act' },
+      });
+    }
+  }
+
+  /** Runs the probe between windows; a failure leaves the window without probe values, never breaks fit. */
+  private async runProbe(): Promise<ProbeResult | null> {
+    try {
+      const result = await (this.probe as Probe).measure();
+      const dropped = Object.entries(result.dropped);
+      if (dropped.length > 0) {
+        this.report(
+          'TIDEMARK_ERR_PROBE',
+          `NaN or infinite activations on the probe set (${dropped.map(([l, n]) => `${l}: ${n} rows`).join(', ')}); those rows are left out of the layer's estimates (see probe_rows).`,
+        );
+      }
+      return result;
+    } catch (e) {
+      this.fail('TIDEMARK_ERR_PROBE', probeFailure(e));
+      return null;
+    }
+  }
+
+  /** A sustained fall of a layer's binned I(X;T) becomes a compression-start marker. */
+  private watchCompression(step: number, probed: ProbeResult): void {
+    const values: Record<string, number | null> = {};
+    for (const [layer, v] of Object.entries(probed.layers)) values[layer] = v.mi_input;
+    const bins = (this.probe as Probe).options.bins;
+    for (const e of this.compression.push(step, values) as CompressionEvent[]) {
+      this.addMarker({
+        run: this.runId,
+        layer: e.layer,
+        kind: 'compression-start',
+        step: e.step,
+        detected_step: e.detected_step,
+        confidence: e.confidence,
+        details: { ...e.details, estimator: 'binned-plugin', bins, source: 'online' },
       });
     }
   }
@@ -498,6 +550,7 @@ class MonitorSession implements Monitor {
     const status = this.inFit ? 'failed' : 'finished';
     this.write({ type: 'end', run: this.runId, status, step: this.step, time: Date.now() });
     this.acc.dispose();
+    this.probe?.dispose();
     const sink = this.sink;
     this.sink = null;
     if (sink !== null) {
@@ -526,7 +579,9 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
   const opts = resolveOptions(options);
   const view = viewModel(model);
   const runId = randomUUID();
-  const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean });
+  // Built before anything starts, so a probe that does not fit the model is an error here, not in fit.
+  const probe = opts.probe === null ? null : new Probe(model, view, opts.probe);
+  const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean }, probe);
   const run: RunInfo = {
     id: runId,
     name: opts.run,
@@ -538,6 +593,7 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
       batch_size: opts.batchSize,
       accumulator: session.accumulator,
       backend: tf.getBackend(),
+      probe: probe?.describe() ?? null,
     },
     layers: layerInfo(view),
   };

@@ -7,6 +7,7 @@ import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../e
 import { ADVICE_DEFAULTS, type AdviceOptions } from '../analysis/stop-advice.js';
 import { PHASE_DEFAULTS, type PhaseOptions } from '../analysis/phase-detector.js';
 import type { Sink } from '../storage/sink.js';
+import { resolveProbeOptions, type ProbeOptions, type ResolvedProbeOptions } from './probe.js';
 
 export type WindowSetting = 'auto' | 'epoch' | number;
 export type AccumulatorKind = 'auto' | 'js' | 'tensor';
@@ -46,6 +47,11 @@ export interface MonitorOptions {
   advice?: AdviceOptions & { act?: boolean };
   /** Settings of the drift/diffusion detector (see the README for the defaults). */
   phases?: PhaseOptions;
+  /**
+   * Activation probe: per-layer activation health and information estimates on a fixed probe set
+   * `{ x, y }`, every `every` windows (default 5). Default: off. See {@link ProbeOptions}.
+   */
+  probe?: ProbeOptions;
 }
 
 export interface ResolvedOptions {
@@ -60,6 +66,7 @@ export interface ResolvedOptions {
   readonly onWarning: ((warning: MonitorWarning) => void) | null;
   readonly advice: Readonly<AdviceOptions & { act: boolean }>;
   readonly phases: Readonly<PhaseOptions>;
+  readonly probe: ResolvedProbeOptions | null;
 }
 
 const KNOWN = [
@@ -74,11 +81,11 @@ const KNOWN = [
   'onWarning',
   'advice',
   'phases',
+  'probe',
 ] as const;
 
 /** In design.md's contract, built in later versions. */
 const NOT_YET: Record<string, string> = {
-  probe: 'layer information estimates (probe) are not available in this version',
   serve: 'the in-process server (serve) is not available in this version',
 };
 
@@ -220,10 +227,12 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
 
   const advice = nestedOptions('advice', o.advice, { act: 'boolean', watch: 'string', ...numeric(ADVICE_DEFAULTS) });
   const phases = nestedOptions('phases', o.phases, numeric(PHASE_DEFAULTS));
+  const probe = resolveProbeOptions(o.probe);
 
   return Object.freeze({
     advice: Object.freeze({ act: false, ...advice }) as ResolvedOptions['advice'],
     phases: Object.freeze(phases) as PhaseOptions,
+    probe,
     run,
     store: store as string | Sink,
     window: window as WindowSetting,

@@ -35,6 +35,30 @@ export interface LayerStats extends VariableStats {
   travel_exponent: number | null;
   /** Per-variable values, keyed by the variable's name. Absent on the network entry. */
   variables?: Record<string, VariableStats>;
+  // Probe values: present on a layer in the windows where the activation probe ran (probe.every), absent
+  // otherwise. The run's config.probe records the estimators and their settings (bins, σ², rows).
+  /** Mean of the layer's activations over the probe set (finite values). */
+  act_mean?: number;
+  /** Population standard deviation of those activations. */
+  act_std?: number;
+  /** Fraction of activations at a limit: within 1% of the range of tanh/sigmoid/softmax, exactly 0 for ReLU. Absent for unbounded activations. */
+  act_saturation?: number;
+  /** Binned I(X;T) = H(T), bits (plug-in, `bins` per unit). */
+  mi_input?: number;
+  /** Binned I(T;Y) = H(T) − H(T|Y), bits. */
+  mi_label?: number;
+  /** 1 when H(T) is within 0.1 bit of log2(probe rows): every example has its own cell and mi_input/mi_label say nothing. */
+  mi_saturated?: number;
+  /** KL-based upper bound on I(X;T+noise), bits (Kolchinsky & Tracey 2017). */
+  mi_input_upper?: number;
+  /** Bhattacharyya-based lower bound on I(X;T+noise), bits. */
+  mi_input_lower?: number;
+  /** Pairwise estimate of I(T+noise;Y), bits: an estimate, not a bound. */
+  mi_label_pairwise?: number;
+  /** 1 when the lower bound is within 0.1 bit of log2(rows used): the bounds say nothing. */
+  mi_bounds_saturated?: number;
+  /** Probe rows that entered the binned estimate (rows with non-finite activations are left out). */
+  probe_rows?: number;
 }
 
 /** One window of minibatches. */

@@ -47,9 +47,9 @@ describe('monitor() argument checks', () => {
     await expect(monitor(model, { store: 'ws://127.0.0.1:7341' })).rejects.toMatchObject({
       code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
     });
-    await expect(monitor(model, { probe: {} } as never)).rejects.toMatchObject({
+    await expect(monitor(model, { serve: 7341 } as never)).rejects.toMatchObject({
       code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
-      message: expect.stringContaining('probe'),
+      message: expect.stringContaining('serve'),
     });
   });
 
