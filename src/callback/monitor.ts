@@ -139,6 +139,8 @@ class MonitorSession implements Monitor {
   private readonly model: { stopTraining: boolean };
   private readonly probe: Probe | null;
   private readonly compression = new CompressionDetector();
+  /** performance.now() at the first step: the probe's time budget is a share of the time since. */
+  private trainingStart: number | null = null;
   /** Minibatches of the open window per epoch touched. */
   private passBatches: number[] = [];
   private passOpen = false;
@@ -238,6 +240,7 @@ class MonitorSession implements Monitor {
 
   private tapBefore(grads: readonly GradientPair[]): void {
     if (this.closed) return;
+    this.trainingStart ??= performance.now();
     this.step++;
     this.sampleThisStep = this.acc.pending === 0;
     this.acc.before(grads, this.sampleThisStep);
@@ -296,7 +299,8 @@ class MonitorSession implements Monitor {
     }
     const done = this.chain.then(async () => {
       const values = await raw;
-      const probed = this.probe !== null && this.probe.due(meta.index) ? await this.runProbe() : null;
+      const trainingMs = this.trainingStart === null ? 0 : performance.now() - this.trainingStart;
+      const probed = this.probe !== null && this.probe.due(meta.index, trainingMs) ? await this.runProbe() : null;
       this.finishWindow(values, meta, probed);
     });
     // The chain itself never rejects, so one failed window does not block the next.

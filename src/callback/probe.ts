@@ -17,15 +17,21 @@ export interface ProbeOptions {
   x: tf.Tensor | tf.Tensor[];
   /** Probe targets, one per row: one-hot `[rows, classes]`, class indices `[rows]`, or regression values. Required. */
   y: tf.Tensor | ArrayLike<number>;
-  /** Probe every this many windows (the first window included). Default 5. */
-  every?: number;
+  /**
+   * When to probe. `'auto'` (default): at the first window, then whenever the time spent probing stays
+   * within `budget` of the training time so far. A number N: every N windows (the first included),
+   * whatever it costs.
+   */
+  every?: number | 'auto';
+  /** With `every: 'auto'`, the share of training wall time the probe may take, in (0, 1]. Default 0.03. */
+  budget?: number;
   /** Rows used at most; a larger probe set is subsampled once, with a fixed seed. Default 4096. */
   size?: number;
   /** Equal-width bins per unit of the binned estimate. Default 30. */
   bins?: number;
   /** σ² of the Gaussian noise of the pairwise bounds. Default 0.1. */
   noiseVariance?: number;
-  /** Rows entering the O(rows²) pairwise bounds (subsampled with a fixed seed); 0 turns the bounds off. Default 1024. */
+  /** Rows entering the O(rows²·units) pairwise bounds (subsampled with a fixed seed); 0 turns the bounds off. Default 512. */
   boundRows?: number;
   /** How to read `y`: 'auto' (default), 'onehot', 'sparse' or 'regression'. */
   labels?: 'auto' | LabelKind;
@@ -36,11 +42,12 @@ export interface ProbeOptions {
 }
 
 export const PROBE_DEFAULTS = {
-  every: 5,
+  every: 'auto',
+  budget: 0.03,
   size: 4096,
   bins: 30,
   noiseVariance: 0.1,
-  boundRows: 1024,
+  boundRows: 512,
   labels: 'auto',
   labelBins: 10,
   maxBytes: 256 * 1024 * 1024,
@@ -48,7 +55,7 @@ export const PROBE_DEFAULTS = {
 
 export type ResolvedProbeOptions = Readonly<Required<ProbeOptions>>;
 
-const NUMBERS = ['every', 'size', 'bins', 'noiseVariance', 'boundRows', 'labelBins', 'maxBytes'] as const;
+const NUMBERS = ['every', 'budget', 'size', 'bins', 'noiseVariance', 'boundRows', 'labelBins', 'maxBytes'] as const;
 export const PROBE_OPTION_NAMES = ['x', 'y', 'labels', ...NUMBERS] as const;
 
 const invalid = (message: string): TidemarkRangeError => new TidemarkRangeError('TIDEMARK_ERR_PROBE_INVALID', message);
@@ -71,13 +78,20 @@ export function resolveProbeOptions(value: unknown): ResolvedProbeOptions | null
   const out: Record<string, unknown> = { ...PROBE_DEFAULTS, x: o.x, y: o.y };
   for (const k of NUMBERS) {
     const v = o[k];
-    if (v === undefined) continue;
+    if (v === undefined || (k === 'every' && v === 'auto')) continue;
+    if (k === 'budget') {
+      if (typeof v !== 'number' || !(v > 0 && v <= 1)) {
+        throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `Option 'probe.budget' must be a share of training time in (0, 1], e.g. 0.03; received ${JSON.stringify(v)}.`);
+      }
+      out[k] = v;
+      continue;
+    }
     const integer = k !== 'noiseVariance';
     const min = k === 'boundRows' ? 0 : k === 'every' ? 1 : 2;
     if (typeof v !== 'number' || !Number.isFinite(v) || (integer && !Number.isInteger(v)) || v < min || (k === 'noiseVariance' && v <= 0)) {
       throw new TidemarkRangeError(
         'TIDEMARK_ERR_OPTION_INVALID',
-        `Option 'probe.${k}' must be ${k === 'noiseVariance' ? 'a number > 0' : `an integer ≥ ${min}`}; received ${JSON.stringify(v)}.`,
+        `Option 'probe.${k}' must be ${k === 'noiseVariance' ? 'a number > 0' : `an integer ≥ ${min}`}${k === 'every' ? " or 'auto'" : ''}; received ${JSON.stringify(v)}.`,
       );
     }
     out[k] = v;
@@ -237,6 +251,9 @@ export class Probe {
   private readonly xs: tf.Tensor[];
   private readonly probeModel: tf.LayersModel;
   private disposed = false;
+  private calls = 0;
+  private spentMs = 0;
+  private lastMs = 0;
 
   constructor(model: tf.LayersModel, tracked: ModelView, options: ResolvedProbeOptions) {
     this.options = options;
@@ -330,9 +347,20 @@ export class Probe {
     this.xs = xsIn.map((t) => (pick === null ? tf.clone(t) : tf.gather(t, pick)));
   }
 
-  /** Whether the window with this index (from 0) gets a probe. */
-  due(windowIndex: number): boolean {
-    return windowIndex % this.options.every === 0;
+  /**
+   * Whether the window with this index (from 0) gets a probe, `trainingMs` into training. Under the
+   * budget the next probe waits until its expected cost (the last one's) fits in the allowed share.
+   */
+  due(windowIndex: number, trainingMs: number): boolean {
+    const every = this.options.every;
+    if (every !== 'auto') return windowIndex % every === 0;
+    if (this.calls === 0) return true;
+    return this.spentMs + this.lastMs <= this.options.budget * trainingMs;
+  }
+
+  /** Probes run so far and the time they took, ms. */
+  get cost(): { calls: number; ms: number } {
+    return { calls: this.calls, ms: this.spentMs };
   }
 
   /** What the run's config records about the probe: every value's estimator and settings. */
@@ -341,6 +369,7 @@ export class Probe {
     return {
       rows: this.rows,
       every: o.every,
+      ...(o.every === 'auto' ? { budget: o.budget } : {}),
       labels: { kind: this.labelKind, classes: this.labelCount, ...(this.labelKind === 'regression' ? { bins: o.labelBins } : {}) },
       binned: { estimator: 'binned-plugin', bins: o.bins, saturation_margin_bits: 0.1 },
       bounds:
@@ -373,6 +402,9 @@ export class Probe {
       tf.dispose(outs);
     }
     result.ms = performance.now() - started;
+    this.calls++;
+    this.spentMs += result.ms;
+    this.lastMs = result.ms;
     return result;
   }
 

@@ -213,6 +213,33 @@ describe('probe input checks at monitor()', () => {
   });
 });
 
+describe('probe cadence', () => {
+  it("under 'auto' probes the first window, then waits while its time would exceed the budget", async () => {
+    const m = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
+    const x = tf.randomNormal([64, 4], 0, 1, 'float32', 5);
+    const y = new Int32Array(64).map((_, i) => i % 2);
+    // A budget of 1e-9 of the training time: after the first probe no other fits.
+    const mon = await monitor(m, { store: 'memory', window: 4, probe: { x, y, budget: 1e-9 } });
+    const { xs, ys } = blobTensors(64, 4, 2);
+    await m.fit(xs, ys, { epochs: 3, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
+    await mon.close();
+    expect(mon.windows().length).toBe(6);
+    expect(probed(mon.windows()).map((w) => w.index)).toEqual([0]);
+    tf.dispose([x, xs, ys]);
+  });
+
+  it('refuses a budget outside (0, 1] and an every that is neither a count nor auto', async () => {
+    const m = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
+    const x = tf.zeros([8, 4]);
+    for (const probe of [{ budget: 0 }, { budget: 1.5 }, { every: 'often' }, { every: 2.5 }]) {
+      await expect(monitor(m, { store: 'memory', probe: { x, y: new Int32Array(8), ...probe } } as never)).rejects.toMatchObject({
+        code: 'TIDEMARK_ERR_OPTION_INVALID',
+      });
+    }
+    tf.dispose(x);
+  });
+});
+
 describe('probe faults during training', () => {
   it('reports non-finite activations once, keeps the other rows, and leaves fit running', async () => {
     const warnings: MonitorWarning[] = [];
