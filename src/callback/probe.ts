@@ -143,6 +143,8 @@ export interface ProbeResult {
   dropped: Record<string, number>;
   /** Time the probe took (forward pass and estimates), ms. */
   ms: number;
+  /** Where that time went, ms: the forward pass with the read-back, the binned estimates, the pairwise bounds. */
+  timing: { forward: number; binned: number; bounds: number };
 }
 
 const BOUNDED: Record<string, [number, number]> = {
@@ -389,12 +391,14 @@ export class Probe {
       const r = this.probeModel.predict(this.xs.length === 1 ? this.xs[0]! : this.xs, { batchSize: 512 });
       return Array.isArray(r) ? r : [r];
     });
-    const result: ProbeResult = { layers: {}, dropped: {}, ms: 0 };
+    const timing = { forward: 0, binned: 0, bounds: 0 };
+    const result: ProbeResult = { layers: {}, dropped: {}, ms: 0, timing };
     try {
+      const acts = await Promise.all(outs.map(async (o) => (await o.data()) as Float32Array));
+      timing.forward = performance.now() - started;
       for (let i = 0; i < this.layers.length; i++) {
         const layer = this.layers[i]!;
-        const acts = (await outs[i]!.data()) as Float32Array;
-        const values = this.layerValues(layer, acts);
+        const values = this.layerValues(layer, acts[i]!, timing);
         result.layers[layer.name] = values;
         if (values.probe_rows < this.rows) result.dropped[layer.name] = this.rows - values.probe_rows;
       }
@@ -408,8 +412,9 @@ export class Probe {
     return result;
   }
 
-  private layerValues(layer: ProbedLayer, acts: Float32Array): ProbeLayerValues {
+  private layerValues(layer: ProbedLayer, acts: Float32Array, timing: ProbeResult['timing']): ProbeLayerValues {
     const o = this.options;
+    const t0 = performance.now();
     const shape: [number, number] = [this.rows, layer.units];
     const { mean, std } = finiteMeanStd(acts);
     const binned = binnedInformation(acts, shape, this.classes, { bins: o.bins, range: layer.range });
@@ -423,12 +428,15 @@ export class Probe {
     };
     const sat = saturationFraction(acts, layer.kind, layer.range);
     if (sat !== null) values.act_saturation = sat;
+    const t1 = performance.now();
+    timing.binned += t1 - t0;
     if (o.boundRows > 0) {
       const b = pairwiseInformationBounds(acts, shape, this.classes, { noiseVariance: o.noiseVariance, maxRows: o.boundRows });
       values.mi_input_upper = b.mi_input_upper;
       values.mi_input_lower = b.mi_input_lower;
       values.mi_label_pairwise = b.mi_label;
       values.mi_bounds_saturated = b.saturated ? 1 : 0;
+      timing.bounds += performance.now() - t1;
     }
     return values;
   }
