@@ -12,6 +12,7 @@ import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
+import { latestProbe, renderProbe } from './probe.js';
 
 export const EXIT = { ok: 0, failed: 1, usage: 2, notFound: 3 } as const;
 
@@ -130,6 +131,8 @@ function renderShow(store: Store, run: RunDetail): string {
     }
     out.push(table(rows, '  '));
   }
+  const probe = latestProbe(store, run);
+  if (probe !== null) out.push('', ...renderProbe(probe));
   const markers = store.markers(run.id);
   out.push('');
   if (markers.length === 0) out.push('  no markers');
@@ -236,7 +239,7 @@ export function buildProgram(io: Io): Command {
 
   program
     .command('show')
-    .description("a run's latest per-layer numbers and its markers")
+    .description("a run's latest per-layer numbers, its latest probe values and its markers")
     .argument('<run>', 'run id, unique id prefix, or name')
     .option('--json', 'machine-readable output')
     .action((ref: string, o: { json?: boolean }) => {
@@ -244,7 +247,9 @@ export function buildProgram(io: Io): Command {
         const run = s.resolveRun(ref);
         if (o.json) {
           const l = latest(s, run);
-          io.out(`${JSON.stringify({ run, latest: l, markers: s.markers(run.id), caution: CAUTION }, null, 2)}\n`);
+          // probe is null when the run has no probe values, so scripts can test for it without a key check.
+          const probe = latestProbe(s, run);
+          io.out(`${JSON.stringify({ run, latest: l, probe, markers: s.markers(run.id), caution: CAUTION }, null, 2)}\n`);
         } else io.out(`${renderShow(s, run)}\n`);
       });
     });

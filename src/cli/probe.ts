@@ -1,0 +1,142 @@
+/**
+ * The activation probe's latest values per layer for `tidemark show`. The probe runs only in some
+ * windows, so each layer's values come from the last step where it ran, not from the run's last step.
+ */
+import type { RunDetail, Store } from '../storage/store.js';
+import { fmt, printable, table } from './format.js';
+
+export const PROBE_METRICS = [
+  'mi_input',
+  'mi_label',
+  'mi_saturated',
+  'mi_input_lower',
+  'mi_input_upper',
+  'mi_label_pairwise',
+  'mi_bounds_saturated',
+  'act_mean',
+  'act_std',
+  'act_saturation',
+  'probe_rows',
+] as const;
+
+export type ProbeMetric = (typeof PROBE_METRICS)[number];
+
+export interface ProbeLayerLatest {
+  layer: string;
+  /** Step of the last window in which the probe ran for this layer. */
+  step: number;
+  /** Stored values at that step under their metric names; null when absent (e.g. act_saturation of an unbounded activation). */
+  values: Record<ProbeMetric, number | null>;
+}
+
+/** The estimators and their settings, read from the run's config.probe; null where the config does not say. */
+export interface ProbeSettings {
+  estimator: string | null;
+  bins: number | null;
+  rows: number | null;
+  every: number | string | null;
+  /** Share of training time the probe may take, when every is 'auto'. */
+  budget: number | null;
+  bounds: { estimator: string | null; noise_variance: number | null; rows: number | null } | null;
+}
+
+export interface ProbeLatest {
+  settings: ProbeSettings;
+  layers: ProbeLayerLatest[];
+  saturated_note: string;
+  bounds_saturated_note: string;
+  caution: string;
+}
+
+export const SATURATED_MARK = '*';
+export const BOUNDS_SATURATED_MARK = '†';
+export const SATURATED_NOTE = 'every probe example in its own bin: this value says nothing about the layer';
+export const BOUNDS_SATURATED_NOTE = 'every probe example told apart through the added noise: these bounds say nothing about the layer';
+export const PROBE_CAUTION =
+  'Binned estimates depend on the bin count and on the activation function; compare them only between runs with the same bins and activations.';
+
+const obj = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
+const numOrNull = (v: unknown): number | null => (typeof v === 'number' ? v : null);
+const strOrNull = (v: unknown): string | null => (typeof v === 'string' ? v : null);
+
+/** Reads config.probe defensively: stores written by older versions, or imported, may lack parts of it. */
+export function probeSettings(config: Record<string, unknown>): ProbeSettings {
+  const p = obj(config.probe) ?? {};
+  const binned = obj(p.binned) ?? {};
+  const bounds = obj(p.bounds);
+  return {
+    estimator: strOrNull(binned.estimator),
+    bins: numOrNull(binned.bins),
+    rows: numOrNull(p.rows),
+    every: typeof p.every === 'number' || typeof p.every === 'string' ? p.every : null,
+    budget: numOrNull(p.budget),
+    bounds: bounds === null ? null : { estimator: strOrNull(bounds.estimator), noise_variance: numOrNull(bounds.noise_variance), rows: numOrNull(bounds.rows) },
+  };
+}
+
+/** Each probed layer's values at its last probe step, in the model's layer order; null when the run has no probe values. */
+export function latestProbe(store: Store, run: RunDetail): ProbeLatest | null {
+  // One seriesKeys call tells which layers were probed, so runs without a probe cost no further queries.
+  const probed = new Set(store.seriesKeys(run.id).filter((k) => k.scope === 'layer' && k.metric === 'mi_input').map((k) => k.layer));
+  if (probed.size === 0) return null;
+  const layers: ProbeLayerLatest[] = [];
+  for (const { name } of run.layers) {
+    if (!probed.has(name)) continue;
+    // mi_input is written at every probe step, so its last point is the layer's latest probe window.
+    const last = store.series(run.id, 'mi_input', { layer: name }).at(-1);
+    if (last === undefined) continue;
+    const values = {} as Record<ProbeMetric, number | null>;
+    for (const m of PROBE_METRICS) {
+      const pts = m === 'mi_input' ? [last] : store.series(run.id, m, { layer: name, from: last.step, to: last.step });
+      values[m] = pts.length > 0 ? pts[pts.length - 1]!.value : null;
+    }
+    layers.push({ layer: name, step: last.step, values });
+  }
+  if (layers.length === 0) return null;
+  return {
+    settings: probeSettings(run.config),
+    layers,
+    saturated_note: SATURATED_NOTE,
+    bounds_saturated_note: BOUNDS_SATURATED_NOTE,
+    caution: PROBE_CAUTION,
+  };
+}
+
+function settingsLine(s: ProbeSettings): string {
+  const parts = [`${s.estimator ?? 'binned'}, ${s.bins ?? '?'} bins per unit, ${s.rows ?? '?'} rows`];
+  if (s.bounds !== null) parts.push(`bounds ${s.bounds.estimator ?? 'pairwise'}, σ² ${s.bounds.noise_variance ?? '?'}, ${s.bounds.rows ?? '?'} rows`);
+  if (typeof s.every === 'number') parts.push(`every ${s.every} window${s.every === 1 ? '' : 's'}`);
+  else if (s.every !== null) parts.push(`every: ${printable(s.every, 20)}${s.budget !== null ? ` (at most ${fmt(100 * s.budget, 1)}% of training time)` : ''}`);
+  return parts.join('; ');
+}
+
+/** A value with a mark after it when it says nothing; unmarked values get a space so the digits stay aligned. */
+function marked(text: string, flag: number | null, mark: string): string {
+  return `${text}${flag === 1 ? mark : ' '}`;
+}
+
+/** The probe section of `tidemark show`, as lines. */
+export function renderProbe(p: ProbeLatest): string[] {
+  const rows = [['layer', 'probe step', 'I(X;T) bits', 'I(T;Y) bits', 'I(X;T) bounds', 'act. at limit', 'rows']];
+  let sat = false;
+  let boundsSat = false;
+  for (const { layer, step, values: v } of p.layers) {
+    sat ||= v.mi_saturated === 1;
+    boundsSat ||= v.mi_bounds_saturated === 1;
+    const bounds = v.mi_input_lower === null || v.mi_input_upper === null ? '—' : `${fmt(v.mi_input_lower)}–${fmt(v.mi_input_upper)}`;
+    rows.push([
+      printable(layer, 40),
+      String(step),
+      marked(fmt(v.mi_input), v.mi_saturated, SATURATED_MARK),
+      marked(fmt(v.mi_label), v.mi_saturated, SATURATED_MARK),
+      marked(bounds, v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
+      fmt(v.act_saturation),
+      v.probe_rows === null ? '—' : String(v.probe_rows),
+    ]);
+  }
+  const out = [`  probe    ${settingsLine(p.settings)}`, table(rows, '  ')];
+  if (sat) out.push(`  ${SATURATED_MARK} ${SATURATED_NOTE}`);
+  if (boundsSat) out.push(`  ${BOUNDS_SATURATED_MARK} ${BOUNDS_SATURATED_NOTE}`);
+  out.push(`  ${PROBE_CAUTION}`);
+  return out;
+}
