@@ -25,7 +25,7 @@
 import type Database from 'better-sqlite3';
 
 /** The schema version this code writes and reads. */
-export const SCHEMA_VERSION = 1;
+export const SCHEMA_VERSION = 2;
 
 /** `PRAGMA application_id` of a tidemark store: the bytes "TDMK". */
 export const APPLICATION_ID = 0x54444d4b;
@@ -125,8 +125,26 @@ CREATE TABLE warnings (
 CREATE UNIQUE INDEX warnings_key ON warnings (run_id, time, code, message);
 `;
 
+/**
+ * Version 2: the numbered batches a remote writer sent through a server, so a batch resent after a lost
+ * acknowledgement is recognised and stored once (the records are idempotent too, but the sequence makes
+ * the acknowledgement exact).
+ */
+const V2 = `
+CREATE TABLE ingest_batches (
+  run_id       TEXT NOT NULL REFERENCES runs (id) ON DELETE CASCADE,
+  seq          INTEGER NOT NULL,
+  records      INTEGER NOT NULL,
+  received_at  REAL NOT NULL,
+  PRIMARY KEY (run_id, seq)
+) WITHOUT ROWID;
+`;
+
 /** Every migration, in order; the last one's `to` is {@link SCHEMA_VERSION}. */
-export const MIGRATIONS: readonly Migration[] = [{ to: 1, up: (db) => db.exec(V1) }];
+export const MIGRATIONS: readonly Migration[] = [
+  { to: 1, up: (db) => db.exec(V1) },
+  { to: 2, up: (db) => db.exec(V2) },
+];
 
 export interface SchemaState {
   version: number;

@@ -406,6 +406,9 @@ export class SqliteStore implements Store {
     p('warningsOf', 'SELECT code, message, step, time FROM warnings WHERE run_id = ? ORDER BY time, id');
     p('deletePoints', 'DELETE FROM points WHERE series_id IN (SELECT id FROM series WHERE run_id = ?)');
     p('deleteRun', 'DELETE FROM runs WHERE id = ?');
+    p('findBatch', 'SELECT 1 FROM ingest_batches WHERE run_id = ? AND seq = ?');
+    p('insertBatch', 'INSERT INTO ingest_batches (run_id, seq, records, received_at) VALUES (?, ?, ?, ?)');
+    p('runExists', 'SELECT 1 FROM runs WHERE id = ?');
     p('pruneCandidates', `SELECT id FROM runs WHERE created_at < ?
       AND NOT (status = 'running' AND heartbeat_at >= ?) ORDER BY created_at`);
     // Series reads return [step, value] arrays: a million small objects would cost more than the read.
@@ -484,41 +487,66 @@ export class SqliteStore implements Store {
 
   append(records: readonly SinkRecord[]): void {
     if (!Array.isArray(records)) throw badRecord(`expected an array of records; received ${show(records)}.`);
-    const now = this.opts.now();
-    this.write('append', () => {
-      const touched = new Map<string, { count: number; last: number }>();
-      for (let i = 0; i < records.length; i++) {
-        const r: unknown = records[i];
-        if (!isObject(r)) throw badRecord(`record ${i} is ${show(r)}, not an object.`);
-        switch (r.type) {
-          case 'run':
-            this.insertRun(r.run as RunInfo);
-            break;
-          case 'window': {
-            const w = r.window as WindowRecord;
-            if (this.insertWindow(w, i)) {
-              const t = touched.get(w.run) ?? { count: 0, last: w.step };
-              t.count++;
-              t.last = Math.max(t.last, w.step);
-              touched.set(w.run, t);
-            }
-            break;
-          }
-          case 'marker':
-            this.insertMarker(r.marker as Marker, i);
-            break;
-          case 'warning':
-            this.insertWarning(r, i);
-            break;
-          case 'end':
-            this.endRun(r, i);
-            break;
-          default:
-            throw badRecord(`record ${i} has type ${show(r.type)}; expected run, window, marker, warning or end.`);
-        }
-      }
-      for (const [runId, t] of touched) this.stmt('countWindows').run(t.count, t.last, t.last, now, runId);
+    this.write('append', () => this.appendRecords(records));
+  }
+
+  appendBatch(runId: string, seq: number, records: readonly SinkRecord[]): { duplicate: boolean } {
+    if (typeof runId !== 'string' || runId.length === 0) throw badRecord(`appendBatch: run must be a non-empty string; received ${show(runId)}.`);
+    if (!Number.isSafeInteger(seq) || seq < 0) throw badRecord(`appendBatch: seq must be an integer ≥ 0; received ${show(seq)}.`);
+    if (!Array.isArray(records)) throw badRecord(`expected an array of records; received ${show(records)}.`);
+    records.forEach((r, i) => {
+      const owner = !isObject(r) ? undefined : r.type === 'run' ? (r.run as { id?: unknown } | undefined)?.id : r.type === 'window' ? (r.window as { run?: unknown } | undefined)?.run : r.type === 'marker' ? (r.marker as { run?: unknown } | undefined)?.run : r.run;
+      if (owner !== runId) throw badRecord(`record ${i} of batch ${seq} belongs to run ${show(owner)}, not to the batch's run ${show(runId)}.`);
     });
+    let duplicate = false;
+    this.write('appendBatch', () => {
+      if (this.stmt('findBatch').get(runId, seq) !== undefined) {
+        duplicate = true;
+        return;
+      }
+      this.appendRecords(records);
+      if (this.stmt('runExists').get(runId) === undefined) {
+        throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `appendBatch: run ${show(runId)} is not in the store; its first batch must hold its run record.`);
+      }
+      this.stmt('insertBatch').run(runId, seq, records.length, this.opts.now());
+    });
+    return { duplicate };
+  }
+
+  private appendRecords(records: readonly SinkRecord[]): void {
+    const now = this.opts.now();
+    const touched = new Map<string, { count: number; last: number }>();
+    for (let i = 0; i < records.length; i++) {
+      const r: unknown = records[i];
+      if (!isObject(r)) throw badRecord(`record ${i} is ${show(r)}, not an object.`);
+      switch (r.type) {
+        case 'run':
+          this.insertRun(r.run as RunInfo);
+          break;
+        case 'window': {
+          const w = r.window as WindowRecord;
+          if (this.insertWindow(w, i)) {
+            const t = touched.get(w.run) ?? { count: 0, last: w.step };
+            t.count++;
+            t.last = Math.max(t.last, w.step);
+            touched.set(w.run, t);
+          }
+          break;
+        }
+        case 'marker':
+          this.insertMarker(r.marker as Marker, i);
+          break;
+        case 'warning':
+          this.insertWarning(r, i);
+          break;
+        case 'end':
+          this.endRun(r, i);
+          break;
+        default:
+          throw badRecord(`record ${i} has type ${show(r.type)}; expected run, window, marker, warning or end.`);
+      }
+    }
+    for (const [runId, t] of touched) this.stmt('countWindows').run(t.count, t.last, t.last, now, runId);
   }
 
   heartbeat(runId: string, now: number = this.opts.now()): void {

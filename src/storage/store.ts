@@ -93,6 +93,12 @@ export interface Store {
    * On any error nothing of the call is kept.
    */
   append(records: readonly SinkRecord[]): void;
+  /**
+   * Stores batch `seq` of a remote writer of `runId` in one transaction, once: a batch already stored
+   * under (runId, seq) is not written again and comes back `{ duplicate: true }`. Every record must
+   * belong to `runId`; the run must exist once the batch is stored (its first batch carries the run).
+   */
+  appendBatch(runId: string, seq: number, records: readonly SinkRecord[]): { duplicate: boolean };
   /** Marks the writer of `runId` alive at `now` (default: the store's clock); an `interrupted` run without an end record becomes `running` again. */
   heartbeat(runId: string, now?: number): void;
   runs(filter?: RunFilter): RunRow[];

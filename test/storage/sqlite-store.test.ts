@@ -175,7 +175,7 @@ describe('SQLite store: writing and rebuilding', () => {
     expect(db.pragma('user_version', { simple: true })).toBe(SCHEMA_VERSION);
     expect(db.pragma('application_id', { simple: true })).toBe(APPLICATION_ID);
     const tables = (db.prepare("SELECT name, sql FROM sqlite_schema WHERE type = 'table' ORDER BY name").all() as { name: string; sql: string }[]);
-    expect(tables.map((t) => t.name)).toEqual(['layers', 'markers', 'points', 'runs', 'series', 'warnings', 'windows']);
+    expect(tables.map((t) => t.name)).toEqual(['ingest_batches', 'layers', 'markers', 'points', 'runs', 'series', 'warnings', 'windows']);
     expect(tables.find((t) => t.name === 'points')!.sql).toMatch(/WITHOUT ROWID$/);
     expect(db.pragma('integrity_check', { simple: true })).toBe('ok');
   });
@@ -189,6 +189,19 @@ describe('SQLite store: writing and rebuilding', () => {
     expect(migrate(db, v2)).toBe(SCHEMA_VERSION + 1);
     expect(db.pragma('user_version', { simple: true })).toBe(SCHEMA_VERSION + 1);
     expect(db.prepare("SELECT count(*) AS n FROM sqlite_schema WHERE name = 'extra'").get()).toEqual({ n: 1 });
+  });
+
+  it('upgrades a version-1 store to version 2 in place, keeping its runs', () => {
+    const path = freshPath();
+    const db = new Database(path);
+    migrate(db, MIGRATIONS.slice(0, 1));
+    expect(db.pragma('user_version', { simple: true })).toBe(1);
+    db.close();
+    const s = store(path);
+    const run = fakeRun({ id: 'old-0001' });
+    s.beginRun(run);
+    expect(s.appendBatch(run.id, 0, windowRecs(fakeWindows(run, 2)))).toEqual({ duplicate: false });
+    expect(raw(path).pragma('user_version', { simple: true })).toBe(2);
   });
 
   it('works in memory', () => {
@@ -526,3 +539,40 @@ describe('SQLite store: concurrency', () => {
   });
 });
 
+
+describe('SQLite store: numbered batches from remote writers', () => {
+  it('stores a batch once: a resent (run, seq) is acknowledged as a duplicate and adds nothing', () => {
+    const s = store();
+    const run = fakeRun({ id: 'remote-0001' });
+    const ws = fakeWindows(run, 4);
+    const first: SinkRecord[] = [{ type: 'run', run }, ...windowRecs(ws.slice(0, 2))];
+    expect(s.appendBatch(run.id, 0, first)).toEqual({ duplicate: false });
+    expect(s.appendBatch(run.id, 0, first)).toEqual({ duplicate: true });
+    expect(s.appendBatch(run.id, 1, windowRecs(ws.slice(2)))).toEqual({ duplicate: false });
+    // A batch replayed with other content under a stored seq is still a duplicate: the seq decides.
+    expect(s.appendBatch(run.id, 1, windowRecs(ws.slice(0, 1)))).toEqual({ duplicate: true });
+    expect(s.windows(run.id)).toEqual(ws);
+    expect(s.runs()[0]).toMatchObject({ id: run.id, windows: 4 });
+  });
+
+  it('keeps nothing of a batch with a bad record, so the same seq can be sent again', () => {
+    const s = store();
+    const run = fakeRun({ id: 'remote-0002' });
+    const ws = fakeWindows(run, 2);
+    const bad = { type: 'window', window: { ...ws[1]!, layers: 'x' } } as unknown as SinkRecord;
+    expectCoded(() => s.appendBatch(run.id, 0, [{ type: 'run', run }, ...windowRecs(ws.slice(0, 1)), bad]), TidemarkTypeError, 'TIDEMARK_ERR_RECORD_INVALID', /layers/);
+    expect(s.runs()).toEqual([]);
+    expect(s.appendBatch(run.id, 0, [{ type: 'run', run }, ...windowRecs(ws)])).toEqual({ duplicate: false });
+    expect(s.windows(run.id)).toEqual(ws);
+  });
+
+  it("refuses a record of another run, a negative or fractional seq, and a batch for a run it doesn't have", () => {
+    const s = store();
+    const run = fakeRun({ id: 'remote-0003' });
+    const other = fakeRun({ id: 'remote-0004' });
+    expectCoded(() => s.appendBatch(run.id, 0, [{ type: 'run', run: other }]), TidemarkTypeError, 'TIDEMARK_ERR_RECORD_INVALID', /not to the batch's run/);
+    expectCoded(() => s.appendBatch(run.id, -1, []), TidemarkTypeError, 'TIDEMARK_ERR_RECORD_INVALID', /seq/);
+    expectCoded(() => s.appendBatch(run.id, 1.5, []), TidemarkTypeError, 'TIDEMARK_ERR_RECORD_INVALID', /seq/);
+    expectCoded(() => s.appendBatch(run.id, 3, windowRecs(fakeWindows(run, 1))), TidemarkError, 'TIDEMARK_ERR_RUN_NOT_FOUND', /send its run record/);
+  });
+});
