@@ -34,6 +34,7 @@ import type {
   SeriesScope,
   Store,
   StoredWarning,
+  WindowQuery,
 } from './store.js';
 
 /** Options of {@link openStore}. */
@@ -394,6 +395,7 @@ export class SqliteStore implements Store {
     p('stepsRange', 'SELECT step FROM points WHERE series_id = ? AND step >= ? AND step <= ? ORDER BY step');
     p('valuesRange', 'SELECT value FROM points WHERE series_id = ? AND step >= ? AND step <= ? ORDER BY step');
     p('pointsAll', 'SELECT step, value FROM points WHERE series_id = ?');
+    p('pointsAt', 'SELECT step, value FROM points WHERE series_id = ? AND step IN (SELECT value FROM json_each(?))');
     for (const col of WINDOW_SERIES) {
       // Column names come from the constant list above, never from input.
       p(`window_${col}`, `SELECT step, ${col} AS value FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step`);
@@ -412,7 +414,7 @@ export class SqliteStore implements Store {
     p('pruneCandidates', `SELECT id FROM runs WHERE created_at < ?
       AND NOT (status = 'running' AND heartbeat_at >= ?) ORDER BY created_at`);
     // Series reads return [step, value] arrays: a million small objects would cost more than the read.
-    for (const name of ['pointsAll', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
+    for (const name of ['pointsAll', 'pointsAt', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
     for (const name of ['stepsRange', 'valuesRange']) this.st[name]!.pluck(true);
   }
 
@@ -990,10 +992,20 @@ export class SqliteStore implements Store {
     });
   }
 
-  windows(runId: string): WindowRecord[] {
+  windows(runId: string, query: WindowQuery = {}): WindowRecord[] {
+    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, points }', query);
+    const after = query.after ?? null;
+    if (after !== null && (typeof after !== 'number' || Number.isNaN(after))) throw invalidOption('windows', 'after', 'a step number', after);
+    const points = query.points ?? null;
+    if (points !== null && (!Number.isInteger(points) || points < 2)) throw invalidOption('windows', 'points', 'an integer ≥ 2', points);
     return this.read('windows', () => {
       this.requireRun(runId);
-      const rows = this.stmt('windowsOf').all(runId) as WindowDbRow[];
+      let rows = this.stmt('windowsOf').all(runId) as WindowDbRow[];
+      const total = rows.length;
+      if (after !== null) rows = rows.filter((r) => r.step > after);
+      if (points !== null && rows.length > points) rows = thinEvenly(rows, points);
+      const partial = rows.length < total;
+      const stepsJson = JSON.stringify(rows.map((r) => r.step));
       const records = rows.map((r): WindowRecord => {
         const w: WindowRecord = {
           run: runId,
@@ -1017,9 +1029,12 @@ export class SqliteStore implements Store {
       const series = this.stmt('seriesOf').all(runId) as SeriesDbRow[];
       const values = new Map<number, Map<number, number>>();
       const pointsAll = this.stmt('pointsAll');
+      const pointsAt = this.stmt('pointsAt');
       for (const s of series) {
         const m = new Map<number, number>();
-        for (const [step, value] of pointsAll.all(s.id) as [number, number | null][]) m.set(step, num(value));
+        // A part of the run reads only its steps, by key; the whole run reads each series in one scan.
+        const rowsOf = (partial ? pointsAt.all(s.id, stepsJson) : pointsAll.all(s.id)) as [number, number | null][];
+        for (const [step, value] of rowsOf) m.set(step, num(value));
         values.set(s.id, m);
       }
       const has = (ids: number[], step: number): boolean => ids.some((id) => values.get(id)!.has(step));
@@ -1059,6 +1074,13 @@ export class SqliteStore implements Store {
       return records;
     });
   }
+}
+
+/** `n` of the items, evenly spread, the first and the last included. */
+function thinEvenly<T>(items: T[], n: number): T[] {
+  const out: T[] = [];
+  for (let k = 0; k < n; k++) out.push(items[Math.round((k * (items.length - 1)) / (n - 1))]!);
+  return out;
 }
 
 function groupBy<T>(items: T[], key: (t: T) => string): Map<string, T[]> {

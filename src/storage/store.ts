@@ -5,6 +5,13 @@
  */
 import type { LayerInfo, Marker, RunInfo, RunStatus, SinkRecord, WindowRecord } from '../protocol/records.js';
 
+export interface WindowQuery {
+  /** Only windows whose step is greater. Default: from the start. */
+  after?: number;
+  /** At most this many windows (an integer ≥ 2), spread evenly over those selected. Default: all. */
+  points?: number;
+}
+
 export interface RunRow {
   id: string;
   name: string;
@@ -112,8 +119,11 @@ export interface Store {
   markers(runId: string): Marker[];
   /** In time order. */
   warnings(runId: string): StoredWarning[];
-  /** The run's windows rebuilt from storage, in step order (for export and offline analysis). */
-  windows(runId: string): WindowRecord[];
+  /**
+   * The run's windows rebuilt from storage, in step order (for export and offline analysis); with a query,
+   * only those after a step, and/or at most `points` of them spread evenly (first and last kept).
+   */
+  windows(runId: string, query?: WindowQuery): WindowRecord[];
   deleteRun(runId: string): boolean;
   /** Deletes runs created before `before` (ms since the epoch), except live ones (running, fresh heartbeat); returns their ids. */
   prune(before: number): string[];

@@ -576,3 +576,26 @@ describe('SQLite store: numbered batches from remote writers', () => {
     expectCoded(() => s.appendBatch(run.id, 3, windowRecs(fakeWindows(run, 1))), TidemarkError, 'TIDEMARK_ERR_RUN_NOT_FOUND', /send its run record/);
   });
 });
+
+describe('SQLite store: parts of a run', () => {
+  it('rebuilds only the windows after a step, equal to the same windows of the whole run', () => {
+    const { s, run, ws } = seeded(freshPath(), 12);
+    expect(s.windows(run.id, { after: ws[8]!.step })).toEqual(ws.slice(9));
+    expect(s.windows(run.id, { after: ws.at(-1)!.step })).toEqual([]);
+    expect(s.windows(run.id, { after: -1 })).toEqual(ws);
+  });
+
+  it('thins to evenly spread windows, first and last kept', () => {
+    const { s, run, ws } = seeded(freshPath(), 12);
+    // 12 windows to 4: positions round(k·11/3) = 0, 4, 7, 11.
+    expect(s.windows(run.id, { points: 4 })).toEqual([ws[0], ws[4], ws[7], ws[11]]);
+    expect(s.windows(run.id, { points: 50 })).toEqual(ws);
+    expect(s.windows(run.id, { after: ws[5]!.step, points: 2 })).toEqual([ws[6], ws[11]]);
+  });
+
+  it('refuses a bad query', () => {
+    const { s, run } = seeded(freshPath(), 2);
+    expectCoded(() => s.windows(run.id, { points: 1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /points/);
+    expectCoded(() => s.windows(run.id, { after: Number.NaN }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /after/);
+  });
+});
