@@ -28,6 +28,20 @@ export const ERROR_CODES = {
   TIDEMARK_ERR_RUN_AMBIGUOUS: 'More than one run matches the given id prefix or name.',
   TIDEMARK_ERR_RECORD_INVALID: 'A record given to the store, or a line of an import file, is malformed.',
   TIDEMARK_ERR_FILE_READ: 'A file to import could not be read.',
+  TIDEMARK_ERR_UNAUTHORIZED: 'A request or connection to the server lacked the right token, or came from a page of another origin.',
+  TIDEMARK_ERR_REQUEST_INVALID: 'An HTTP request to the server had a bad parameter or body.',
+  TIDEMARK_ERR_MESSAGE_INVALID: 'A WebSocket message was not valid JSON, not a known message type, or broke the protocol schema.',
+  TIDEMARK_ERR_PAYLOAD_TOO_LARGE: 'A request body or WebSocket message was over the size limit.',
+  TIDEMARK_ERR_RATE_LIMITED: 'A connection sent messages faster than its limit; the message was not processed.',
+  TIDEMARK_ERR_NOT_FOUND: 'No such route on the server.',
+  TIDEMARK_ERR_INTERNAL: 'The server failed while answering; details are in its own log, not in the reply.',
+  TIDEMARK_ERR_SERVE_UNSAFE: 'The server was asked to listen beyond loopback without a token.',
+  TIDEMARK_ERR_SERVE_LISTEN: 'The server could not listen on the address (port in use, no permission).',
+  TIDEMARK_ERR_REMOTE_URL: 'The URL of a remote writer is not a ws:// or wss:// URL with a host.',
+  TIDEMARK_ERR_REMOTE_CONNECT: 'A remote writer lost, or could not open, its connection to the server; it keeps its records and reconnects.',
+  TIDEMARK_ERR_REMOTE_REFUSED: 'The server refused a batch of a remote writer for good; its records were dropped.',
+  TIDEMARK_ERR_REMOTE_SPILL: 'A remote writer could not write or read its spill file.',
+  TIDEMARK_ERR_REMOTE_UNSENT: 'A remote writer closed with records the server had not acknowledged; they were kept in its spill file.',
 } as const;
 
 export type ErrorCode = keyof typeof ERROR_CODES;

@@ -18,17 +18,22 @@ export interface Sink {
 }
 
 /** JSON cannot hold NaN or ±Infinity; we write them as the strings "NaN", "Infinity", "-Infinity". */
+export function encodeJson(value: unknown): string {
+  return JSON.stringify(value, (_key, v: unknown) => (typeof v === 'number' && !Number.isFinite(v) ? String(v) : v));
+}
+
 export function encodeRecord(record: SinkRecord): string {
-  return JSON.stringify(record, (_key, value: unknown) =>
-    typeof value === 'number' && !Number.isFinite(value) ? String(value) : value,
-  );
+  return encodeJson(record);
 }
 
 const NON_FINITE: Record<string, number> = { NaN: Number.NaN, Infinity: Infinity, '-Infinity': -Infinity };
 
+/** Inverse of {@link encodeJson}. */
+export function decodeJson(text: string): unknown {
+  return JSON.parse(text, (_key, value: unknown) => (typeof value === 'string' && value in NON_FINITE ? NON_FINITE[value] : value));
+}
+
 /** Inverse of {@link encodeRecord}. */
 export function decodeRecord(line: string): SinkRecord {
-  return JSON.parse(line, (_key, value: unknown) =>
-    typeof value === 'string' && value in NON_FINITE ? NON_FINITE[value] : value,
-  ) as SinkRecord;
+  return decodeJson(line) as SinkRecord;
 }

@@ -1,0 +1,142 @@
+/**
+ * Viewers of the live stream (`/live`): who follows which run, what they are sent, and how a slow or dead
+ * viewer is kept from growing the server's memory. A message to a viewer whose socket buffer is over the
+ * limit is dropped; once the buffer drains the viewer gets a `gap` message and fetches what it missed.
+ */
+import type { WebSocket } from 'ws';
+import type { Marker, WindowRecord } from '../protocol/records.js';
+import type { LiveMessage, RunSummary } from '../protocol/messages.js';
+import { encodeJson } from '../storage/sink.js';
+
+export interface Viewer {
+  ws: WebSocket;
+  runs: Set<string>;
+  runsList: boolean;
+  alive: boolean;
+  /** Runs whose messages were dropped, with the last step this viewer was sent for each. */
+  behind: Map<string, number | null>;
+  /** Last window step sent per followed run: a window at or before it is not sent again. */
+  lastStep: Map<string, number | null>;
+  /** Markers sent per followed run (the backfill's included), so none is sent twice. */
+  markerKeys: Map<string, Set<string>>;
+}
+
+export function markerKey(m: Marker): string {
+  return `${m.layer ?? ''}\u0000${m.kind}\u0000${m.step}\u0000${m.detected_step}`;
+}
+
+export interface LiveCounters {
+  viewers: number;
+  sent: number;
+  dropped: number;
+}
+
+export class LiveHub {
+  private readonly viewers = new Set<Viewer>();
+  private readonly bufferLimit: number;
+  private timer: NodeJS.Timeout | null = null;
+  readonly counters = { sent: 0, dropped: 0 };
+
+  constructor(options: { bufferLimit: number; heartbeatMs: number }) {
+    this.bufferLimit = options.bufferLimit;
+    // A viewer that does not answer a ping by the next round is gone (sleep, lost network): end it.
+    this.timer = setInterval(() => {
+      for (const v of this.viewers) {
+        if (!v.alive) {
+          v.ws.terminate();
+          this.viewers.delete(v);
+          continue;
+        }
+        v.alive = false;
+        try {
+          v.ws.ping();
+        } catch {
+          // A socket closing under us: the close event removes it.
+        }
+      }
+    }, options.heartbeatMs);
+    this.timer.unref();
+  }
+
+  get size(): number {
+    return this.viewers.size;
+  }
+
+  add(ws: WebSocket): Viewer {
+    const v: Viewer = { ws, runs: new Set(), runsList: false, alive: true, behind: new Map(), lastStep: new Map(), markerKeys: new Map() };
+    this.viewers.add(v);
+    ws.on('pong', () => {
+      v.alive = true;
+    });
+    ws.on('close', () => this.viewers.delete(v));
+    return v;
+  }
+
+  /** Whether anyone follows this run (the watcher reads windows only for followed runs). */
+  following(runId: string): boolean {
+    for (const v of this.viewers) if (v.runs.has(runId)) return true;
+    return false;
+  }
+
+  followedRuns(): Set<string> {
+    const out = new Set<string>();
+    for (const v of this.viewers) for (const r of v.runs) out.add(r);
+    return out;
+  }
+
+  /** Sends to one viewer, unless its buffer is over the limit; returns whether it was sent. */
+  send(v: Viewer, message: LiveMessage): boolean {
+    if (v.ws.readyState !== v.ws.OPEN) return false;
+    if (v.ws.bufferedAmount > this.bufferLimit) {
+      this.counters.dropped++;
+      return false;
+    }
+    v.ws.send(encodeJson(message));
+    this.counters.sent++;
+    return true;
+  }
+
+  publishWindow(window: WindowRecord): void {
+    for (const v of this.viewers) {
+      if (!v.runs.has(window.run)) continue;
+      const last = v.lastStep.get(window.run) ?? null;
+      if (last !== null && window.step <= last) continue;
+      if (!this.catchUp(v, window.run)) continue;
+      if (this.send(v, { v: 1, type: 'window', window })) v.lastStep.set(window.run, window.step);
+      else v.behind.set(window.run, v.lastStep.get(window.run) ?? null);
+    }
+  }
+
+  publishMarker(marker: Marker): void {
+    for (const v of this.viewers) {
+      if (!v.runs.has(marker.run)) continue;
+      const key = markerKey(marker);
+      let keys = v.markerKeys.get(marker.run);
+      if (keys === undefined) v.markerKeys.set(marker.run, (keys = new Set()));
+      if (keys.has(key)) continue;
+      if (!this.catchUp(v, marker.run)) continue;
+      if (this.send(v, { v: 1, type: 'marker', marker })) keys.add(key);
+      else v.behind.set(marker.run, v.lastStep.get(marker.run) ?? null);
+    }
+  }
+
+  publishRun(row: RunSummary): void {
+    for (const v of this.viewers) if (v.runsList) this.send(v, { v: 1, type: 'runs', runs: [row] });
+  }
+
+  /** A viewer that fell behind on a run first gets a gap message (once its buffer has drained). */
+  private catchUp(v: Viewer, runId: string): boolean {
+    if (!v.behind.has(runId)) return true;
+    const after = v.behind.get(runId) ?? null;
+    if (!this.send(v, { v: 1, type: 'gap', run: runId, after_step: after })) return false;
+    v.behind.delete(runId);
+    return true;
+  }
+
+  close(): void {
+    if (this.timer !== null) clearInterval(this.timer);
+    this.timer = null;
+    for (const v of this.viewers) v.ws.terminate();
+    this.viewers.clear();
+  }
+}

@@ -1,0 +1,113 @@
+/**
+ * Turns what lands in the store into live messages. Runs may be written by this server (remote ingest)
+ * or by training processes writing the same SQLite file directly, so the store is the one source: the
+ * watcher polls it (and is nudged at once after an ingest), and publishes each new window and marker of
+ * followed runs in step order; the hub sends each to a viewer once (the backfill counts).
+ */
+import type { RunSummary } from '../protocol/messages.js';
+import type { RunRow, Store } from '../storage/store.js';
+import { markerKey, type LiveHub } from './live.js';
+
+interface Seen {
+  row: RunSummary;
+  /** Step of the last window published. */
+  lastStep: number | null;
+  markerKeys: Set<string> | null;
+}
+
+export function summaryOf(r: RunRow): RunSummary {
+  return {
+    id: r.id,
+    name: r.name,
+    group: r.group,
+    tags: r.tags,
+    status: r.status,
+    created_at: r.created_at,
+    ended_at: r.ended_at,
+    last_step: r.last_step,
+    windows: r.windows,
+  };
+}
+
+export class StoreWatcher {
+  private readonly store: Store;
+  private readonly hub: LiveHub;
+  private readonly seen = new Map<string, Seen>();
+  private timer: NodeJS.Timeout | null = null;
+  private pending = false;
+  private stopped = false;
+  private readonly onError: (e: unknown) => void;
+
+  constructor(store: Store, hub: LiveHub, options: { intervalMs: number; onError: (e: unknown) => void }) {
+    this.store = store;
+    this.hub = hub;
+    this.onError = options.onError;
+    this.timer = setInterval(() => this.poll(), options.intervalMs);
+    this.timer.unref();
+  }
+
+  /** Something was stored just now: look at once (coalesced into one poll per turn of the event loop). */
+  nudge(): void {
+    if (this.pending || this.stopped) return;
+    this.pending = true;
+    setImmediate(() => {
+      this.pending = false;
+      this.poll();
+    });
+  }
+
+  poll(): void {
+    if (this.stopped) return;
+    try {
+      const rows = this.store.runs();
+      const followed = this.hub.followedRuns();
+      for (const r of rows) {
+        const row = summaryOf(r);
+        let s = this.seen.get(r.id);
+        if (s === undefined) {
+          // A run first seen now: its past is the backfill's business, not the live stream's.
+          s = { row, lastStep: r.last_step, markerKeys: null };
+          this.seen.set(r.id, s);
+          this.hub.publishRun(row);
+          continue;
+        }
+        const changed = s.row.status !== row.status || s.row.windows !== row.windows || s.row.last_step !== row.last_step || s.row.ended_at !== row.ended_at;
+        s.row = row;
+        if (changed) this.hub.publishRun(row);
+        if (!followed.has(r.id)) {
+          s.lastStep = r.last_step;
+          s.markerKeys = null;
+          continue;
+        }
+        if (r.last_step !== null && (s.lastStep === null || r.last_step > s.lastStep)) {
+          const windows = this.store.windows(r.id, s.lastStep === null ? {} : { after: s.lastStep });
+          for (const w of windows) this.hub.publishWindow(w);
+          s.lastStep = r.last_step;
+        }
+        if (changed || s.markerKeys === null) this.publishMarkers(r.id, s);
+      }
+    } catch (e) {
+      this.onError(e);
+    }
+  }
+
+  private publishMarkers(runId: string, s: Seen): void {
+    const markers = this.store.markers(runId);
+    if (s.markerKeys === null) {
+      s.markerKeys = new Set(markers.map(markerKey));
+      return;
+    }
+    for (const m of markers) {
+      const key = markerKey(m);
+      if (s.markerKeys.has(key)) continue;
+      s.markerKeys.add(key);
+      this.hub.publishMarker(m);
+    }
+  }
+
+  stop(): void {
+    this.stopped = true;
+    if (this.timer !== null) clearInterval(this.timer);
+    this.timer = null;
+  }
+}
