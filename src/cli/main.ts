@@ -13,6 +13,7 @@ import type { RunDetail, RunRow, Store } from '../storage/store.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 import { latestProbe, renderProbe } from './probe.js';
+import { startServer } from '../server/serve.js';
 
 export const EXIT = { ok: 0, failed: 1, usage: 2, notFound: 3 } as const;
 
@@ -353,6 +354,43 @@ export function buildProgram(io: Io): Command {
         if (o.json) io.out(`${JSON.stringify({ ...result, caution: CAUTION }, null, 2)}\n`);
         else io.out(`${renderAnalysis(run, result, Boolean(o.write))}\n`);
       });
+    });
+
+  program
+    .command('serve')
+    .description('serve the store over HTTP and WebSocket: the API, the live stream, remote ingest and /metrics')
+    .option('--port <port>', 'port to listen on (default 7341)', num('--port'))
+    .option('--host <address>', 'address to listen on (default 127.0.0.1; any other needs --token)')
+    .option('--token <token>', 'required on every request and connection (default: $TIDEMARK_TOKEN, else none)')
+    .option('--insecure', 'listen beyond loopback without a token')
+    .option('--cors <origin>', 'let pages of this origin call the API')
+    .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate'))
+    .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
+      const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
+      const running = await startServer({
+        db: db(),
+        ...(o.port !== undefined ? { port: o.port } : {}),
+        ...(o.host !== undefined ? { host: o.host } : {}),
+        token: token === '' ? null : token,
+        insecure: o.insecure === true,
+        cors: o.cors ?? null,
+        ...(o.ingestRate !== undefined ? { ingestRate: o.ingestRate } : {}),
+        onWarning: (m) => io.err(`${m}\n`),
+        onError: (e) => io.err(`tidemark serve: ${(e as Error).stack ?? String(e)}\n`),
+      });
+      io.out(`tidemark serving ${db()} at ${running.url}\n`);
+      io.out(`  page ${running.url}/   metrics ${running.url}/metrics   ingest ${running.url.replace(/^http/, 'ws')}/ingest\n`);
+      await new Promise<void>((resolve) => {
+        const stop = (): void => {
+          process.off('SIGINT', stop);
+          process.off('SIGTERM', stop);
+          resolve();
+        };
+        process.on('SIGINT', stop);
+        process.on('SIGTERM', stop);
+      });
+      await running.close();
+      io.out('tidemark serve: stopped\n');
     });
 
   program

@@ -1,0 +1,90 @@
+/**
+ * Starting the server: safe defaults first (loopback unless a token is set), then listen. Used by
+ * `tidemark serve` and by `monitor(model, { serve: port })`.
+ */
+import { TidemarkError, TidemarkRangeError } from '../errors.js';
+import { openStore } from '../storage/sqlite-store.js';
+import type { Store } from '../storage/store.js';
+import { buildServer, type ServerOptions, type TidemarkServer } from './app.js';
+import { isLoopback } from './auth.js';
+
+export const DEFAULT_PORT = 7341;
+export const DEFAULT_HOST = '127.0.0.1';
+
+export interface StartOptions extends Omit<ServerOptions, 'store'> {
+  /** A store to serve; or `db`, a path the server opens (and closes). Default `$TIDEMARK_DB` or tidemark.db. */
+  store?: Store;
+  db?: string;
+  /** Default 7341; 0 picks a free port. */
+  port?: number;
+  /** Default 127.0.0.1. Any other address needs `token`, or `insecure`. */
+  host?: string;
+  /** Listen beyond loopback without a token. Default false. */
+  insecure?: boolean;
+  /** Told about the insecure choice. Default console.warn. */
+  onWarning?: (message: string) => void;
+}
+
+export interface RunningServer {
+  /** Base URL, e.g. http://127.0.0.1:7341 */
+  url: string;
+  host: string;
+  port: number;
+  server: TidemarkServer;
+  close(): Promise<void>;
+}
+
+export async function startServer(options: StartOptions = {}): Promise<RunningServer> {
+  const host = options.host ?? DEFAULT_HOST;
+  const port = options.port ?? DEFAULT_PORT;
+  if (!Number.isInteger(port) || port < 0 || port > 65535) {
+    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `port must be an integer from 0 to 65535; received ${String(port)}.`);
+  }
+  const token = options.token ?? null;
+  if (token !== null && token.length < 8) {
+    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', 'The token must be at least 8 characters long; a short one is easy to guess.');
+  }
+  if (!isLoopback(host) && token === null) {
+    if (options.insecure !== true) {
+      throw new TidemarkError(
+        'TIDEMARK_ERR_SERVE_UNSAFE',
+        `Refusing to listen on ${host} without a token: anyone who can reach this machine could read and write runs. Add --token T (or set TIDEMARK_TOKEN), or --insecure if the network is yours alone.`,
+      );
+    }
+    (options.onWarning ?? ((m: string) => console.warn(m)))(
+      `tidemark serve: listening on ${host} without a token (--insecure): anyone who can reach this machine can read and write runs.`,
+    );
+  }
+  const owned = options.store === undefined;
+  const store = options.store ?? openStore(options.db ?? process.env.TIDEMARK_DB ?? 'tidemark.db');
+  let built: TidemarkServer | null = null;
+  try {
+    built = await buildServer({ ...options, store, token });
+    await built.app.listen({ host, port });
+  } catch (e) {
+    if (built !== null) await built.close().catch(() => {});
+    if (owned) store.close();
+    const code = (e as { code?: string }).code;
+    if (code === 'EADDRINUSE' || code === 'EACCES' || code === 'EADDRNOTAVAIL') {
+      throw new TidemarkError('TIDEMARK_ERR_SERVE_LISTEN', `Cannot listen on ${host}:${port} (${code}). Pick another port, or stop what is using it.`, { cause: e });
+    }
+    throw e;
+  }
+  const server = built;
+  const address = server.app.server.address();
+  const actualPort = typeof address === 'object' && address !== null ? address.port : port;
+  const shownHost = host.includes(':') ? `[${host}]` : host;
+  let closed = false;
+  return {
+    url: `http://${shownHost}:${actualPort}`,
+    host,
+    port: actualPort,
+    server,
+    close: async () => {
+      if (closed) return;
+      closed = true;
+      await server.close();
+      if (owned) store.close();
+    },
+  };
+}
