@@ -585,6 +585,14 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
   const runId = randomUUID();
   // Built before anything starts, so a probe that does not fit the model is an error here, not in fit.
   const probe = opts.probe === null ? null : new Probe(model, view, opts.probe);
+  if (probe !== null && opts.probe?.every === 'auto') {
+    try {
+      await probe.warmUp();
+    } catch (e) {
+      probe.dispose();
+      throw e;
+    }
+  }
   const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean }, probe);
   const run: RunInfo = {
     id: runId,

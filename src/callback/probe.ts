@@ -87,7 +87,7 @@ export function resolveProbeOptions(value: unknown): ResolvedProbeOptions | null
       continue;
     }
     const integer = k !== 'noiseVariance';
-    const min = k === 'boundRows' ? 0 : k === 'every' ? 1 : 2;
+    const min = k === 'boundRows' || k === 'noiseVariance' ? 0 : k === 'every' ? 1 : 2;
     if (typeof v !== 'number' || !Number.isFinite(v) || (integer && !Number.isInteger(v)) || v < min || (k === 'noiseVariance' && v <= 0)) {
       throw new TidemarkRangeError(
         'TIDEMARK_ERR_OPTION_INVALID',
@@ -381,6 +381,18 @@ export class Probe {
       layers: Object.fromEntries(this.layers.map((l) => [l.name, { activation: l.activation, range: l.range, units: l.units }])),
       skipped: this.skipped,
     };
+  }
+
+  /**
+   * One uncounted pass before training: the first forward pass and estimates of a shape pay one-time
+   * costs (kernel set-up, JIT) several times a probe's steady cost, which would otherwise make the time
+   * budget wait far too long for the second probe.
+   */
+  async warmUp(): Promise<void> {
+    await this.measure();
+    this.calls = 0;
+    this.spentMs = 0;
+    this.lastMs = 0;
   }
 
   /** Runs the probe set through the model and computes every layer's values. */

@@ -127,7 +127,18 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     counters.rejected.set(code, (counters.rejected.get(code) ?? 0) + 1);
   };
 
+  const sendError = (reply: FastifyReply, e: unknown): FastifyReply => {
+    const p = publicError(e);
+    if (p.code === 'TIDEMARK_ERR_INTERNAL' || p.status >= 500) onError(e);
+    reject(p.code);
+    return reply.code(p.status).type('application/json').send(encodeJson({ error: { code: p.code, message: p.message } }));
+  };
+
   const app = Fastify({
+    // Errors of the router itself (an over-long or malformed URL) get our codes too.
+    frameworkErrors: (error, _req, reply) => {
+      sendError(reply, bad(`The request URL could not be read (${error.code === 'FST_ERR_MAX_PARAM_LENGTH' ? 'a path segment is too long' : 'malformed'}).`));
+    },
     logger: false,
     bodyLimit: options.bodyLimit ?? 1024 * 1024,
     // Unknown query parameters are refused, not silently ignored: a typo should say so.
@@ -137,13 +148,6 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
 
   const hub = new LiveHub({ bufferLimit: options.viewerBufferBytes ?? 1024 * 1024, heartbeatMs: options.heartbeatMs ?? 15_000 });
   const watcher = new StoreWatcher(store, hub, { intervalMs: options.pollMs ?? 250, onError });
-
-  const sendError = (reply: FastifyReply, e: unknown): FastifyReply => {
-    const p = publicError(e);
-    if (p.code === 'TIDEMARK_ERR_INTERNAL' || p.status >= 500) onError(e);
-    reject(p.code);
-    return reply.code(p.status).type('application/json').send({ error: { code: p.code, message: p.message } });
-  };
 
   app.setErrorHandler((e: Error & { validation?: unknown; statusCode?: number; code?: string }, _req, reply) => {
     if (e.validation !== undefined) return sendError(reply, bad(`${e.message}.`));

@@ -228,10 +228,18 @@ describe('probe cadence', () => {
     tf.dispose([x, xs, ys]);
   });
 
-  it('refuses a budget outside (0, 1] and an every that is neither a count nor auto', async () => {
+  it('accepts a small noise variance', async () => {
     const m = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
     const x = tf.zeros([8, 4]);
-    for (const probe of [{ budget: 0 }, { budget: 1.5 }, { every: 'often' }, { every: 2.5 }]) {
+    const mon = await monitor(m, { store: 'memory', probe: { x, y: new Int32Array(8), noiseVariance: 0.01 } });
+    await mon.close();
+    tf.dispose(x);
+  });
+
+  it('refuses a budget outside (0, 1], an every that is neither a count nor auto, and a noise variance ≤ 0', async () => {
+    const m = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
+    const x = tf.zeros([8, 4]);
+    for (const probe of [{ budget: 0 }, { budget: 1.5 }, { every: 'often' }, { every: 2.5 }, { noiseVariance: 0 }, { noiseVariance: -0.1 }]) {
       await expect(monitor(m, { store: 'memory', probe: { x, y: new Int32Array(8), ...probe } } as never)).rejects.toMatchObject({
         code: 'TIDEMARK_ERR_OPTION_INVALID',
       });
