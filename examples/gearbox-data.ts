@@ -44,6 +44,12 @@ export interface GearboxDataOptions {
   labelNoise?: number;
   /** Number of simulated machines in the fleet, each with its own gain and spectrum shape. Default 24. */
   machines?: number;
+  /**
+   * Standardise every band with the mean and spread of the first N measurements only. Default: all of
+   * them. Pass the number of rows the model may see, so a held-out tail does not shape the scaling; the
+   * first N rows then come out exactly as from a set of N samples with the same seed.
+   */
+  standardiseOn?: number;
 }
 
 /** A generated data set. */
@@ -217,6 +223,10 @@ export function makeGearboxData(options: GearboxDataOptions = {}): GearboxData {
   if (!(labelNoise >= 0 && labelNoise <= 1)) {
     throw new RangeError(`labelNoise must be in [0, 1], received ${labelNoise}`);
   }
+  const scaleRows = options.standardiseOn ?? samples;
+  if (!Number.isInteger(scaleRows) || scaleRows < 1 || scaleRows > samples) {
+    throw new RangeError(`standardiseOn must be an integer in [1, samples], received ${scaleRows}`);
+  }
 
   const rand = mulberry32(seed);
   const normal = normalFrom(rand);
@@ -241,15 +251,16 @@ export function makeGearboxData(options: GearboxDataOptions = {}): GearboxData {
     labels.push(recorded);
   }
 
-  // Standardise each band over the whole set so every input sees unit scale.
+  // Standardise each band (over the first `scaleRows` rows) so every input sees unit scale.
   const x = raw.map((row) => row.slice());
+  const scaling = raw.slice(0, scaleRows);
   for (let k = 0; k < GEARBOX_BANDS; k++) {
     let mean = 0;
-    for (const row of raw) mean += row[k] ?? 0;
-    mean /= samples;
+    for (const row of scaling) mean += row[k] ?? 0;
+    mean /= scaleRows;
     let variance = 0;
-    for (const row of raw) variance += ((row[k] ?? 0) - mean) ** 2;
-    const sd = Math.sqrt(variance / samples) || 1;
+    for (const row of scaling) variance += ((row[k] ?? 0) - mean) ** 2;
+    const sd = Math.sqrt(variance / scaleRows) || 1;
     for (const row of x) row[k] = ((row[k] ?? 0) - mean) / sd;
   }
 
@@ -259,6 +270,17 @@ export function makeGearboxData(options: GearboxDataOptions = {}): GearboxData {
     cleanLabels,
     classNames: [...GEARBOX_CLASSES],
     bandNames: Array.from({ length: GEARBOX_BANDS }, (_, k) => bandName(k)),
+  };
+}
+
+/** Rows `start` (inclusive) to `end` (exclusive) of a data set, e.g. to hold a tail out of training. */
+export function sliceGearboxData(data: GearboxData, start: number, end: number): GearboxData {
+  return {
+    x: data.x.slice(start, end),
+    labels: data.labels.slice(start, end),
+    cleanLabels: data.cleanLabels.slice(start, end),
+    classNames: data.classNames,
+    bandNames: data.bandNames,
   };
 }
 

@@ -1,7 +1,8 @@
 /**
  * `npm run demo`: trains the gearbox condition classifier with tidemark attached and prints, for each
  * window of minibatches, how strongly each layer's gradients agree, the gradient noise scale and how far
- * the weights have moved from where they started.
+ * the weights have moved from where they started. In the windows where the activation probe ran, it also
+ * prints each layer's information estimates on a held-out probe set.
  *
  *   npx tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--exit]
  */
@@ -10,13 +11,17 @@ import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import cliProgress from 'cli-progress';
 import { defaultStore, monitor, type LayerStats, type Marker, type WindowRecord } from '../src/index.js';
-import { buildGearboxModel, makeGearboxData, toTensors } from './gearbox-data.js';
+import { buildGearboxModel, makeGearboxData, sliceGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
 const BATCH_SIZE = 64;
 const SAMPLES = 4000;
 const VALIDATION_SPLIT = 0.2;
 const LABEL_NOISE = 0.08;
+/** Further measurements generated after the SAMPLES, never trained or validated on: the probe set. */
+const PROBE_ROWS = 1024;
+/** Equal-width bins per unit of the probe's binned estimates (tidemark's default, stated so the caution can cite it). */
+const PROBE_BINS = 30;
 /** Readings this close to the floor (in dB) are indistinguishable from pure minibatch noise. */
 const NEAR_FLOOR_DB = 3;
 
@@ -110,6 +115,14 @@ function describeMarker(m: Marker): string {
   if (m.kind === 'drift-start' || m.kind === 'diffusion-start') {
     return `${where}: ${m.kind === 'drift-start' ? 'drift' : 'diffusion'} since about step ${m.step} (known at step ${m.detected_step}, confidence ${m.confidence.toFixed(2)})`;
   }
+  if (m.kind === 'compression-start') {
+    const d = m.details;
+    const fall =
+      typeof d.peak_bits === 'number' && typeof d.current_bits === 'number'
+        ? `, peak ${d.peak_bits.toFixed(2)}, now ${d.current_bits.toFixed(2)} bits`
+        : '';
+    return `${where}: binned I(X;T) falling since about step ${m.step} (known at step ${m.detected_step}${fall}, confidence ${m.confidence.toFixed(2)}; an estimate)`;
+  }
   if (m.kind === 'advice') return `advice changed to ${String(m.details.verdict)}`;
   if (m.kind === 'stopped') return 'training stopped on the advice';
   return `${where}: ${m.kind} at step ${m.step}`;
@@ -133,6 +146,67 @@ function windowTable(w: WindowRecord, epochs: number, phases: Record<string, str
   return lines.join('\n');
 }
 
+// ---- probe block -------------------------------------------------------------------------------------
+
+/** Marks a value that says nothing: every probe example has its own bin (or, for the bounds, stays apart through the noise). */
+const SAT_MARK = '*';
+const SAT_LEGEND = `   ${SAT_MARK} every probe example in its own bin (bounds: all still apart through the noise): says nothing`;
+const PROBE_COLUMNS = { mi: 9, bounds: 16, limit: 10 };
+
+function isProbed(s: LayerStats): boolean {
+  return s.mi_input !== undefined;
+}
+
+function bits(value: number | undefined, saturated: boolean): string {
+  if (value === undefined || !Number.isFinite(value)) return '- ';
+  return `${value.toFixed(2)}${saturated ? SAT_MARK : ' '}`;
+}
+
+/** A layer's probe values on one line; `marked` is set when any of them carries the saturation mark. */
+function probeRow(name: string, s: LayerStats): { text: string; marked: boolean } {
+  const binnedSat = s.mi_saturated === 1;
+  const boundsSat = s.mi_bounds_saturated === 1;
+  const bounds =
+    s.mi_input_lower === undefined || s.mi_input_upper === undefined
+      ? '- '
+      : `${s.mi_input_lower.toFixed(2)}–${s.mi_input_upper.toFixed(2)}${boundsSat ? SAT_MARK : ' '}`;
+  const limit = s.act_saturation === undefined || !Number.isFinite(s.act_saturation) ? '-' : `${(100 * s.act_saturation).toFixed(1)}%`;
+  return {
+    text:
+      `   ${name.padEnd(COLUMNS.layer)}` +
+      bits(s.mi_input, binnedSat).padStart(PROBE_COLUMNS.mi) +
+      bits(s.mi_label, binnedSat).padStart(PROBE_COLUMNS.mi) +
+      bounds.padStart(PROBE_COLUMNS.bounds) +
+      limit.padStart(PROBE_COLUMNS.limit),
+    marked: binnedSat || boundsSat,
+  };
+}
+
+function probeHeader(title: string): string {
+  return (
+    `   ${title.padEnd(COLUMNS.layer)}` +
+    'I(X;T) '.padStart(PROBE_COLUMNS.mi) +
+    'I(T;Y) '.padStart(PROBE_COLUMNS.mi) +
+    'noisy I(X;T) '.padStart(PROBE_COLUMNS.bounds) +
+    'at limit'.padStart(PROBE_COLUMNS.limit)
+  );
+}
+
+/** The probe lines of a window, or none when the probe did not run in it. */
+function probeBlock(w: WindowRecord): string[] {
+  const probed = Object.entries(w.layers).filter(([, s]) => isProbed(s));
+  if (probed.length === 0) return [];
+  const lines = [probeHeader('probe, bits')];
+  let marked = false;
+  for (const [name, s] of probed) {
+    const r = probeRow(name, s);
+    lines.push(r.text);
+    marked ||= r.marked;
+  }
+  if (marked) lines.push(SAT_LEGEND);
+  return lines;
+}
+
 const LEGEND = [
   'Columns, per layer and per window of K minibatches:',
   '  SNR dB       mean gradient against its minibatch-to-minibatch spread; above 0 the minibatches',
@@ -144,6 +218,15 @@ const LEGEND = [
   '               random walk, lower when the wandering is confined',
   '  phase        drift or diffusion as the detector currently judges it (a statistical estimate)',
   '  near floor   within 3 dB of what pure noise would read for this window',
+  `In the windows where tidemark ran its activation probe, a probe block follows: ${PROBE_ROWS} held-out`,
+  'measurements run through the network, values in bits:',
+  `  I(X;T)       binned information between input and layer output (${PROBE_BINS} bins per unit)`,
+  '  I(T;Y)       binned information between layer output and the recorded condition',
+  '  noisy I(X;T) lower–upper bounds on what the output tells about the input once Gaussian noise',
+  "               is added to it (the noise's variance is in the run's stored config)",
+  '  at limit     share of activations pinned near the ends of their range (tanh ±1, softmax 0/1)',
+  `  ${SAT_MARK}            saturated: every probe example in its own bin, so the value says nothing (on the`,
+  '               bounds: the noise still leaves every example apart)',
 ].join('\n');
 
 // ---- the run ------------------------------------------------------------------------------------------
@@ -153,8 +236,13 @@ await tf.setBackend('cpu');
 await tf.ready();
 
 const started = Date.now();
-const data = makeGearboxData({ samples: SAMPLES, seed: args.seed, labelNoise: LABEL_NOISE });
+// The probe rows come after the SAMPLES and do not enter the scaling, so the first SAMPLES rows are the
+// same as without them; fit never sees the probe rows (validationSplit takes the tail of what it gets).
+const generated = makeGearboxData({ samples: SAMPLES + PROBE_ROWS, seed: args.seed, labelNoise: LABEL_NOISE, standardiseOn: SAMPLES });
+const data = sliceGearboxData(generated, 0, SAMPLES);
 const { xs, ys } = toTensors(tf, data);
+// Labelled with the recorded conditions, mislabelling included, as a held-out set would be in practice.
+const probeSet = toTensors(tf, sliceGearboxData(generated, SAMPLES, SAMPLES + PROBE_ROWS));
 const model = buildGearboxModel(tf, { seed: args.seed, learningRate: args.lr });
 const trainCount = Math.floor(SAMPLES * (1 - VALIDATION_SPLIT));
 const stepsPerEpoch = Math.ceil(trainCount / BATCH_SIZE);
@@ -193,6 +281,8 @@ const mon = await monitor(model, {
   run: 'gearbox-demo',
   store: outPath,
   window: 'auto',
+  // How often the probe runs is left to tidemark; the windows where it ran carry its values.
+  probe: { x: probeSet.xs, y: probeSet.ys, bins: PROBE_BINS },
   tags: { seed: String(args.seed), lr: String(args.lr), epochs: String(args.epochs) },
   onWarning: (w) => say(`tidemark warning [${w.code}]: ${w.message}`),
 });
@@ -200,7 +290,8 @@ const mon = await monitor(model, {
 say(
   [
     'Gearbox condition classifier: 32 order-band energies -> healthy | bearing wear | gear tooth crack | shaft misalignment',
-    `${SAMPLES} simulated measurements (seed ${args.seed}, ${Math.round(LABEL_NOISE * 100)}% mislabelled), ${trainCount} for training, the rest held out`,
+    `${SAMPLES} simulated measurements (seed ${args.seed}, ${Math.round(LABEL_NOISE * 100)}% mislabelled), ${trainCount} for training, the rest held out;`,
+    `  ${PROBE_ROWS} more, never trained on, form the activation probe set`,
     `network 32-24-16-8-4 tanh/softmax, plain SGD lr ${args.lr}, batch ${BATCH_SIZE}, ${args.epochs} epochs of ${stepsPerEpoch} steps`,
     '',
     LEGEND,
@@ -211,9 +302,21 @@ say(
 // Where each layer's current run of windows below 0 dB began; a single early dip does not count.
 const belowZeroSince = new Map<string, WindowRecord | null>();
 let markersShown = 0;
+/** The latest probe values per layer and the window they came from, for the summary. */
+const lastProbe = new Map<string, { stats: LayerStats; window: WindowRecord }>();
+let probeWindows = 0;
+let windowsSeen = 0;
 mon.onWindow((w) => {
+  windowsSeen++;
   const phases = mon.phase();
-  const lines = [windowTable(w, args.epochs, phases.layers, phases.network)];
+  const lines = [windowTable(w, args.epochs, phases.layers, phases.network), ...probeBlock(w)];
+  let probed = false;
+  for (const [name, s] of Object.entries(w.layers)) {
+    if (!isProbed(s)) continue;
+    lastProbe.set(name, { stats: s, window: w });
+    probed = true;
+  }
+  if (probed) probeWindows++;
   const markers = mon.markers();
   for (const m of markers.slice(markersShown)) lines.push(`   ▸ ${describeMarker(m)}`);
   markersShown = markers.length;
@@ -272,8 +375,7 @@ const heldOut = tf.tidy(() => {
   for (let i = 0; i < n; i++) if (predicted[i] === data.cleanLabels[trainCount + i]) truth++;
   return { truth: truth / n };
 });
-xs.dispose();
-ys.dispose();
+tf.dispose([xs, ys, probeSet.xs, probeSet.ys]);
 
 const seconds = ((Date.now() - started) / 1000).toFixed(1);
 const summary = [
@@ -300,6 +402,25 @@ summary.push(
     Object.entries(phase.layers)
       .map(([k, v]) => `${k} ${v}`)
       .join(', '),
+  '',
+  'Last probe values (bits), per layer:',
+  probeHeader('layer'),
+);
+let marked = false;
+for (const name of model.layers.map((l) => l.name)) {
+  const p = lastProbe.get(name);
+  if (p === undefined) {
+    summary.push(`   ${name.padEnd(COLUMNS.layer)}not probed`);
+    continue;
+  }
+  const r = probeRow(name, p.stats);
+  marked ||= r.marked;
+  summary.push(`${r.text}   step ${p.window.step}`);
+}
+if (marked) summary.push(SAT_LEGEND);
+summary.push(
+  `   probe ran in ${probeWindows} of ${windowsSeen} windows, on ${PROBE_ROWS} held-out measurements`,
+  '',
   `Stored ${mon.windows().length} windows of run ${mon.runId} in ${outPath}`,
   outPath.endsWith('.jsonl')
     ? `Read it back with: npx tidemark summary ${args.out}`
@@ -307,5 +428,9 @@ summary.push(
   '',
   'Caution: these numbers are statistical estimates from minibatches, not guarantees about the model;' +
     ' confirm any decision to stop training on held-out data.',
+  `The information values are estimates too: binned ones move with the bin count (${PROBE_BINS} per unit here)` +
+    ' and with the activation function, so a falling I(X;T) need not mean the layer discards input;' +
+    ' ReLU networks need not show compression at all (Saxe et al. 2018). A compression marker is no reason' +
+    ' on its own to stop or change training.',
 );
 console.log(summary.join('\n'));
