@@ -6,7 +6,6 @@
 export const ERROR_CODES = {
   TIDEMARK_ERR_OPTION_UNKNOWN: 'An option name is not recognised.',
   TIDEMARK_ERR_OPTION_INVALID: 'An option has a value of the wrong type or out of range.',
-  TIDEMARK_ERR_OPTION_UNSUPPORTED: 'An option names a feature this version does not provide yet.',
   TIDEMARK_ERR_MODEL_INVALID: 'The first argument of monitor() is not a tf.LayersModel.',
   TIDEMARK_ERR_MODEL_NOT_COMPILED: 'The model has no optimizer because it was not compiled.',
   TIDEMARK_ERR_MODEL_NO_TRAINABLE: 'The model has no trainable weights to measure.',

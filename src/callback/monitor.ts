@@ -10,7 +10,7 @@ import { travelExponent } from '../analysis/travel-exponent.js';
 import { PhaseDetector } from '../analysis/phase-detector.js';
 import { StopAdvisor, type Advice } from '../analysis/stop-advice.js';
 import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
-import { describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
+import { describeCause, ERROR_CODES, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
   LayerStats,
   Marker,
@@ -24,7 +24,9 @@ import { JsonlSink } from '../storage/jsonl-sink.js';
 import { MemorySink } from '../storage/memory-sink.js';
 import type { Sink } from '../storage/sink.js';
 import { openStore } from '../storage/sqlite-store.js';
+import { RemoteSink } from '../storage/remote-sink.js';
 import { StoreSink } from '../storage/store-sink.js';
+import { startServer, type RunningServer } from '../server/serve.js';
 import type { Accumulator, RawVariableWindow } from './accumulator.js';
 import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
@@ -81,6 +83,8 @@ export interface Monitor {
   warnings(): readonly MonitorWarning[];
   /** Writes what is buffered to the store. */
   flush(): Promise<void>;
+  /** With `serve`: the URL the run is served at (http://127.0.0.1:PORT), until close(); otherwise null. */
+  readonly url: string | null;
   /** Closes the last partial window (when it has ≥ 2 minibatches), restores the optimizer, closes the store. */
   close(): Promise<void>;
 }
@@ -88,8 +92,18 @@ export interface Monitor {
 function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
   if (typeof store !== 'string') return store;
   if (store === 'memory') return new MemorySink();
+  if (/^wss?:\/\//.test(store)) {
+    const token = process.env.TIDEMARK_TOKEN;
+    return new RemoteSink({ url: store, ...(token !== undefined && token !== '' && !/[?&]token=/.test(store) ? { token } : {}), onError });
+  }
   if (store.endsWith('.jsonl')) return new JsonlSink(store, { onError });
   return new StoreSink(() => openStore(store), { onError });
+}
+
+/** The stable code an error carries, if it is one of ours. */
+function codeOf(e: unknown): ErrorCode | null {
+  const code = (e as { code?: unknown } | null)?.code;
+  return typeof code === 'string' && code in ERROR_CODES ? (code as ErrorCode) : null;
 }
 
 function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {
@@ -138,6 +152,7 @@ class MonitorSession implements Monitor {
   private lastAdvice: Advice | null = null;
   private readonly model: { stopTraining: boolean };
   private readonly probe: Probe | null;
+  private served: RunningServer | null = null;
   private readonly compression = new CompressionDetector();
   /** performance.now() at the first step: the probe's time budget is a share of the time since. */
   private trainingStart: number | null = null;
@@ -156,7 +171,8 @@ class MonitorSession implements Monitor {
     this.name = opts.run;
     this.acc = chooseAccumulator(opts.accumulator, view);
     this.schedule = new WindowSchedule(opts.window);
-    this.sink = openSink(opts.store, (e) => this.report('TIDEMARK_ERR_SINK_WRITE', e));
+    // A sink's own coded reports (a lost server, a refused batch) keep their code.
+    this.sink = openSink(opts.store, (e) => this.report(codeOf(e) ?? 'TIDEMARK_ERR_SINK_WRITE', e));
     this.removeTap = installTap(view.optimizer, {
       before: (grads) => this.tapBefore(grads),
       after: () => this.tapAfter(),
@@ -219,6 +235,20 @@ class MonitorSession implements Monitor {
         }
       },
     };
+  }
+
+  get url(): string | null {
+    return this.served?.url ?? null;
+  }
+
+  /** Serves the store in-process; a port in use degrades to a warning (unless strict). */
+  async serve(port: number): Promise<void> {
+    try {
+      this.served = await startServer({ db: this.opts.store as string, port, host: '127.0.0.1', onError: (e) => this.report('TIDEMARK_ERR_INTERNAL', e) });
+      console.info(`tidemark: run '${this.name}' is served at ${this.served.url} until mon.close()`);
+    } catch (e) {
+      this.fail(codeOf(e) ?? 'TIDEMARK_ERR_SERVE_LISTEN', e, 'Training goes on; the run is stored, and `tidemark serve` can show it.');
+    }
   }
 
   get accumulator(): 'js' | 'tensor' {
@@ -555,6 +585,8 @@ class MonitorSession implements Monitor {
     this.write({ type: 'end', run: this.runId, status, step: this.step, time: Date.now() });
     this.acc.dispose();
     this.probe?.dispose();
+    const served = this.served;
+    this.served = null;
     const sink = this.sink;
     this.sink = null;
     if (sink !== null) {
@@ -572,6 +604,7 @@ class MonitorSession implements Monitor {
         );
       }
     }
+    if (served !== null) await served.close().catch((e: unknown) => this.report('TIDEMARK_ERR_INTERNAL', e));
   }
 }
 
@@ -611,6 +644,7 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
   };
   try {
     await session.start(run);
+    if (opts.serve !== null) await session.serve(opts.serve);
   } catch (e) {
     await session.close();
     throw e;

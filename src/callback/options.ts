@@ -52,6 +52,11 @@ export interface MonitorOptions {
    * `{ x, y }`, every `every` windows (default 5). Default: off. See {@link ProbeOptions}.
    */
   probe?: ProbeOptions;
+  /**
+   * Serve this run live on 127.0.0.1 at this port (0: any free port), in-process, until `close()`:
+   * the API, the live stream and /metrics (`mon.url`). Needs a SQLite store. Default: off.
+   */
+  serve?: number | false;
 }
 
 export interface ResolvedOptions {
@@ -67,6 +72,7 @@ export interface ResolvedOptions {
   readonly advice: Readonly<AdviceOptions & { act: boolean }>;
   readonly phases: Readonly<PhaseOptions>;
   readonly probe: ResolvedProbeOptions | null;
+  readonly serve: number | null;
 }
 
 const KNOWN = [
@@ -82,12 +88,10 @@ const KNOWN = [
   'advice',
   'phases',
   'probe',
+  'serve',
 ] as const;
 
 /** In design.md's contract, built in later versions. */
-const NOT_YET: Record<string, string> = {
-  serve: 'the in-process server (serve) is not available in this version',
-};
 
 /** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
 export function defaultStore(): string {
@@ -147,12 +151,6 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   if (typeof input !== 'object' || Array.isArray(input)) throw invalid('options', 'an object', input);
   const o = input as Record<string, unknown>;
   for (const key of Object.keys(o)) {
-    if (key in NOT_YET) {
-      throw new TidemarkTypeError(
-        'TIDEMARK_ERR_OPTION_UNSUPPORTED',
-        `Option '${key}': ${NOT_YET[key]}. Remove it to monitor gradients and weights.`,
-      );
-    }
     if (!(KNOWN as readonly string[]).includes(key)) {
       throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_UNKNOWN', `Unknown option '${key}'. ${hint(key)}`);
     }
@@ -166,12 +164,6 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const store = o.store ?? defaultStore();
   if (typeof store === 'string') {
     if (store.length === 0) throw invalid('store', "a file path, 'memory', or a Sink object", store);
-    if (/^wss?:\/\//.test(store)) {
-      throw new TidemarkTypeError(
-        'TIDEMARK_ERR_OPTION_UNSUPPORTED',
-        `Option 'store': sending records to a server (${store}) is not available in this version. Use a file path.`,
-      );
-    }
   } else if (!isSink(store)) {
     throw invalid('store', "a file path (SQLite, or .jsonl for JSON Lines), 'memory', or a Sink object", store);
   }
@@ -229,10 +221,26 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const phases = nestedOptions('phases', o.phases, numeric(PHASE_DEFAULTS));
   const probe = resolveProbeOptions(o.probe);
 
+  let serve: number | null = null;
+  if (o.serve !== undefined && o.serve !== false) {
+    if (typeof o.serve !== 'number' || !Number.isInteger(o.serve) || o.serve < 0 || o.serve > 65535) {
+      throw invalid('serve', 'a port number from 0 to 65535 (0: any free port), or false', o.serve);
+    }
+    const path = typeof store === 'string' ? store : null;
+    if (path === null || path === 'memory' || path.endsWith('.jsonl') || /^wss?:\/\//.test(path)) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_INVALID',
+        `Option 'serve' serves the run from its SQLite store, but 'store' is ${typeof store === 'string' ? `'${store}'` : 'a Sink object'}. Use a SQLite file (the default), or run 'tidemark serve' and send to it with store: 'ws://127.0.0.1:7341'.`,
+      );
+    }
+    serve = o.serve;
+  }
+
   return Object.freeze({
     advice: Object.freeze({ act: false, ...advice }) as ResolvedOptions['advice'],
     phases: Object.freeze(phases) as PhaseOptions,
     probe,
+    serve,
     run,
     store: store as string | Sink,
     window: window as WindowSetting,

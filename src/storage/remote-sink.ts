@@ -58,6 +58,8 @@ interface Batch {
   spill: { offset: number; length: number } | null;
   /** A spill write of this batch is queued. */
   spilling: boolean;
+  /** Sent at least once: from then on its seq and content are fixed. */
+  sent: boolean;
 }
 
 export class RemoteSink implements Sink {
@@ -287,10 +289,24 @@ export class RemoteSink implements Sink {
   }
 
   private addBatch(parts: string[]): void {
+    // While the link is down or behind, windows pile up one small batch each; a batch never sent may
+    // still grow, so a backlog drains in full batches instead of one frame (and one ack) per window.
+    const last = this.batches.get(this.nextSeq - 1);
+    if (last !== undefined && !last.sent && last.text !== null && last.spill === null && !last.spilling && last.seq > 0 && last.records + parts.length <= this.maxBatchRecords) {
+      const text = `${last.text.slice(0, -2)},${parts.join(',')}]}`;
+      const bytes = Buffer.byteLength(text);
+      if (bytes <= BATCH_TARGET_BYTES) {
+        this.memBytes += bytes - last.bytes;
+        last.text = text;
+        last.bytes = bytes;
+        last.records += parts.length;
+        return;
+      }
+    }
     const seq = this.nextSeq++;
     const text = `${this.framePrefix}${seq},"records":[${parts.join(',')}]}`;
     const bytes = Buffer.byteLength(text);
-    this.batches.set(seq, { seq, records: parts.length, bytes, text, spill: null, spilling: false });
+    this.batches.set(seq, { seq, records: parts.length, bytes, text, spill: null, spilling: false, sent: false });
     this.memBytes += bytes;
   }
 
@@ -609,6 +625,7 @@ export class RemoteSink implements Sink {
       const ws = this.ws;
       if (!this.canSend(conn, round) || ws === null) return;
       this.nextToSend = batch.seq + 1;
+      batch.sent = true;
       this.inflight.set(batch.seq, batch.bytes);
       this.inflightBytes += batch.bytes;
       // A failed send closes the socket; the batch is resent after reconnecting.

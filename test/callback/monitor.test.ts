@@ -43,14 +43,12 @@ describe('monitor() argument checks', () => {
     });
   });
 
-  it('says which planned options are not available yet', async () => {
-    await expect(monitor(model, { store: 'ws://127.0.0.1:7341' })).rejects.toMatchObject({
-      code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
+  it('refuses serve without a SQLite store to serve from, and a port out of range', async () => {
+    await expect(monitor(model, { store: 'memory', serve: 0 })).rejects.toMatchObject({
+      code: 'TIDEMARK_ERR_OPTION_INVALID',
+      message: expect.stringContaining('SQLite'),
     });
-    await expect(monitor(model, { serve: 7341 } as never)).rejects.toMatchObject({
-      code: 'TIDEMARK_ERR_OPTION_UNSUPPORTED',
-      message: expect.stringContaining('serve'),
-    });
+    await expect(monitor(model, { store: 'memory', serve: 70000 })).rejects.toMatchObject({ code: 'TIDEMARK_ERR_OPTION_INVALID' });
   });
 
   it('refuses an uncompiled model before training starts', async () => {

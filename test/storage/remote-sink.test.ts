@@ -222,6 +222,28 @@ describe('RemoteSink', () => {
     expect(codes(errors)).toEqual(['TIDEMARK_ERR_PAYLOAD_TOO_LARGE']);
   });
 
+  it('gathers records written while the server is away into full batches, not one frame per flush', async () => {
+    const server = await startServer();
+    const sink = makeSink({ url: server.url, maxBatchRecords: 50, closeTimeoutMs: 5000 });
+    await sink.open(run);
+    await until(() => sink.unacknowledged === 0, 'batch 0 is acknowledged');
+    await server.stop();
+    // Let the writer see the connection close (a stopped server's close reaches it a moment later).
+    await new Promise((r) => setTimeout(r, 200));
+    // 120 flushes of one record each, as a monitor flushes after every window.
+    const during = warnings(0, 120);
+    for (const r of during) {
+      sink.write(r);
+      await sink.flush();
+    }
+    await server.start();
+    await sink.close();
+    expect(server.records()).toEqual([{ type: 'run', run }, ...during]);
+    // Batch 0, then ceil(120 / 50) = 3 full batches: 4 seqs, where one batch per flush would make 121.
+    expect([...server.stored.keys()].sort((x, y) => x - y)).toEqual([0, 1, 2, 3]);
+    expect([...server.stored.values()].map((r) => r.length)).toEqual([1, 50, 50, 20]);
+  });
+
   it('resends unacknowledged batches after a server restart mid-run; none lost, none doubled', async () => {
     const server = await startServer();
     const errors: unknown[] = [];
