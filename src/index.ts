@@ -35,6 +35,12 @@ export type {
   SeriesKey,
   SeriesScope,
   StoredWarning,
+  WindowQuery,
 } from './storage/store.js';
 export { StoreSink, type StoreSinkOptions } from './storage/store-sink.js';
 export { exportRun, importJsonl, type ExportFormat } from './storage/export.js';
+export { RemoteSink, type RemoteSinkOptions } from './storage/remote-sink.js';
+export { startServer, DEFAULT_PORT, type StartOptions, type RunningServer } from './server/serve.js';
+export { buildServer, type ServerOptions, type TidemarkServer, type ServerCounters } from './server/app.js';
+export type { ProbeOptions } from './callback/probe.js';
+export * from './protocol/messages.js';

@@ -20,12 +20,18 @@ describe('public API', () => {
         'importJsonl',
         'monitor',
         'openStore',
+        'RemoteSink',
+        'startServer',
+        'buildServer',
+        'DEFAULT_PORT',
+        'PROTOCOL_VERSION',
+        'MAX_FRAME_BYTES',
       ].sort(),
     );
   });
 
   it('offers the pure functions of design.md under analysis', () => {
-    for (const name of ['gradientStats', 'snrFloor', 'travelExponent', 'fitPowerLaw', 'lttb', 'ShiftedMoments']) {
+    for (const name of ['gradientStats', 'snrFloor', 'travelExponent', 'fitPowerLaw', 'lttb', 'ShiftedMoments', 'detectPhases', 'adviseStop', 'binnedInformation', 'pairwiseInformationBounds', 'detectCompression']) {
       expect(typeof (api.analysis as Record<string, unknown>)[name]).toBe('function');
     }
   });
