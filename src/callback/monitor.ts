@@ -85,6 +85,8 @@ export interface Monitor {
   flush(): Promise<void>;
   /** With `serve`: the URL the run is served at (http://127.0.0.1:PORT), until close(); otherwise null. */
   readonly url: string | null;
+  /** With `probe`: how many probes ran during training and the time they took (ms); otherwise null. */
+  probeCost(): { calls: number; ms: number } | null;
   /** Closes the last partial window (when it has ≥ 2 minibatches), restores the optimizer, closes the store. */
   close(): Promise<void>;
 }
@@ -235,6 +237,10 @@ class MonitorSession implements Monitor {
         }
       },
     };
+  }
+
+  probeCost(): { calls: number; ms: number } | null {
+    return this.probe === null ? null : { ...this.probe.cost };
   }
 
   get url(): string | null {

@@ -32,6 +32,11 @@ export interface RemoteSinkOptions {
   backoff?: { initialMs?: number; maxMs?: number };
   /** Milliseconds between background flushes of records written without a flush. Default 1000. */
   flushIntervalMs?: number;
+  /**
+   * A connection on which sent batches get no reply for this long is given up and opened again (the
+   * batches are resent): a server that holds the socket but never answers must not stall the run. Default 30000.
+   */
+  ackTimeoutMs?: number;
   /** Told about connection failures, refused batches and unsent records; each kind once (see docs/errors.md). */
   onError?: (error: unknown) => void;
 }
@@ -74,6 +79,10 @@ export class RemoteSink implements Sink {
   private readonly initialMs: number;
   private readonly maxMs: number;
   private readonly flushIntervalMs: number;
+  private readonly ackTimeoutMs: number;
+  /** Since when sent batches have waited without any reply; null while nothing is in flight. */
+  private waitingSince: number | null = null;
+  private watchdog: NodeJS.Timeout | null = null;
   private readonly onError: (error: unknown) => void;
 
   private state: 'new' | 'open' | 'closing' | 'closed' = 'new';
@@ -138,6 +147,7 @@ export class RemoteSink implements Sink {
     this.initialMs = integerOption('backoff.initialMs', options.backoff?.initialMs, 250, 1);
     this.maxMs = integerOption('backoff.maxMs', options.backoff?.maxMs, Math.max(10_000, this.initialMs), this.initialMs);
     this.flushIntervalMs = integerOption('flushIntervalMs', options.flushIntervalMs, 1000, 1);
+    this.ackTimeoutMs = integerOption('ackTimeoutMs', options.ackTimeoutMs, 30_000, 1);
     this.spillDir = options.spillDir ?? tmpdir();
     this.onError = options.onError ?? (() => {});
   }
@@ -172,6 +182,20 @@ export class RemoteSink implements Sink {
     this.pending.unshift({ type: 'run', run });
     this.cutBatches();
     this.connect();
+    this.watchdog = setInterval(() => this.checkAcks(), Math.max(10, Math.floor(this.ackTimeoutMs / 4)));
+    this.watchdog.unref();
+  }
+
+  private checkAcks(): void {
+    if (this.waitingSince === null || this.ws === null || this.inflight.size === 0 || Date.now() - this.waitingSince < this.ackTimeoutMs) return;
+    this.waitingSince = null;
+    // Reported as this outage's one report; the close that follows does not report it again.
+    if (!this.outageReported) {
+      this.outageReported = true;
+      this.emit('TIDEMARK_ERR_REMOTE_CONNECT', `${this.shownUrl} did not answer for ${this.ackTimeoutMs} ms while batches waited; reconnecting to resend them.`);
+    }
+    // The close event reconnects and resends from the oldest unacknowledged batch.
+    this.ws.terminate();
   }
 
   write(record: SinkRecord): void {
@@ -519,6 +543,7 @@ export class RemoteSink implements Sink {
   private lostConnection(conn: number, failure: unknown, status: number | null, code: number | null): void {
     if (conn !== this.connId) return;
     this.ws = null;
+    this.waitingSince = null;
     this.inflight.clear();
     this.inflightBytes = 0;
     // The reconnect delay stands in for a pending retry delay.
@@ -563,6 +588,8 @@ export class RemoteSink implements Sink {
   private clearTimers(): void {
     for (const t of [this.reconnectTimer, this.retryTimer, this.flushTimer]) if (t !== null) clearTimeout(t);
     this.reconnectTimer = this.retryTimer = this.flushTimer = null;
+    if (this.watchdog !== null) clearInterval(this.watchdog);
+    this.watchdog = null;
   }
 
   private async closeSocket(graceMs: number): Promise<void> {
@@ -626,6 +653,7 @@ export class RemoteSink implements Sink {
       if (!this.canSend(conn, round) || ws === null) return;
       this.nextToSend = batch.seq + 1;
       batch.sent = true;
+      if (this.inflight.size === 0) this.waitingSince = Date.now();
       this.inflight.set(batch.seq, batch.bytes);
       this.inflightBytes += batch.bytes;
       // A failed send closes the socket; the batch is resent after reconnecting.
@@ -657,6 +685,7 @@ export class RemoteSink implements Sink {
   }
 
   private onReply(data: RawData): void {
+    this.waitingSince = Date.now();
     let msg: unknown;
     try {
       const text = Buffer.isBuffer(data) ? data.toString('utf8') : Array.isArray(data) ? Buffer.concat(data).toString('utf8') : Buffer.from(data).toString('utf8');

@@ -244,6 +244,27 @@ describe('RemoteSink', () => {
     expect([...server.stored.values()].map((r) => r.length)).toEqual([1, 50, 50, 20]);
   });
 
+  it('gives up a connection on which batches get no reply, reconnects and resends them', async () => {
+    const server = await startServer();
+    const errors: unknown[] = [];
+    const sink = makeSink({ url: server.url, ackTimeoutMs: 300, closeTimeoutMs: 5000, onError: (e) => errors.push(e) });
+    await sink.open(run);
+    await until(() => sink.unacknowledged === 0, 'batch 0 is acknowledged');
+    // The server stores but never answers: a half-dead peer.
+    server.holdAcks = true;
+    const recs = warnings(0, 5);
+    for (const r of recs) sink.write(r);
+    await sink.flush();
+    await until(() => server.urls.length === 2, 'a second connection after the ack timeout', 3000);
+    server.release();
+    await sink.close();
+    expect(server.records()).toEqual([{ type: 'run', run }, ...recs]);
+    expect(server.timesSent(1)).toBeGreaterThanOrEqual(2);
+    expect(sink.dropped).toBe(0);
+    expect(codes(errors)).toEqual(['TIDEMARK_ERR_REMOTE_CONNECT']);
+    expect(String((errors[0] as Error).message)).toContain('did not answer for 300 ms');
+  });
+
   it('resends unacknowledged batches after a server restart mid-run; none lost, none doubled', async () => {
     const server = await startServer();
     const errors: unknown[] = [];
