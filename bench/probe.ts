@@ -83,7 +83,7 @@ printTable(
 // ---------------------------------------------------------------------------------------------
 // 2. Share of training time at the default cadence
 
-async function trainSeconds(every: number | 'auto' | null, epochs: number): Promise<{ s: number; probes: number }> {
+async function trainSeconds(every: number | 'auto' | null, epochs: number): Promise<{ s: number; probes: number; probeMs: number }> {
   const model = buildReferenceModel();
   const mon = await monitor(model, {
     store: 'memory',
@@ -94,9 +94,10 @@ async function trainSeconds(every: number | 'auto' | null, epochs: number): Prom
   await model.fit(x, y, { epochs, batchSize: BATCH, shuffle: false, verbose: 0, callbacks: [mon.callback] });
   const s = (performance.now() - t0) / 1000;
   const probes = mon.windows().filter((w) => Object.values(w.layers)[0]!.mi_input !== undefined).length;
+  const probeMs = mon.probeCost()?.ms ?? 0;
   await mon.close();
   model.dispose();
-  return { s, probes };
+  return { s, probes, probeMs };
 }
 
 const shareRows: string[][] = [];
@@ -105,6 +106,7 @@ for (const epochs of quick ? [10] : [10, 40]) {
   const arms: (number | 'auto' | null)[] = [null, 'auto', 5];
   const times = new Map<number | 'auto' | null, number[]>(arms.map((a) => [a, []]));
   const probes = new Map<number | 'auto' | null, number>();
+  const shares = new Map<number | 'auto' | null, number[]>(arms.map((a) => [a, []]));
   for (let r = 0; r < rounds; r++) {
     progress(`training ${epochs} epochs, round ${r + 1} of ${rounds}`);
     // Rotate the order so drift in the machine's speed falls on every arm.
@@ -113,11 +115,13 @@ for (const epochs of quick ? [10] : [10, 40]) {
       const t = await trainSeconds(arm, epochs);
       times.get(arm)!.push(t.s);
       probes.set(arm, t.probes);
+      shares.get(arm)!.push(t.probeMs / (t.s * 1000));
     }
   }
   const base = median(times.get(null)!);
   for (const arm of arms.slice(1)) {
-    const share = median(times.get(arm)!) / base - 1;
+    const added = median(times.get(arm)!) / base - 1;
+    const own = median(shares.get(arm)!);
     const isDefault = arm === 'auto';
     shareRows.push([
       String(epochs),
@@ -126,19 +130,23 @@ for (const epochs of quick ? [10] : [10, 40]) {
       String(probes.get(arm)),
       base.toFixed(2),
       median(times.get(arm)!).toFixed(2),
-      `${(share * 100).toFixed(1)} %`,
-      isDefault ? (share <= TARGET ? 'PASS' : 'OVER') : '',
+      `${(added * 100).toFixed(1)} %`,
+      `${(own * 100).toFixed(2)} %`,
+      isDefault ? (own <= TARGET ? 'PASS' : 'OVER') : '',
     ]);
   }
 }
 printTable(
   `Table 2. Training the reference model with the monitor, without and with the probe (${SAMPLES} rows, default size/bins/boundRows), cpu, median s`,
-  ['epochs', 'steps', 'probe every', 'probes', 'no probe', 'with probe', 'added', `≤ ${TARGET * 100} %`],
+  ['epochs', 'steps', 'probe every', 'probes', 'no probe', 'with probe', 'added (wall)', 'probe share (own clock)', `≤ ${TARGET * 100} %`],
   shareRows,
   [
     `'auto' probes the first window, then whenever the probing time stays within ${PROBE_DEFAULTS.budget * 100} % of the training time so far.`,
     "A fixed 'every: 5' is shown for comparison: window 'auto' (8 steps growing ×1.25 to an epoch of 128 steps) makes",
     'it probe often in the first epoch and every 5 epochs later, whatever a probe costs.',
+    "'added (wall)' compares medians of separate trainings and swings by ±10 % on a shared machine; 'probe share' is the",
+    "probes' own time (mon.probeCost()) over the same training's wall time, the figure the target is checked on. The",
+    'warm-up probe at monitor() happens before training and is in neither.',
   ],
 );
 tf.dispose([x, y]);
