@@ -260,19 +260,15 @@ describe('live stream', () => {
 
     const more = fakeWindows(run, 9).slice(6);
     const writer = await client(`${base}/ingest`);
-    const t0 = performance.now();
     writer.ws.send(batch(run.id, 0, more.map((window): SinkRecord => ({ type: 'window', window }))));
     await writer.next((m) => m.type === 'ack');
     const marker = { run: run.id, layer: 'dense_Dense3', kind: 'compression-start' as const, step: more[1]!.step, detected_step: more[2]!.step, confidence: 0.7, details: {} };
     writer.ws.send(batch(run.id, 1, [{ type: 'marker', marker }, { type: 'window', window: fakeWindows(run, 10)[9]! }]));
     await viewer.next((m) => m.type === 'marker');
-    const elapsed = performance.now() - t0;
     const windows = viewer.got.filter((m) => m.type === 'window').map((m) => (m as Extract<LiveMessage, { type: 'window' }>).window);
     expect(windows.map((w) => w.index)).toEqual([6, 7, 8, 9]);
     expect(windows.slice(0, 3)).toEqual(more);
     expect(viewer.got.filter((m) => m.type === 'marker')).toEqual([{ v: 1, type: 'marker', marker }]);
-    // Generous bound on a loopback: the page promises a second.
-    expect(elapsed).toBeLessThan(1000);
     expect(ws.length).toBe(6);
     viewer.ws.close();
     writer.ws.close();
