@@ -16,12 +16,9 @@
  *     with 50 viewers.
  * Every file lives in a temporary directory under os.tmpdir() and is deleted at the end.
  */
-import { spawn, type ChildProcess } from 'node:child_process';
-import { mkdtempSync, readFileSync, rmSync } from 'node:fs';
-import { createServer } from 'node:net';
+import { mkdtempSync, rmSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
-import { fileURLToPath } from 'node:url';
 import { parseArgs } from 'node:util';
 import WebSocket from 'ws';
 import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
@@ -31,6 +28,8 @@ import { openStore } from '../src/storage/sqlite-store.js';
 import type { Store } from '../src/storage/store.js';
 import { printTable, progress } from './report.js';
 import { xorshift32 } from './seeded-data.js';
+import { windowPoints } from '../src/protocol/points.js';
+import { freePort, rssMb, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
 
 const USAGE = `usage: node --import tsx bench/server.ts [--quick]
   --quick   fewer windows, rounds and seconds (tables keep their shape; figures are noisier)`;
@@ -129,20 +128,6 @@ function benchWindows(run: RunInfo, count: number, seed: number): WindowRecord[]
   return out;
 }
 
-/** Numeric values of a window (what the server counts as points). */
-function pointsOf(w: WindowRecord): number {
-  let n = 0;
-  const count = (o: object): void => {
-    for (const v of Object.values(o)) {
-      if (typeof v === 'number') n++;
-      else if (v !== null && typeof v === 'object' && !Array.isArray(v)) count(v as object);
-    }
-  };
-  count(w.layers);
-  count(w.network);
-  count(w.logs);
-  return n;
-}
 
 const windowRecords = (ws: readonly WindowRecord[]): SinkRecord[] => ws.map((window) => ({ type: 'window', window }));
 
@@ -165,63 +150,11 @@ const fmtMs = (x: number): string => (Number.isNaN(x) ? '–' : x < 10 ? x.toFix
 const fmtRatio = (x: number): string => x.toFixed(2);
 const sleep = (ms: number): Promise<void> => new Promise((r) => setTimeout(r, ms));
 
-async function freePort(): Promise<number> {
-  const s = createServer();
-  await new Promise<void>((resolve) => s.listen(0, '127.0.0.1', resolve));
-  const port = (s.address() as { port: number }).port;
-  await new Promise<void>((resolve) => s.close(() => resolve()));
-  return port;
-}
-
-const ROOT = fileURLToPath(new URL('..', import.meta.url));
-const CLI = fileURLToPath(new URL('../src/cli/bin.ts', import.meta.url));
-
-interface Child {
-  proc: ChildProcess;
-  pid: number;
-  http: string;
-  ws: string;
-  stop(): Promise<void>;
-}
+type Child = ServerChild;
 
 /** `tidemark serve` in a child process, on a free loopback port. */
-async function startServerChild(db: string, extra: string[] = []): Promise<Child> {
-  const port = await freePort();
-  const proc = spawn(process.execPath, ['--import', 'tsx', CLI, 'serve', '--db', db, '--port', String(port), ...extra], { cwd: ROOT, stdio: ['ignore', 'pipe', 'pipe'] });
-  proc.stderr!.on('data', (d: Buffer) => process.stderr.write(`[server ${proc.pid}] ${String(d)}`));
-  await new Promise<void>((resolve, reject) => {
-    let out = '';
-    const t = setTimeout(() => reject(new Error(`server did not start: ${out}`)), 30_000);
-    proc.stdout!.on('data', (d: Buffer) => {
-      out += String(d);
-      if (out.includes('serving')) {
-        clearTimeout(t);
-        resolve();
-      }
-    });
-    proc.once('exit', (code) => {
-      clearTimeout(t);
-      reject(new Error(`server exited with ${code}: ${out}`));
-    });
-  });
-  return {
-    proc,
-    pid: proc.pid!,
-    http: `http://127.0.0.1:${port}`,
-    ws: `ws://127.0.0.1:${port}`,
-    stop: async () => {
-      if (proc.exitCode !== null || proc.signalCode !== null) return;
-      const exited = new Promise((r) => proc.once('exit', r));
-      proc.kill('SIGTERM');
-      await exited;
-    },
-  };
-}
-
-/** VmRSS of a process, MiB. */
-function rssMb(pid: number): number {
-  const m = /^VmRSS:\s+(\d+)\s+kB/m.exec(readFileSync(`/proc/${pid}/status`, 'utf8'));
-  return m === null ? Number.NaN : Number(m[1]) / 1024;
+async function serverChild(db: string, args: string[] = []): Promise<Child> {
+  return startServerChild(db, { port: await freePort(), args });
 }
 
 async function metric(child: Child, name: string): Promise<number> {
@@ -262,7 +195,7 @@ async function remoteIngest(child: Child, run: RunInfo, windows: readonly Window
 
 async function ingestTable(dir: string, s: Settings): Promise<void> {
   // Table 1 measures the write path, not the per-connection rate limit (200 batches/s by default).
-  const child = await startServerChild(join(dir, 'ingest-remote.db'), ['--ingest-rate', '1000000']);
+  const child = await serverChild(join(dir, 'ingest-remote.db'), ['--ingest-rate', '1000000']);
   const direct = openStore(join(dir, 'ingest-direct.db'));
   const errors: string[] = [];
   let dropped = 0;
@@ -290,7 +223,7 @@ async function ingestTable(dir: string, s: Settings): Promise<void> {
         // The same values for both paths (only the run id differs).
         const rWin = benchWindows(rRun, s.ingestWindows, 1000 + r);
         const dWin = benchWindows(dRun, s.ingestWindows, 1000 + r);
-        points = rWin.reduce((a, w) => a + pointsOf(w), 0);
+        points = rWin.reduce((a, w) => a + windowPoints(w), 0);
         let remoteMs = 0;
         let directMs = 0;
         const doRemote = async (): Promise<void> => {
@@ -421,7 +354,7 @@ async function openLatencyViewer(url: string, runId: string): Promise<LatencyVie
 }
 
 async function latencyTable(dir: string, s: Settings): Promise<void> {
-  const child = await startServerChild(join(dir, 'latency.db'));
+  const child = await serverChild(join(dir, 'latency.db'));
   const rows: string[][] = [];
   const perSecond = 20;
   const count = s.latencySeconds * perSecond;
@@ -496,7 +429,7 @@ async function latencyTable(dir: string, s: Settings): Promise<void> {
 // Table 3: server memory under 8 writers at 1,000 points/s each
 
 async function memoryRow(dir: string, s: Settings, viewerCount: number): Promise<string[]> {
-  const child = await startServerChild(join(dir, `memory-${viewerCount}.db`));
+  const child = await serverChild(join(dir, `memory-${viewerCount}.db`));
   const writers = 8;
   const rate = 1000;
   const errors: string[] = [];
@@ -542,7 +475,7 @@ async function memoryRow(dir: string, s: Settings, viewerCount: number): Promise
           r.sink.write({ type: 'window', window });
           await r.sink.flush();
           r.sent++;
-          r.points += pointsOf(window);
+          r.points += windowPoints(window);
         }
       }),
     );

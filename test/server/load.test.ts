@@ -12,9 +12,7 @@
  *
  * TIDEMARK_LOAD_SECONDS shortens the load for a local run; the default (and CI) is 60.
  */
-import { spawn, type ChildProcess } from 'node:child_process';
-import { mkdtempSync, readFileSync, rmSync } from 'node:fs';
-import { createServer } from 'node:net';
+import { mkdtempSync, rmSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { describe, expect, it } from 'vitest';
@@ -24,6 +22,8 @@ import type { RunInfo, WindowRecord } from '../../src/protocol/records.js';
 import { RemoteSink } from '../../src/storage/remote-sink.js';
 import { decodeJson, encodeJson } from '../../src/storage/sink.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
+import { windowPoints } from '../../src/protocol/points.js';
+import { freePort, rssMb, startServerChild } from '../helpers/server-child.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const SECONDS = Number(process.env.TIDEMARK_LOAD_SECONDS ?? 60);
@@ -40,55 +40,9 @@ const RSS_GROWTH = 1.15;
 const RSS_SLACK_MB = 16;
 const RSS_EVERY_MS = 2000;
 
-/** Numeric values of a window (layers, their variables, the network entry, the logs): what the server counts as points. */
-function pointsOf(w: WindowRecord): number {
-  let n = 0;
-  const count = (o: object): void => {
-    for (const v of Object.values(o)) {
-      if (typeof v === 'number') n++;
-      else if (v !== null && typeof v === 'object' && !Array.isArray(v)) count(v as object);
-    }
-  };
-  count(w.layers);
-  count(w.network);
-  count(w.logs);
-  return n;
-}
 
-async function freePort(): Promise<number> {
-  const s = createServer();
-  await new Promise<void>((resolve) => s.listen(0, '127.0.0.1', resolve));
-  const port = (s.address() as { port: number }).port;
-  await new Promise<void>((resolve) => s.close(() => resolve()));
-  return port;
-}
 
-function startChild(db: string, port: number, stderr: string[]): Promise<ChildProcess> {
-  const child = spawn(process.execPath, ['--import', 'tsx', 'src/cli/bin.ts', 'serve', '--db', db, '--port', String(port)], { stdio: ['ignore', 'pipe', 'pipe'] });
-  return new Promise((resolve, reject) => {
-    let out = '';
-    const t = setTimeout(() => reject(new Error(`server did not start: ${out}`)), 20_000);
-    child.stderr!.on('data', (d: Buffer) => {
-      stderr.push(String(d));
-      process.stderr.write(`[server ${child.pid}] ${String(d)}`);
-    });
-    child.stdout!.on('data', (d: Buffer) => {
-      out += String(d);
-      if (out.includes('serving')) {
-        clearTimeout(t);
-        resolve(child);
-      }
-    });
-    child.once('exit', (code) => reject(new Error(`server exited with ${code}: ${out}`)));
-  });
-}
 
-/** VmRSS of a process, MiB. */
-function rssMb(pid: number): number {
-  const m = /^VmRSS:\s+(\d+)\s+kB/m.exec(readFileSync(`/proc/${pid}/status`, 'utf8'));
-  if (m === null) throw new Error(`no VmRSS in /proc/${pid}/status`);
-  return Number(m[1]) / 1024;
-}
 
 const sleep = (ms: number): Promise<void> => new Promise((r) => setTimeout(r, ms));
 
@@ -157,8 +111,8 @@ describe('load: 8 remote writers and 50 live viewers', () => {
     const dir = mkdtempSync(join(tmpdir(), 'tidemark-load-'));
     const serverErr: string[] = [];
     const port = await freePort();
-    const child = await startChild(join(dir, 'load.db'), port, serverErr);
-    const pid = child.pid!;
+    const child = await startServerChild(join(dir, 'load.db'), { port, stderr: serverErr });
+    const pid = child.pid;
     const base = `http://127.0.0.1:${port}`;
     const viewers: Viewer[] = [];
     const writers: Writer[] = [];
@@ -168,7 +122,7 @@ describe('load: 8 remote writers and 50 live viewers', () => {
       const rssStart = rssMb(pid);
 
       // Enough windows for the whole load even if every window had the fewest points.
-      const perWindowMin = pointsOf(fakeWindows(fakeRun({ id: 'probe', layers: LAYERS }), 20).reduce((a, b) => (pointsOf(a) <= pointsOf(b) ? a : b)));
+      const perWindowMin = windowPoints(fakeWindows(fakeRun({ id: 'probe', layers: LAYERS }), 20).reduce((a, b) => (windowPoints(a) <= windowPoints(b) ? a : b)));
       const maxWindows = Math.ceil((SECONDS * POINTS_PER_SECOND) / perWindowMin) + 10;
       for (let i = 0; i < WRITERS; i++) {
         const run = fakeRun({ id: `load-run-${i}`, name: `load ${i}`, layers: LAYERS, started_at: Date.now() });
@@ -206,7 +160,7 @@ describe('load: 8 remote writers and 50 live viewers', () => {
           w.sink.write({ type: 'window', window });
           await w.sink.flush();
           w.sent++;
-          w.points += pointsOf(window);
+          w.points += windowPoints(window);
         }
       };
       const pacing = writers.map((w, i) => pace(w, (i * 100) / WRITERS));
@@ -295,8 +249,7 @@ describe('load: 8 remote writers and 50 live viewers', () => {
       for (const v of viewers) v.ws.close();
 
       // --- The store (read after the server stopped): every window exactly once, equal to what was written.
-      child.kill('SIGTERM');
-      await new Promise((r) => child.once('exit', r));
+      await child.stop();
       const store = openStore(join(dir, 'load.db'), { readonly: true });
       let windowsStored = 0;
       let pointsStored = 0;
@@ -307,7 +260,7 @@ describe('load: 8 remote writers and 50 live viewers', () => {
           expect(new Set(stored.map((x) => x.index)).size, w.run.id).toBe(stored.length);
           expect(stored, w.run.id).toEqual(w.windows.slice(0, w.sent));
           windowsStored += stored.length;
-          pointsStored += stored.reduce((s, x) => s + pointsOf(x), 0);
+          pointsStored += stored.reduce((s, x) => s + windowPoints(x), 0);
         }
         expect(store.runs().map((r) => [r.id, r.status, r.windows]).sort()).toEqual(writers.map((w) => [w.run.id, 'finished', w.sent]).sort());
       } finally {
@@ -340,9 +293,10 @@ describe('load: 8 remote writers and 50 live viewers', () => {
       if (sampler !== undefined) clearInterval(sampler);
       for (const v of viewers) v.ws.terminate();
       await Promise.all(writers.map((w) => w.sink.close()));
-      if (child.exitCode === null && child.signalCode === null) {
-        child.kill('SIGKILL');
-        await new Promise((r) => child.once('exit', r));
+      if (child.proc.exitCode === null && child.proc.signalCode === null) {
+        const exited = new Promise((r) => child.proc.once('exit', r));
+        child.proc.kill('SIGKILL');
+        await exited;
       }
       rmSync(dir, { recursive: true, force: true });
     }

@@ -6,13 +6,13 @@
  */
 import { spawn, spawnSync, type ChildProcess } from 'node:child_process';
 import { existsSync, mkdtempSync, rmSync, writeFileSync } from 'node:fs';
-import { createServer } from 'node:net';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { afterAll, describe, expect, it } from 'vitest';
 import { startServer, type RunningServer } from '../../src/server/serve.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
 import type { SinkRecord } from '../../src/protocol/records.js';
+import { freePort } from '../helpers/server-child.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const PROMETHEUS = ['/usr/bin/prometheus', '/usr/local/bin/prometheus'].find((p) => existsSync(p)) ?? null;
@@ -27,13 +27,6 @@ afterAll(async () => {
   rmSync(dir, { recursive: true, force: true });
 });
 
-async function freePort(): Promise<number> {
-  const s = createServer();
-  await new Promise<void>((resolve) => s.listen(0, '127.0.0.1', resolve));
-  const port = (s.address() as { port: number }).port;
-  await new Promise<void>((resolve) => s.close(() => resolve()));
-  return port;
-}
 
 async function seededServer(): Promise<{ server: RunningServer; runId: string; lastStep: number }> {
   const store = openStore(join(dir, `m-${servers.length}.db`));

@@ -4,9 +4,7 @@
  * while it trains. What the server stores is compared with what the monitor produced, and with a JSON
  * Lines copy written locally alongside.
  */
-import { spawn, type ChildProcess } from 'node:child_process';
 import { mkdtempSync, readFileSync, rmSync } from 'node:fs';
-import { createServer } from 'node:net';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
@@ -18,6 +16,7 @@ import { JsonlSink } from '../../src/storage/jsonl-sink.js';
 import { RemoteSink } from '../../src/storage/remote-sink.js';
 import { decodeJson, decodeRecord, encodeJson, type Sink } from '../../src/storage/sink.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
+import { freePort, startServerChild } from '../helpers/server-child.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-remote-'));
@@ -98,30 +97,7 @@ class TeeSink implements Sink {
   }
 }
 
-async function freePort(): Promise<number> {
-  const s = createServer();
-  await new Promise<void>((resolve) => s.listen(0, '127.0.0.1', resolve));
-  const port = (s.address() as { port: number }).port;
-  await new Promise<void>((resolve) => s.close(() => resolve()));
-  return port;
-}
 
-function startChild(db: string, port: number): Promise<ChildProcess> {
-  const child = spawn(process.execPath, ['--import', 'tsx', 'src/cli/bin.ts', 'serve', '--db', db, '--port', String(port)], { stdio: ['ignore', 'pipe', 'pipe'] });
-  return new Promise((resolve, reject) => {
-    let out = '';
-    const t = setTimeout(() => reject(new Error(`server did not start: ${out}`)), 20_000);
-    child.stderr!.on('data', (d: Buffer) => process.stderr.write(`[server ${child.pid}] ${String(d)}`));
-    child.stdout!.on('data', (d: Buffer) => {
-      out += String(d);
-      if (out.includes('serving')) {
-        clearTimeout(t);
-        resolve(child);
-      }
-    });
-    child.on('exit', (code) => reject(new Error(`server exited with ${code}: ${out}`)));
-  });
-}
 
 describe('a server killed with SIGKILL and restarted 5 times during a remote run', () => {
   it('ends with every window stored exactly once, equal to the local JSON Lines copy', async () => {
@@ -129,7 +105,7 @@ describe('a server killed with SIGKILL and restarted 5 times during a remote run
     const copy = join(dir, 'killed-copy.jsonl');
     // Every restart reuses the port, as a user restarting `tidemark serve` would.
     const probePort = await freePort();
-    let child = await startChild(db, probePort);
+    let child = await startServerChild(db, { port: probePort });
     const reports: string[] = [];
     const remote = new RemoteSink({
       url: `ws://127.0.0.1:${probePort}`,
@@ -146,19 +122,19 @@ describe('a server killed with SIGKILL and restarted 5 times during a remote run
     const killer = (async () => {
       while (kills < 5) {
         await new Promise((r) => setTimeout(r, 700));
-        child!.kill('SIGKILL');
-        await new Promise((r) => child!.once('exit', r));
+        const exited = new Promise((r) => child.proc.once('exit', r));
+        child.proc.kill('SIGKILL');
+        await exited;
         kills++;
         await new Promise((r) => setTimeout(r, 150));
-        child = await startChild(db, probePort);
+        child = await startServerChild(db, { port: probePort });
       }
     })();
     // Keep training until the five kills are done.
     while (kills < 5) await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await killer;
     await mon.close();
-    child.kill('SIGTERM');
-    await new Promise((r) => child!.once('exit', r));
+    await child.stop();
     expect(kills).toBe(5);
     expect(reports.filter((r) => !r.startsWith('TIDEMARK_ERR_REMOTE_CONNECT'))).toEqual([]);
     expect(warnings.filter((w) => !w.startsWith('TIDEMARK_ERR_REMOTE_CONNECT'))).toEqual([]);
