@@ -3,13 +3,18 @@
  * JSON schema per route), the live stream for viewers and the ingest endpoint for remote writers (ws, on
  * the same HTTP server), and `/metrics` in the OpenMetrics text format.
  */
+import { existsSync } from 'node:fs';
+import { readFile, stat } from 'node:fs/promises';
 import type { IncomingMessage } from 'node:http';
+import { resolve as resolvePath, sep } from 'node:path';
+import { fileURLToPath } from 'node:url';
 import type { Duplex } from 'node:stream';
 import { Ajv } from 'ajv';
 import Fastify, { type FastifyInstance, type FastifyReply, type FastifyRequest } from 'fastify';
 import { WebSocketServer, type RawData, type WebSocket } from 'ws';
 import { ERROR_CODES, TidemarkError, type ErrorCode } from '../errors.js';
 import { MAX_FRAME_BYTES, type BackfillMessage, type ErrorMessage, type IngestReply } from '../protocol/messages.js';
+import { windowPoints } from '../protocol/points.js';
 import type { SinkRecord } from '../protocol/records.js';
 import { exportLines, type ExportFormat } from '../storage/export.js';
 import { decodeJson, encodeJson } from '../storage/sink.js';
@@ -111,6 +116,33 @@ const PLACEHOLDER = `<!doctype html>
 runs are at <a href="api/runs">api/runs</a> and the metrics at <a href="metrics">metrics</a>.</p></body></html>
 `;
 
+/** The built page (`npm run build` bundles src/web here): dist/web, from src/server as from dist/server. */
+const WEB_DIR = resolvePath(fileURLToPath(new URL('../../dist/web/', import.meta.url)));
+
+const STATIC_TYPES: Record<string, string> = {
+  '.js': 'text/javascript; charset=utf-8',
+  '.css': 'text/css; charset=utf-8',
+  '.map': 'application/json; charset=utf-8',
+  '.html': 'text/html; charset=utf-8',
+  '.svg': 'image/svg+xml',
+  '.png': 'image/png',
+};
+
+/** A file of the page's bundle: only a regular file inside `${WEB_DIR}/static`, never a path that resolves out of it. */
+async function staticFile(name: string): Promise<{ body: Buffer; type: string } | null> {
+  const dir = resolvePath(WEB_DIR, 'static');
+  const file = resolvePath(dir, name);
+  if (!file.startsWith(dir + sep) || name.includes('\0')) return null;
+  const type = STATIC_TYPES[file.slice(file.lastIndexOf('.'))];
+  if (type === undefined) return null;
+  try {
+    if (!(await stat(file)).isFile()) return null;
+    return { body: await readFile(file), type };
+  } catch {
+    return null;
+  }
+}
+
 const bad = (message: string): TidemarkError => new TidemarkError('TIDEMARK_ERR_REQUEST_INVALID', message);
 
 /** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
@@ -167,8 +199,8 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
       reply.header('vary', 'Origin');
     }
     const path = req.url.split('?')[0]!;
-    // The health check and the page itself carry no data; everything else needs the token.
-    if (token === null || path === '/healthz' || path === '/') return;
+    // The health check, the page and its bundle (/static/…) carry no data; everything else needs the token.
+    if (token === null || path === '/healthz' || path === '/' || path.startsWith('/static/')) return;
     if (!tokenMatches(token, tokenOf(req.raw))) {
       await sendError(reply, new TidemarkError('TIDEMARK_ERR_UNAUTHORIZED', 'This server needs a token: send Authorization: Bearer <token> or ?token=<token>.'));
     }
@@ -179,7 +211,18 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
 
   app.get('/healthz', async () => ({ status: 'ok' }));
 
-  app.get('/', async (_req, reply) => reply.type('text/html; charset=utf-8').send(options.page ?? PLACEHOLDER));
+  // The page: `options.page` when given, else the built page in dist/web, else (not built) the placeholder.
+  const builtPage = existsSync(resolvePath(WEB_DIR, 'index.html')) ? resolvePath(WEB_DIR, 'index.html') : null;
+  app.get('/', async (_req, reply) => {
+    const page = options.page ?? (builtPage === null ? PLACEHOLDER : await readFile(builtPage, 'utf8').catch(() => PLACEHOLDER));
+    return reply.type('text/html; charset=utf-8').header('cache-control', 'no-cache').send(page);
+  });
+  app.get('/static/*', async (req, reply) => {
+    const name = (req.params as Record<string, string | undefined>)['*'] ?? '';
+    const found = await staticFile(name);
+    if (found === null) return sendError(reply, new TidemarkError('TIDEMARK_ERR_NOT_FOUND', `No file static/${name.slice(0, 100)}.`));
+    return reply.type(found.type).header('cache-control', 'no-cache').send(found.body);
+  });
 
   app.get(
     '/api/runs',
@@ -440,17 +483,6 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
 /** Numeric values in the windows of a batch: what `/metrics` counts as points ingested. */
 function countPoints(records: readonly SinkRecord[]): number {
   let n = 0;
-  const count = (o: object): void => {
-    for (const v of Object.values(o)) {
-      if (typeof v === 'number') n++;
-      else if (v !== null && typeof v === 'object' && !Array.isArray(v)) count(v as object);
-    }
-  };
-  for (const r of records) {
-    if (r.type !== 'window') continue;
-    count(r.window.layers);
-    count(r.window.network);
-    count(r.window.logs);
-  }
+  for (const r of records) if (r.type === 'window') n += windowPoints(r.window);
   return n;
 }

@@ -1,0 +1,163 @@
+/**
+ * The page in a real browser: Debian's chromium driven by playwright-core against a server on a temp
+ * SQLite store. Needs /usr/bin/chromium (CI installs it in .ci/run; there a missing browser fails the
+ * test). The page is built first when dist/web is missing.
+ */
+import { execFileSync } from 'node:child_process';
+import { existsSync, mkdtempSync, rmSync } from 'node:fs';
+import { tmpdir } from 'node:os';
+import { join } from 'node:path';
+import { fileURLToPath } from 'node:url';
+import { chromium, type Browser, type Page } from 'playwright-core';
+import { afterAll, beforeAll, describe, expect, it } from 'vitest';
+import type { Marker, SinkRecord } from '../../src/protocol/records.js';
+import { startServer, type RunningServer } from '../../src/server/serve.js';
+import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
+import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
+
+const CHROMIUM = '/usr/bin/chromium';
+const ROOT = fileURLToPath(new URL('../../', import.meta.url));
+const haveChromium = existsSync(CHROMIUM);
+const inCI = Boolean(process.env.CI);
+const SHOTS = process.env.TIDEMARK_SCREENSHOTS ?? null;
+
+if (!haveChromium && !inCI) {
+  console.warn(`test/web/page.e2e.test.ts skipped: no browser at ${CHROMIUM} (apt-get install chromium to run it).`);
+}
+
+/** Pixels of a canvas within `tol` of an RGB colour, fully opaque. */
+async function countColour(page: Page, selector: string, rgb: [number, number, number], tol = 40): Promise<number> {
+  return page.$eval(
+    selector,
+    (c, [r, g, b, t]) => {
+      const canvas = c as HTMLCanvasElement;
+      const data = canvas.getContext('2d')!.getImageData(0, 0, canvas.width, canvas.height).data;
+      let n = 0;
+      for (let i = 0; i < data.length; i += 4) {
+        if (data[i + 3]! > 200 && Math.abs(data[i]! - r!) <= t! && Math.abs(data[i + 1]! - g!) <= t! && Math.abs(data[i + 2]! - b!) <= t!) n++;
+      }
+      return n;
+    },
+    [...rgb, tol],
+  );
+}
+
+describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
+  let dir: string;
+  let store: SqliteStore;
+  let server: RunningServer;
+  let browser: Browser;
+  const run = fakeRun({ id: 'run-e2e-0001', name: 'gearbox-e2e', group: 'e2e', tags: { lr: '0.05' } });
+  const windows = fakeWindows(run, 13);
+  const advice: Marker = {
+    run: run.id,
+    layer: null,
+    kind: 'advice',
+    step: 80,
+    detected_step: 80,
+    confidence: 1,
+    details: { verdict: 'may-stop', reason: 'network SNR under its floor for 3 windows', source: 'online' },
+  };
+
+  beforeAll(async () => {
+    if (!haveChromium) throw new Error(`No browser at ${CHROMIUM}: CI must install Debian's chromium (see .ci/run).`);
+    if (!existsSync(join(ROOT, 'dist/web/index.html'))) execFileSync(process.execPath, [join(ROOT, 'scripts/build-web.mjs')], { stdio: 'inherit' });
+    dir = mkdtempSync(join(tmpdir(), 'tidemark-web-'));
+    store = openStore(join(dir, 'runs.db'));
+    store.beginRun(run);
+    store.append([
+      ...windows.slice(0, 12).map((window): SinkRecord => ({ type: 'window', window })),
+      ...[...fakeMarkers(run), advice].map((marker): SinkRecord => ({ type: 'marker', marker })),
+    ]);
+    server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
+    browser = await chromium.launch({
+      executablePath: CHROMIUM,
+      args: ['--headless', '--no-sandbox', '--disable-gpu', '--disable-background-networking', '--disable-component-update', '--no-first-run'],
+    });
+  });
+
+  afterAll(async () => {
+    await browser?.close();
+    await server?.close();
+    store?.close();
+    if (dir !== undefined) rmSync(dir, { recursive: true, force: true });
+  });
+
+  it('lists the run, draws its SNR chart, shows a new window live and keeps the view in the URL', async () => {
+    const page = await browser.newPage({ viewport: { width: 1200, height: 900 } });
+    const errors: string[] = [];
+    page.on('pageerror', (e) => errors.push(String(e)));
+    await page.goto(`${server.url}/`);
+    const row = page.locator(`tr[data-run="${run.id}"]`);
+    await row.waitFor({ timeout: 10_000 });
+    expect(await row.textContent()).toContain('gearbox-e2e');
+    expect(await row.textContent()).toContain('lr=0.05');
+
+    // The filter hides the run for a word it does not hold and shows it for its tag.
+    await page.fill('[data-testid="run-filter"]', 'no-such-thing');
+    expect(await row.count()).toBe(0);
+    await page.fill('[data-testid="run-filter"]', 'lr=0.05');
+    expect(await row.count()).toBe(1);
+    if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'runs.png'), fullPage: true });
+
+    await row.locator('a').click();
+    expect(new URL(page.url()).hash).toBe(`#/run/${run.id}`);
+    await page.locator('[data-testid="run-step"]', { hasText: '96' }).waitFor({ timeout: 10_000 });
+    const canvas = '[data-testid="snr-chart"] canvas';
+    await page.waitForSelector(canvas);
+    // Layer 1 is Okabe & Ito blue (#0072B2), layer 2 orange (#E69F00), the network black: the lines are drawn.
+    const blue = await countColour(page, canvas, [0x00, 0x72, 0xb2]);
+    const orange = await countColour(page, canvas, [0xe6, 0x9f, 0x00]);
+    expect(blue).toBeGreaterThan(50);
+    expect(orange).toBeGreaterThan(50);
+    expect(await page.textContent('[data-testid="advice"]')).toContain('may be near');
+    expect(await page.textContent('[data-testid="caution"]')).toContain('confirm any decision to stop training on held-out data');
+    const markerRows = await page.locator('[data-testid="markers"] tbody tr').allTextContents();
+    expect(markerRows.some((t) => t.includes('drift-start') && t.includes('dense_Dense1'))).toBe(true);
+    expect(markerRows).toHaveLength(4);
+    if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'run.png'), fullPage: true });
+
+    // A window written to the store reaches the open page without a reload.
+    const before = await page.evaluate(() => performance.getEntriesByType('navigation').length + location.href);
+    store.append([{ type: 'window', window: windows[12]! }]);
+    await page.locator('[data-testid="run-step"]', { hasText: '104' }).waitFor({ timeout: 5_000 });
+    expect(await page.evaluate(() => performance.getEntriesByType('navigation').length + location.href)).toBe(before);
+
+    // The link reopens the same view in a fresh page.
+    const again = await browser.newPage();
+    await again.goto(page.url());
+    expect(await again.locator('[data-testid="run-name"]', { hasText: 'gearbox-e2e' }).textContent({ timeout: 10_000 })).toBe('gearbox-e2e');
+    await again.close();
+    expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('says so when the run in the URL does not exist', async () => {
+    const page = await browser.newPage();
+    await page.goto(`${server.url}/#/run/no-such-run`);
+    const message = page.locator('[data-testid="run-error"]');
+    await message.waitFor({ timeout: 10_000 });
+    expect(await message.textContent()).toContain('No run matches “no-such-run”');
+    if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'bad-run.png'), fullPage: true });
+    await page.close();
+  });
+
+  it('passes a token given in the URL to the API and the live stream', async () => {
+    const guarded = await startServer({ store, port: 0, pollMs: 50, token: 'e2e-token-123456', onError: () => {} });
+    try {
+      const page = await browser.newPage();
+      await page.goto(`${guarded.url}/?token=e2e-token-123456#/run/${run.id}`);
+      await page.locator('[data-testid="run-name"]', { hasText: 'gearbox-e2e' }).waitFor({ timeout: 10_000 });
+      await page.goto(`${guarded.url}/?token=e2e-token-123456#/`);
+      await page.locator(`tr[data-run="${run.id}"]`).waitFor({ timeout: 10_000 });
+      // Without it, the API refuses and the page says why.
+      const bare = await browser.newPage();
+      await bare.goto(`${guarded.url}/`);
+      await bare.locator('.note', { hasText: 'Could not load the runs' }).waitFor({ timeout: 10_000 });
+      await bare.close();
+      await page.close();
+    } finally {
+      await guarded.close();
+    }
+  });
+});
