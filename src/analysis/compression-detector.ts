@@ -35,6 +35,7 @@
  */
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
 import { checkOptionNames } from './binned-information.js';
+import { RollingMedian, sortedMedian } from './rolling-median.js';
 import { Cusum } from './cusum.js';
 
 export interface CompressionOptions {
@@ -98,11 +99,8 @@ interface LayerTrack {
   /** Point index and step where the fall sum was last 0. */
   topIndex: number;
   topStep: number;
-  /** Last SCALE_WINDOW |second differences|, in arrival order (ring) and sorted. */
-  ring: Float64Array;
-  sorted: Float64Array;
-  /** Second differences seen. */
-  m: number;
+  /** The last SCALE_WINDOW |second differences|. */
+  diffs: RollingMedian;
 }
 
 function readOption(options: CompressionOptions, name: (typeof OPTION_NAMES)[number]): number {
@@ -122,28 +120,8 @@ function readOption(options: CompressionOptions, name: (typeof OPTION_NAMES)[num
   return v;
 }
 
-/** Inserts v into the sorted first n entries of a (which has room for n + 1). */
-function insertSorted(a: Float64Array, n: number, v: number): void {
-  let j = n - 1;
-  while (j >= 0 && a[j]! > v) {
-    a[j + 1] = a[j]!;
-    j--;
-  }
-  a[j + 1] = v;
-}
 
-/** Removes one entry equal to v from the sorted first n entries of a. */
-function removeSorted(a: Float64Array, n: number, v: number): void {
-  let j = 0;
-  while (j < n - 1 && a[j] !== v) j++;
-  for (; j < n - 1; j++) a[j] = a[j + 1]!;
-}
 
-/** Median of the sorted first n entries of a (n ≥ 1). */
-function median(a: Float64Array, n: number): number {
-  const h = n >> 1;
-  return n % 2 === 1 ? a[h]! : (a[h - 1]! + a[h]!) / 2;
-}
 
 export class CompressionDetector {
   private readonly o: Readonly<Required<CompressionOptions>>;
@@ -207,9 +185,7 @@ export class CompressionDetector {
         peak: x,
         topIndex: 0,
         topStep: step,
-        ring: new Float64Array(SCALE_WINDOW),
-        sorted: new Float64Array(SCALE_WINDOW + 1),
-        m: 0,
+        diffs: new RollingMedian(SCALE_WINDOW),
       };
       this.tracks.set(name, t);
     }
@@ -263,22 +239,16 @@ export class CompressionDetector {
   }
 
   private addSecondDifference(t: LayerTrack, v: number): void {
-    const have = Math.min(t.m, SCALE_WINDOW);
-    const slot = t.m % SCALE_WINDOW;
-    if (t.m >= SCALE_WINDOW) removeSorted(t.sorted, have, t.ring[slot]!);
-    insertSorted(t.sorted, t.m >= SCALE_WINDOW ? have - 1 : have, v);
-    t.ring[slot] = v;
-    t.m++;
+    t.diffs.push(v);
   }
 
   /** σ of successive differences: 1.4826·median|e|/√3 (long or deflated recent median), floored; the floor alone before any second difference. */
   private scale(t: LayerTrack): number {
-    const n = Math.min(t.m, SCALE_WINDOW);
-    if (n === 0) return this.o.minScaleBits;
-    const r = Math.min(t.m, RECENT_WINDOW);
+    if (t.diffs.size === 0) return this.o.minScaleBits;
+    const r = Math.min(t.diffs.pushed, RECENT_WINDOW);
     const recent = this.recent;
-    for (let i = 0; i < r; i++) recent[i] = t.ring[(t.m - 1 - i) % SCALE_WINDOW]!;
-    const med = Math.max(median(t.sorted, n), RECENT_WEIGHT * median(recent.subarray(0, r).sort(), r));
+    for (let i = 0; i < r; i++) recent[i] = t.diffs.recent(i);
+    const med = Math.max(t.diffs.median(), RECENT_WEIGHT * sortedMedian(recent.subarray(0, r).sort(), r));
     return Math.max(this.o.minScaleBits, (MAD_TO_SD * med) / Math.sqrt(3));
   }
 }

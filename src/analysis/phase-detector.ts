@@ -16,6 +16,7 @@
  * confidence: faster growth of the distance can come from a larger learning rate in diffusion
  * (methods.md §1.4), so it never marks drift by itself.
  */
+import { RollingMedian } from './rolling-median.js';
 import { Cusum } from './cusum.js';
 
 export type PhaseName = 'drift' | 'diffusion' | 'undetermined';
@@ -111,8 +112,8 @@ interface LayerTrack {
   /** Standardised, clipped inputs that went into the CUSUM. */
   zs: Float64Array;
   /** The last `noiseWindows` absolute successive differences of the level: in arrival order (ring) and sorted. */
-  diffRing: Float64Array;
-  diffSorted: Float64Array;
+  /** Median of the last `noiseWindows` absolute level differences. */
+  diffs: RollingMedian;
   /** Windows with a finite level seen. */
   n: number;
   /** Input index of the window at which the current phase was detected (−1 before any). */
@@ -120,22 +121,7 @@ interface LayerTrack {
   params: number;
 }
 
-/** Inserts v into the sorted first n entries of a (which has room for n + 1). */
-function insertSorted(a: Float64Array, n: number, v: number): void {
-  let j = n - 1;
-  while (j >= 0 && a[j]! > v) {
-    a[j + 1] = a[j]!;
-    j--;
-  }
-  a[j + 1] = v;
-}
 
-/** Removes one entry equal to v from the sorted first n entries of a. */
-function removeSorted(a: Float64Array, n: number, v: number): void {
-  let j = 0;
-  while (j < n - 1 && a[j] !== v) j++;
-  for (; j < n - 1; j++) a[j] = a[j + 1]!;
-}
 
 /** Floor-corrected SNR level of one layer in dB, clamped below. */
 export function correctedSnrDb(snr: number, floor: number, clampDb: number, lowest = 10 ** (clampDb / 10)): number {
@@ -186,8 +172,7 @@ export class PhaseDetector {
           centers: new Float64Array(this.cap),
           levels: new Float64Array(this.cap),
           zs: new Float64Array(this.cap),
-          diffRing: new Float64Array(this.noiseWindows),
-          diffSorted: new Float64Array(this.noiseWindows + 1),
+          diffs: new RollingMedian(this.noiseWindows),
           n: 0,
           changedAt: -1,
           params: l.params,
@@ -290,20 +275,9 @@ export class PhaseDetector {
     const o = this.o;
     const cap = this.cap;
     const w = this.noiseWindows;
-    if (i > 0) {
-      const d = Math.abs(t.levels[i % cap]! - t.levels[(i - 1) % cap]!);
-      const seen = i - 1; // differences before this one
-      const have = Math.min(seen, w);
-      const slot = seen % w;
-      if (seen >= w) removeSorted(t.diffSorted, have, t.diffRing[slot]!);
-      insertSorted(t.diffSorted, seen >= w ? have - 1 : have, d);
-      t.diffRing[slot] = d;
-    }
-    const n = Math.min(i, w);
-    if (n < 5) return o.noiseDb;
-    const a = t.diffSorted;
-    const m = n >> 1;
-    const med = n % 2 === 1 ? a[m]! : (a[m - 1]! + a[m]!) / 2;
+    if (i > 0) t.diffs.push(Math.abs(t.levels[i % cap]! - t.levels[(i - 1) % cap]!));
+    if (Math.min(i, w) < 5) return o.noiseDb;
+    const med = t.diffs.median();
     return Math.max(o.minNoiseDb, (1.4826 * med) / Math.SQRT2);
   }
 
