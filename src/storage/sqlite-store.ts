@@ -403,6 +403,8 @@ export class SqliteStore implements Store {
     p('hasWindows', 'SELECT 1 FROM windows WHERE run_id = ? LIMIT 1');
     p('windowsOf', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
       FROM windows WHERE run_id = ? ORDER BY step`);
+    p('windowsAfter', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+      FROM windows WHERE run_id = ? AND step > ? ORDER BY step`);
     p('markersOf', `SELECT layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = ?
       ORDER BY step, detected_step, id`);
     p('warningsOf', 'SELECT code, message, step, time FROM warnings WHERE run_id = ? ORDER BY time, id');
@@ -1000,11 +1002,13 @@ export class SqliteStore implements Store {
     if (points !== null && (!Number.isInteger(points) || points < 2)) throw invalidOption('windows', 'points', 'an integer ≥ 2', points);
     return this.read('windows', () => {
       this.requireRun(runId);
-      let rows = this.stmt('windowsOf').all(runId) as WindowDbRow[];
-      const total = rows.length;
-      if (after !== null) rows = rows.filter((r) => r.step > after);
-      if (points !== null && rows.length > points) rows = thinEvenly(rows, points);
-      const partial = rows.length < total;
+      // The windows after a step come from the (run, step) index: a live poll or a scrape reads only what is new.
+      let rows = (after === null ? this.stmt('windowsOf').all(runId) : this.stmt('windowsAfter').all(runId, after)) as WindowDbRow[];
+      let partial = after !== null;
+      if (points !== null && rows.length > points) {
+        rows = thinEvenly(rows, points);
+        partial = true;
+      }
       const stepsJson = JSON.stringify(rows.map((r) => r.step));
       const records = rows.map((r): WindowRecord => {
         const w: WindowRecord = {
