@@ -1,6 +1,6 @@
 /**
- * The tidemark page: a runs picker and a run view (header, gradient SNR per layer against step, markers,
- * stop advice), fed by the HTTP API and the `/live` WebSocket (docs/protocol.md). The view lives in the
+ * The tidemark page: a runs picker and a run view (header, stop advice, a phase strip over the gradient
+ * SNR per layer against step, weight travel, loss, noise scale, the information plane when a probe ran, markers), fed by the HTTP API and the `/live` WebSocket (docs/protocol.md). The view lives in the
  * URL fragment (`#/run/<id>`) so a link reopens it; a token given as `?token=` travels with every request.
  */
 import uPlot from 'uplot';
@@ -14,7 +14,13 @@ import {
   decodeJson,
   detailsText,
   formatNumber,
+  infoTrajectories,
   latestAdvice,
+  lossColumns,
+  noiseColumns,
+  noiseSentence,
+  phaseRows,
+  travelColumns,
   mergeRuns,
   parseRoute,
   runHash,
@@ -23,7 +29,8 @@ import {
   tokenFrom,
   type RunRowView,
 } from './model.js';
-import { NETWORK_STYLE, REFERENCE_GREY, layerStyle } from './palette.js';
+import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY, layerStyle } from './palette.js';
+import { LineChart, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, logValues, phaseLegend } from './charts.js';
 
 const token = tokenFrom(location.search, location.hash);
 const root = document.getElementById('app')!;
@@ -209,6 +216,46 @@ function runView(id: string): View {
   );
   const markerBody = el('tbody');
   const markersNote = el('p', { class: 'note' });
+  const stripBox = el('div', { class: 'strip', 'data-testid': 'phase-strip' });
+  const stripNote = el(
+    'p',
+    { class: 'note' },
+    'Phase of the network (top row) and of each layer, on the same step axis as the chart below, from the drift-start and diffusion-start markers. ' +
+      'A row is undetermined until its first marker. Phases are estimated after the fact and can be revised.',
+  );
+  const travelBox = el('div', { class: 'chart', 'data-testid': 'travel-chart' });
+  const travelBody = el('tbody');
+  const travelTable = el(
+    'table',
+    { class: 'exponents', 'data-testid': 'travel-exponents' },
+    el('thead', {}, el('tr', {}, el('th', {}, 'Layer'), el('th', {}, 'Latest travel exponent'))),
+    travelBody,
+  );
+  const travelNote = el(
+    'p',
+    { class: 'note', 'data-testid': 'travel-note' },
+    'Distance of the weights from where they started, against step, both on log axes. The grey reference lines have slope 1 (steady travel, travel ∝ step) ' +
+      'and slope ½ (travel ∝ √step, as a random walk would go), drawn through the network at the middle of the run. ' +
+      'The exponent is a local slope estimated from recent windows: an estimate, not a measurement.',
+  );
+  const lossBox = el('div', { class: 'chart small', 'data-testid': 'loss-chart' });
+  const lossNote = el('p', { class: 'note' }, 'Training loss as a mean over each window; validation loss at the windows where an epoch ended.');
+  const noiseBox = el('div', { class: 'chart small', 'data-testid': 'noise-chart' });
+  const noiseText = el('p', { class: 'advice-note', 'data-testid': 'noise-sentence' });
+  const infoSection = el('section', { class: 'info', 'data-testid': 'info-section', hidden: '' });
+  const infoBox = el('div', { class: 'plane', 'data-testid': 'info-chart' });
+  const infoLegendBox = el('div');
+  infoSection.append(
+    el('h3', {}, 'Information plane (probe windows)'),
+    el(
+      'p',
+      { class: 'note' },
+      'Per layer, the binned estimate of how much its activations say about the input (across) and about the label (up), joined in step order. ' +
+        'Hollow grey rings are windows where the estimate is saturated: says nothing, they are not measurements. Binned estimates depend on the bin count; read shapes, not exact values.',
+    ),
+    infoLegendBox,
+    infoBox,
+  );
   const main = el(
     'section',
     { class: 'run' },
@@ -217,9 +264,24 @@ function runView(id: string): View {
     facts,
     advice,
     caution,
+    el('h3', {}, 'Phase per layer (estimated)'),
+    phaseLegend(),
+    stripBox,
+    stripNote,
     el('h3', {}, 'Gradient SNR (dB) per layer'),
     chartBox,
     chartNote,
+    el('h3', {}, 'Weight travel per layer'),
+    travelBox,
+    travelNote,
+    travelTable,
+    el('h3', {}, 'Loss'),
+    lossBox,
+    lossNote,
+    el('h3', {}, 'Gradient noise scale (network)'),
+    noiseBox,
+    noiseText,
+    infoSection,
     el('h3', {}, 'Markers'),
     markersNote,
     el('table', { class: 'markers', 'data-testid': 'markers' }, el('thead', {}, el('tr', {}, ...['Step', 'Found at', 'Layer', 'Kind', 'Confidence', 'Details'].map((h) => el('th', {}, h)))), markerBody),
@@ -299,8 +361,10 @@ function runView(id: string): View {
         { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 },
       ],
       hooks: {
-        // The 0 dB line: mean gradient and its noise of equal size.
+        // The phase strip follows the chart's step axis, so it is redrawn with it.
         draw: [
+          (u) => drawStrip(u),
+          // The 0 dB line: mean gradient and its noise of equal size.
           (u) => {
             const y = u.valToPos(0, 'y', true);
             if (!Number.isFinite(y) || y < u.bbox.top || y > u.bbox.top + u.bbox.height) return;
@@ -325,6 +389,122 @@ function runView(id: string): View {
     plot = new uPlot(opts, data, chartBox);
   };
 
+  const layerNames = (): string[] => (info === null ? [] : info.layers.map((l) => l.name));
+
+  const drawStrip = (u: uPlot | null = plot): void => {
+    if (info === null) return;
+    if (u === null || windows.length === 0) {
+      stripBox.replaceChildren(el('p', { class: 'note' }, 'No windows yet.'));
+      return;
+    }
+    const min = u.scales.x?.min;
+    const max = u.scales.x?.max;
+    if (min === undefined || max === undefined || !(min > 0) || !(max > min)) return;
+    const ratio = uPlot.pxRatio;
+    drawPhaseStrip(stripBox, phaseRows(layerNames(), markers, min, max), {
+      width: u.width,
+      left: u.bbox.left / ratio,
+      plotWidth: u.bbox.width / ratio,
+      min,
+      max,
+    });
+  };
+
+  const travel = new LineChart(travelBox, 340);
+  const loss = new LineChart(lossBox, 260);
+  const noise = new LineChart(noiseBox, 260);
+  const xLog: uPlot.Scale = { time: false, distr: 3 };
+
+  const drawTravel = (): void => {
+    const cols = travelColumns(layerNames(), windows);
+    if (!cols.series.some((s) => s.some((v) => v !== null))) {
+      travel.destroy();
+      travelBox.replaceChildren(el('p', { class: 'note' }, 'No weight travel yet.'));
+    } else {
+      if (travel.plot === null) travelBox.replaceChildren();
+      travel.update([cols.steps, ...cols.series, cols.slope1, cols.slopeHalf], () => ({
+        scales: { x: xLog, y: { distr: 3 } },
+        axes: [
+          { label: 'step (log scale)', values: logValues },
+          { label: 'weight travel ‖w − w₀‖ (log scale)', values: logValues, size: 70 },
+        ],
+        series: [
+          { label: 'step' },
+          ...cols.labels.map((l, i) => lineSeries(l, i)),
+          { label: 'slope 1', stroke: REFERENCE_GREY, dash: [10, 5], width: 1 },
+          { label: 'slope ½', stroke: REFERENCE_GREY, dash: [2, 4], width: 1.5 },
+        ],
+      }));
+    }
+    travelBody.replaceChildren(
+      ...cols.labels.map((l, i) =>
+        el('tr', { 'data-layer': l }, el('td', {}, l), el('td', { class: 'num' }, cols.exponents[i] === null || cols.exponents[i] === undefined ? '– (too few windows)' : formatNumber(cols.exponents[i]))),
+      ),
+    );
+  };
+
+  const drawLoss = (): void => {
+    const cols = lossColumns(windows);
+    if (!cols.loss.some((v) => v !== null)) {
+      loss.destroy();
+      lossBox.replaceChildren(el('p', { class: 'note' }, 'No loss logged yet.'));
+      return;
+    }
+    if (loss.plot === null) lossBox.replaceChildren();
+    const data: uPlot.AlignedData = cols.hasVal ? [cols.steps, cols.loss, cols.valLoss] : [cols.steps, cols.loss];
+    loss.update(data, () => ({
+      scales: { x: xLog, y: { auto: true } },
+      axes: [{ label: 'step (log scale)', values: logValues }, { label: 'loss' }],
+      series: [
+        { label: 'step' },
+        { label: 'loss (training, window mean)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
+        ...(cols.hasVal ? [{ label: 'val_loss (end of epoch)', stroke: OKABE_ITO.vermillion, dash: [6, 3], width: 1.5, spanGaps: true, points: { show: true, size: 7, fill: OKABE_ITO.vermillion } }] : []),
+      ],
+    }));
+  };
+
+  const drawNoise = (): void => {
+    const cols = noiseColumns(windows);
+    noiseText.textContent = noiseSentence(cols);
+    if (!cols.noise.some((v) => v !== null)) {
+      noise.destroy();
+      noiseBox.replaceChildren(el('p', { class: 'note' }, 'No noise scale estimate yet.'));
+      return;
+    }
+    if (noise.plot === null) noiseBox.replaceChildren();
+    noise.update([cols.steps, cols.noise, cols.batch], () => ({
+      scales: { x: xLog, y: { distr: 3 } },
+      axes: [
+        { label: 'step (log scale)', values: logValues },
+        { label: 'examples (log scale)', values: logValues, size: 60 },
+      ],
+      series: [
+        { label: 'step' },
+        { label: 'B_noise (network, estimate)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
+        { label: 'batch size', stroke: REFERENCE_GREY, dash: [6, 4], width: 1.5 },
+      ],
+    }));
+  };
+
+  const drawInfo = (): void => {
+    const traj = infoTrajectories(layerNames(), windows);
+    if (traj.length === 0) {
+      infoSection.hidden = true;
+      return;
+    }
+    infoSection.hidden = false;
+    infoLegendBox.replaceChildren(infoLegend(traj));
+    drawInfoPlane(infoBox, traj, Math.max(320, Math.min(infoSection.clientWidth || 900, 900)));
+  };
+
+  const drawSeries = (): void => {
+    drawChart();
+    drawTravel();
+    drawLoss();
+    drawNoise();
+    drawInfo();
+  };
+
   const showError = (text: string): void => {
     failed = true;
     main.replaceChildren(back, el('h2', {}, 'Run not available'), el('p', { class: 'error', 'data-testid': 'run-error' }, text));
@@ -345,16 +525,18 @@ function runView(id: string): View {
       const keys = new Set(markers.map(markerKey));
       markers = [...markers, ...m.markers.filter((k) => !keys.has(markerKey(k)))];
       drawHeader();
-      drawChart();
+      drawSeries();
+      drawStrip();
       drawMarkers();
     } else if (m.type === 'window' && info !== null && m.window.run === info.id) {
       if (!windows.some((w) => w.step === m.window.step)) windows.push(m.window);
       info = { ...info, windows: Math.max(info.windows + 1, windows.length), last_step: m.window.step };
       drawHeader();
-      drawChart();
+      drawSeries();
     } else if (m.type === 'marker' && info !== null && m.marker.run === info.id) {
       markers.push(m.marker);
       drawHeader();
+      drawStrip();
       drawMarkers();
     } else if (m.type === 'gap' && info !== null && m.run === info.id) {
       subscribe();
@@ -371,6 +553,10 @@ function runView(id: string): View {
   const stopOpen = live.whenOpen(subscribe);
   const onResize = (): void => {
     if (plot !== null) plot.setSize({ width: Math.max(320, Math.min(chartBox.clientWidth, 1100)), height: 360 });
+    travel.resize();
+    loss.resize();
+    noise.resize();
+    drawInfo();
   };
   window.addEventListener('resize', onResize);
   return {
@@ -380,6 +566,9 @@ function runView(id: string): View {
       window.removeEventListener('resize', onResize);
       if (info !== null) live.send({ v: 1, type: 'unsubscribe', run: id });
       plot?.destroy();
+      travel.destroy();
+      loss.destroy();
+      noise.destroy();
     },
   };
 }

@@ -4,7 +4,7 @@
  * fragment and the stop advice sentence.
  */
 import type { RunSummary } from '../protocol/messages.js';
-import type { Marker, WindowRecord } from '../protocol/records.js';
+import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 
 /** Shown next to every verdict: the numbers are estimates and a stop decision needs held-out data. */
 export const CAUTION =
@@ -135,4 +135,193 @@ export function formatNumber(v: number): string {
   if (!Number.isFinite(v)) return String(v);
   if (Number.isInteger(v)) return String(v);
   return Math.abs(v) >= 100 || Math.abs(v) < 0.01 ? v.toPrecision(3) : v.toFixed(2);
+}
+
+// ---------------------------------------------------------------------------------------------
+// The further charts of the run view: phase strip, weight travel, loss, noise scale, information plane.
+
+/** Windows with a positive step, one per step, in step order. */
+export function orderedWindows(windows: readonly WindowRecord[]): WindowRecord[] {
+  const seen = new Set<number>();
+  return [...windows].filter((w) => w.step > 0 && !seen.has(w.step) && seen.add(w.step)).sort((a, b) => a.step - b.step);
+}
+
+export type PhaseName = 'drift' | 'diffusion' | 'undetermined';
+
+export interface PhaseSegment {
+  from: number;
+  to: number;
+  phase: PhaseName;
+}
+
+export interface PhaseRow {
+  /** Layer name, or NETWORK_LABEL. */
+  label: string;
+  segments: PhaseSegment[];
+  /** The drift-start / diffusion-start markers of this row, in step order. */
+  ticks: { step: number; kind: 'drift-start' | 'diffusion-start'; confidence: number }[];
+}
+
+/**
+ * One row per layer with the network first: the phase over [start, end], from the row's own
+ * `drift-start` / `diffusion-start` markers (a marker with layer null is the network's). Before its first
+ * marker a row is undetermined; each marker starts its phase at its (estimated) step.
+ */
+export function phaseRows(layerNames: readonly string[], markers: readonly Marker[], start: number, end: number): PhaseRow[] {
+  const labels = [NETWORK_LABEL, ...layerNames];
+  return labels.map((label) => {
+    const own = markers
+      .filter((m): m is Marker & { kind: 'drift-start' | 'diffusion-start' } => (m.kind === 'drift-start' || m.kind === 'diffusion-start') && (m.layer ?? NETWORK_LABEL) === label)
+      .sort((a, b) => a.step - b.step || a.detected_step - b.detected_step);
+    const segments: PhaseSegment[] = [];
+    let phase: PhaseName = 'undetermined';
+    let from = start;
+    for (const m of own) {
+      const at = Math.min(Math.max(m.step, start), end);
+      if (at > from) segments.push({ from, to: at, phase });
+      phase = m.kind === 'drift-start' ? 'drift' : 'diffusion';
+      from = Math.max(from, at);
+    }
+    if (end > from || segments.length === 0) segments.push({ from, to: Math.max(from, end), phase });
+    return { label, segments, ticks: own.map((m) => ({ step: m.step, kind: m.kind, confidence: m.confidence })) };
+  });
+}
+
+const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
+
+export interface TravelColumns {
+  /** Layers then NETWORK_LABEL. */
+  labels: string[];
+  steps: number[];
+  /** weight_travel per label; null where not positive and finite (a log axis cannot show it). */
+  series: (number | null)[][];
+  /** Reference lines through the anchor: travel ∝ step (slope 1) and ∝ √step (slope ½). */
+  slope1: (number | null)[];
+  slopeHalf: (number | null)[];
+  anchor: { step: number; travel: number } | null;
+  /** The latest non-null travel_exponent per label (null when none yet). */
+  exponents: (number | null)[];
+}
+
+/**
+ * Weight travel columns for a log-log chart. The reference lines pass through the network's travel at the
+ * window nearest the geometric middle of the step range, so both stay in view next to the data.
+ */
+export function travelColumns(layerNames: readonly string[], windows: readonly WindowRecord[]): TravelColumns {
+  const ws = orderedWindows(windows);
+  const labels = [...layerNames, NETWORK_LABEL];
+  const stat = (w: WindowRecord, l: string): LayerStats | undefined => (l === NETWORK_LABEL ? w.network : w.layers[l]);
+  const series = labels.map((l) => ws.map((w) => positive(stat(w, l)?.weight_travel)));
+  const steps = ws.map((w) => w.step);
+  const net = series[series.length - 1]!;
+  let anchor: TravelColumns['anchor'] = null;
+  if (steps.length > 0) {
+    const mid = Math.sqrt(steps[0]! * steps[steps.length - 1]!);
+    let best = Infinity;
+    steps.forEach((s, i) => {
+      const v = net[i];
+      const d = Math.abs(Math.log(s / mid));
+      if (v !== null && v !== undefined && d < best) {
+        best = d;
+        anchor = { step: s, travel: v };
+      }
+    });
+  }
+  const a = anchor as TravelColumns['anchor'];
+  const line = (k: number): (number | null)[] => steps.map((s) => (a === null ? null : a.travel * (s / a.step) ** k));
+  const exponents = labels.map((l) => {
+    for (let i = ws.length - 1; i >= 0; i--) {
+      const e = stat(ws[i]!, l)?.travel_exponent;
+      if (typeof e === 'number' && Number.isFinite(e)) return e;
+    }
+    return null;
+  });
+  return { labels, steps, series, slope1: line(1), slopeHalf: line(0.5), anchor: a, exponents };
+}
+
+export interface LossColumns {
+  steps: number[];
+  loss: (number | null)[];
+  /** val_loss where the window holds one (an epoch ended in it), null elsewhere. */
+  valLoss: (number | null)[];
+  hasVal: boolean;
+}
+
+export function lossColumns(windows: readonly WindowRecord[]): LossColumns {
+  const ws = orderedWindows(windows);
+  const valLoss = ws.map((w) => finite(w.logs.val_loss));
+  return { steps: ws.map((w) => w.step), loss: ws.map((w) => finite(w.logs.loss)), valLoss, hasVal: valLoss.some((v) => v !== null) };
+}
+
+export interface NoiseColumns {
+  steps: number[];
+  /** The network's noise_scale, null where unknown or not positive. */
+  noise: (number | null)[];
+  /** The window's mean batch size, null where unknown. */
+  batch: (number | null)[];
+}
+
+export function noiseColumns(windows: readonly WindowRecord[]): NoiseColumns {
+  const ws = orderedWindows(windows);
+  return { steps: ws.map((w) => w.step), noise: ws.map((w) => positive(w.network.noise_scale)), batch: ws.map((w) => positive(w.batch_size)) };
+}
+
+/** How many of the latest windows the noise-scale sentence takes the median of. */
+export const NOISE_RECENT = 5;
+
+/**
+ * One sentence on what the recent gradient noise scale implies for the batch size: B_noise estimates the
+ * batch size beyond which larger batches give diminishing returns (McCandlish et al. 2018).
+ */
+export function noiseSentence(cols: NoiseColumns): string {
+  const recent = cols.noise.filter((v): v is number => v !== null).slice(-NOISE_RECENT);
+  const lead = 'The gradient noise scale B_noise estimates the batch size beyond which larger batches give diminishing returns (McCandlish et al. 2018).';
+  if (recent.length === 0) return `${lead} No estimate yet: it needs a known batch size and a positive estimate of the squared mean gradient.`;
+  const sorted = [...recent].sort((a, b) => a - b);
+  const mid = sorted.length >> 1;
+  const median = sorted.length % 2 === 1 ? sorted[mid]! : (sorted[mid - 1]! + sorted[mid]!) / 2;
+  const batch = [...cols.batch].reverse().find((b) => b !== null) ?? null;
+  const est = `Median of the last ${recent.length} window${recent.length === 1 ? '' : 's'}: about ${formatNumber(median)} examples`;
+  if (batch === null) return `${lead} ${est}; the run's batch size is unknown, so there is nothing to compare it with. It is an estimate from minibatches.`;
+  const ratio = median / batch;
+  const verdict =
+    ratio > 2
+      ? `above the batch size of ${formatNumber(batch)}, so larger batches would likely still pay off`
+      : ratio < 0.5
+        ? `below the batch size of ${formatNumber(batch)}, so the batch is likely already past the point of full returns`
+        : `close to the batch size of ${formatNumber(batch)}`;
+  return `${lead} ${est}, ${verdict}. This is a noisy estimate; confirm any change of batch size on held-out data.`;
+}
+
+export interface InfoPoint {
+  step: number;
+  /** mi_input, bits. */
+  x: number;
+  /** mi_label, bits. */
+  y: number;
+  saturated: boolean;
+}
+
+export interface InfoTrajectory {
+  label: string;
+  /** Layer index in the run, for its colour. */
+  index: number;
+  points: InfoPoint[];
+}
+
+/** Per layer, the probe's (mi_input, mi_label) in step order; layers with no probe value are left out. Empty when no probe ran. */
+export function infoTrajectories(layerNames: readonly string[], windows: readonly WindowRecord[]): InfoTrajectory[] {
+  const ws = orderedWindows(windows);
+  const out: InfoTrajectory[] = [];
+  layerNames.forEach((label, index) => {
+    const points: InfoPoint[] = [];
+    for (const w of ws) {
+      const s = w.layers[label];
+      const x = finite(s?.mi_input);
+      const y = finite(s?.mi_label);
+      if (x !== null && y !== null) points.push({ step: w.step, x, y, saturated: s?.mi_saturated === 1 });
+    }
+    if (points.length > 0) out.push({ label, index, points });
+  });
+  return out;
 }

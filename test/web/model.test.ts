@@ -1,6 +1,23 @@
 import { describe, expect, it } from 'vitest';
 import type { Marker } from '../../src/protocol/records.js';
-import { CAUTION, adviceSentence, decodeJson, latestAdvice, mergeRuns, parseRoute, runHash, runMatches, snrColumns, tokenFrom } from '../../src/web/model.js';
+import {
+  CAUTION,
+  adviceSentence,
+  decodeJson,
+  infoTrajectories,
+  latestAdvice,
+  lossColumns,
+  mergeRuns,
+  noiseColumns,
+  noiseSentence,
+  parseRoute,
+  phaseRows,
+  runHash,
+  runMatches,
+  snrColumns,
+  tokenFrom,
+  travelColumns,
+} from '../../src/web/model.js';
 import { layerStyle, OKABE_ITO } from '../../src/web/palette.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
@@ -84,5 +101,101 @@ describe('page model', () => {
     expect(layerStyle(7).stroke).toBe(OKABE_ITO.blue);
     expect(layerStyle(7).dash).not.toEqual([]);
     expect(new Set(Array.from({ length: 7 }, (_, i) => layerStyle(i).stroke)).size).toBe(7);
+  });
+
+  it('builds phase rows from drift-start / diffusion-start markers, network first, undetermined before the first', () => {
+    const mk = (layer: string | null, kind: Marker['kind'], step: number, detected_step = step): Marker => ({ run: 'r', layer, kind, step, detected_step, confidence: 0.8, details: {} });
+    const rows = phaseRows(
+      ['a', 'b', 'c'],
+      [mk('a', 'diffusion-start', 300, 320), mk('a', 'drift-start', 20, 40), mk(null, 'diffusion-start', 500), mk('b', 'nonfinite', 50), mk('c', 'drift-start', 2)],
+      10,
+      1000,
+    );
+    expect(rows.map((r) => r.label)).toEqual(['(network)', 'a', 'b', 'c']);
+    expect(rows[0]!.segments).toEqual([
+      { from: 10, to: 500, phase: 'undetermined' },
+      { from: 500, to: 1000, phase: 'diffusion' },
+    ]);
+    expect(rows[1]!.segments).toEqual([
+      { from: 10, to: 20, phase: 'undetermined' },
+      { from: 20, to: 300, phase: 'drift' },
+      { from: 300, to: 1000, phase: 'diffusion' },
+    ]);
+    expect(rows[1]!.ticks.map((t) => t.kind)).toEqual(['drift-start', 'diffusion-start']);
+    // A nonfinite marker is not a phase change; a marker before the axis start clamps to it.
+    expect(rows[2]!.segments).toEqual([{ from: 10, to: 1000, phase: 'undetermined' }]);
+    expect(rows[2]!.ticks).toEqual([]);
+    expect(rows[3]!.segments).toEqual([{ from: 10, to: 1000, phase: 'drift' }]);
+  });
+
+  it('gives weight travel columns with slope-1 and slope-½ lines through the network anchor, and the latest exponents', () => {
+    const run = fakeRun({ id: 'r' });
+    const ws = fakeWindows(run, 9, 3, false);
+    const cols = travelColumns(
+      run.layers.map((l) => l.name),
+      ws,
+    );
+    expect(cols.steps).toEqual([8, 16, 24, 32, 40, 48, 56, 64, 72]);
+    expect(cols.labels.at(-1)).toBe('(network)');
+    expect(cols.series[0]![2]).toBeCloseTo(ws[2]!.layers.dense_Dense1!.weight_travel, 12);
+    // Anchor: the window nearest the geometric middle sqrt(8·72) = 24.
+    expect(cols.anchor).toEqual({ step: 24, travel: ws[2]!.network.weight_travel });
+    const a = cols.anchor!;
+    expect(cols.slope1[8]! / a.travel).toBeCloseTo(72 / 24, 12);
+    expect(cols.slopeHalf[8]! / a.travel).toBeCloseTo(Math.sqrt(72 / 24), 12);
+    expect(cols.slope1[2]).toBeCloseTo(a.travel, 12);
+    expect(cols.exponents[0]).toBe(ws[8]!.layers.dense_Dense1!.travel_exponent);
+    expect(cols.exponents[3]).toBe(ws[8]!.network.travel_exponent);
+    // Too few windows: no exponent yet; zero travel cannot sit on a log axis.
+    const early = travelColumns(['dense_Dense1'], [{ ...ws[0]!, layers: { dense_Dense1: { ...ws[0]!.layers.dense_Dense1!, weight_travel: 0 } } }]);
+    expect(early.exponents).toEqual([null, null]);
+    expect(early.series[0]).toEqual([null]);
+  });
+
+  it('gives loss columns with val_loss only where an epoch ended', () => {
+    const ws = fakeWindows(fakeRun({ id: 'r' }), 12);
+    const cols = lossColumns(ws);
+    expect(cols.hasVal).toBe(true);
+    expect(cols.valLoss.filter((v) => v !== null)).toEqual([1.1 / 10]);
+    expect(cols.valLoss[9]).toBeCloseTo(0.11, 12);
+    expect(cols.loss[6]).toBeNull(); // NaN in window 6
+    expect(cols.loss[0]).toBeCloseTo(ws[0]!.logs.loss!, 12);
+    expect(lossColumns(ws.slice(0, 5)).hasVal).toBe(false);
+  });
+
+  it('states what the noise scale implies against the batch size, as an estimate', () => {
+    const ws = fakeWindows(fakeRun({ id: 'r' }), 6, 2, false);
+    const set = (v: (number | null)[], batch: number | null) => ws.map((w, i) => ({ ...w, batch_size: batch, network: { ...w.network, noise_scale: v[i] ?? null } }));
+    const high = noiseSentence(noiseColumns(set([1, 500, 400, 300, 200, 100], 32)));
+    expect(high).toContain('McCandlish et al. 2018');
+    expect(high).toContain('about 300 examples');
+    expect(high).toContain('above the batch size of 32');
+    expect(high).toMatch(/estimate/);
+    expect(noiseSentence(noiseColumns(set([10, 10, 10, 10, 10, 10], 64)))).toContain('below the batch size of 64');
+    expect(noiseSentence(noiseColumns(set([40, 40, 40, 40, 40, 40], 32)))).toContain('close to the batch size of 32');
+    expect(noiseSentence(noiseColumns(set([null, null, null, null, null, null], 32)))).toContain('No estimate yet');
+    expect(noiseSentence(noiseColumns(set([5, 5, 5, 5, 5, 5], null)))).toContain('batch size is unknown');
+    const cols = noiseColumns(set([-1, 0, 3, null, 5, 6], 32));
+    expect(cols.noise).toEqual([null, null, 3, null, 5, 6]);
+  });
+
+  it('collects the information trajectory per layer in step order, flagging saturated windows', () => {
+    const run = fakeRun({ id: 'r' });
+    const ws = fakeWindows(run, 4, 1, false);
+    expect(infoTrajectories(['dense_Dense1'], ws)).toEqual([]);
+    const probed = ws.map((w, i) => ({
+      ...w,
+      layers: { ...w.layers, dense_Dense2: { ...w.layers.dense_Dense2!, mi_input: 5 - i, mi_label: 0.1 * i, mi_saturated: i === 0 ? 1 : 0 } },
+    }));
+    const t = infoTrajectories(
+      run.layers.map((l) => l.name),
+      [probed[3]!, probed[1]!, probed[0]!, probed[2]!],
+    );
+    expect(t).toHaveLength(1);
+    expect(t[0]!.label).toBe('dense_Dense2');
+    expect(t[0]!.index).toBe(1);
+    expect(t[0]!.points.map((p) => p.step)).toEqual([8, 16, 24, 32]);
+    expect(t[0]!.points.map((p) => p.saturated)).toEqual([true, false, false, false]);
+    expect(t[0]!.points[2]).toEqual({ step: 24, x: 3, y: 0.2 * 1, saturated: false });
   });
 });

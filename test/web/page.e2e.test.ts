@@ -10,7 +10,7 @@ import { join } from 'node:path';
 import { fileURLToPath } from 'node:url';
 import { chromium, type Browser, type Page } from 'playwright-core';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
-import type { Marker, SinkRecord } from '../../src/protocol/records.js';
+import type { Marker, SinkRecord, WindowRecord } from '../../src/protocol/records.js';
 import { startServer, type RunningServer } from '../../src/server/serve.js';
 import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
@@ -42,13 +42,40 @@ async function countColour(page: Page, selector: string, rgb: [number, number, n
   );
 }
 
+/** Probe values on the even windows and the last one; windows 0 and 2 saturated, so they must be drawn hollow. */
+function withProbe(ws: WindowRecord[]): WindowRecord[] {
+  return ws.map((w) => {
+    if (w.index % 2 === 1 && w.index !== 13) return w;
+    const layers = Object.fromEntries(
+      Object.entries(w.layers).map(([name, s], j) => [
+        name,
+        { ...s, mi_input: 6 - 0.2 * w.index - j, mi_label: 0.2 + 0.06 * w.index + 0.1 * j, mi_saturated: w.index <= 2 ? 1 : 0, act_saturation: 0.1, probe_rows: 256 },
+      ]),
+    );
+    return { ...w, layers };
+  });
+}
+
+/** Pixels of a canvas that are not blank (any opaque pixel that is not near white). */
+async function inkPixels(page: Page, selector: string): Promise<number> {
+  return page.$eval(selector, (c) => {
+    const canvas = c as HTMLCanvasElement;
+    const data = canvas.getContext('2d')!.getImageData(0, 0, canvas.width, canvas.height).data;
+    let n = 0;
+    for (let i = 0; i < data.length; i += 4) if (data[i + 3]! > 200 && data[i]! + data[i + 1]! + data[i + 2]! < 600) n++;
+    return n;
+  });
+}
+
 describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
   let dir: string;
   let store: SqliteStore;
   let server: RunningServer;
   let browser: Browser;
   const run = fakeRun({ id: 'run-e2e-0001', name: 'gearbox-e2e', group: 'e2e', tags: { lr: '0.05' } });
-  const windows = fakeWindows(run, 13);
+  const windows = withProbe(fakeWindows(run, 14));
+  // A second run with no probe values: its information plane stays hidden.
+  const bare = fakeRun({ id: 'run-e2e-0002', name: 'no-probe-e2e' });
   const advice: Marker = {
     run: run.id,
     layer: null,
@@ -69,6 +96,8 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
       ...windows.slice(0, 12).map((window): SinkRecord => ({ type: 'window', window })),
       ...[...fakeMarkers(run), advice].map((marker): SinkRecord => ({ type: 'marker', marker })),
     ]);
+    store.beginRun(bare);
+    store.append(fakeWindows(bare, 6).map((window): SinkRecord => ({ type: 'window', window })));
     server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
     browser = await chromium.launch({
       executablePath: CHROMIUM,
@@ -129,6 +158,92 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(await again.locator('[data-testid="run-name"]', { hasText: 'gearbox-e2e' }).textContent({ timeout: 10_000 })).toBe('gearbox-e2e');
     await again.close();
     expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('draws the phase strip, weight travel, loss, noise scale and information plane, and updates them live', async () => {
+    const page = await browser.newPage({ viewport: { width: 1200, height: 900 } });
+    const errors: string[] = [];
+    page.on('pageerror', (e) => errors.push(String(e)));
+    await page.goto(`${server.url}/#/run/${run.id}`);
+    await page.locator('[data-testid="run-step"]', { hasText: '104' }).waitFor({ timeout: 10_000 });
+
+    // Phase strip: the network row on top, then one row per layer, from the stored markers.
+    const strip = '[data-testid="phase-strip"] svg';
+    await page.waitForSelector(strip);
+    expect(await page.$$eval(`${strip} g.phase-row`, (gs) => gs.map((g) => g.getAttribute('data-layer')))).toEqual(['(network)', 'dense_Dense1', 'dense_Dense2', 'dense_Dense3']);
+    const phasesOf = (layer: string): Promise<string[]> => page.$$eval(`${strip} g.phase-row[data-layer="${layer}"] rect.phase-seg`, (rs) => rs.map((r) => r.getAttribute('data-phase')!));
+    expect(await phasesOf('(network)')).toEqual(['undetermined', 'diffusion']);
+    expect(await phasesOf('dense_Dense1')).toEqual(['drift']); // its drift-start is at step 8, the first window
+    expect(await phasesOf('dense_Dense2')).toEqual(['undetermined']); // its only marker is a nonfinite one
+    expect(await page.locator(`${strip} line.phase-tick`).count()).toBe(2);
+    // Segments have width and sit in the SNR chart's plotting area: the diffusion band ends at the right edge.
+    const widths = await page.$$eval(`${strip} rect.phase-seg`, (rs) => rs.map((r) => Number(r.getAttribute('width'))));
+    expect(widths.every((w) => w >= 1)).toBe(true);
+    const legend = (await page.textContent('[data-testid="phase-legend"]')) ?? '';
+    for (const word of ['drift', 'diffusion', 'undetermined']) expect(legend).toContain(word);
+
+    // Weight travel: layer lines (blue, orange), grey reference slopes, and the exponent per layer.
+    const travel = '[data-testid="travel-chart"] canvas';
+    await page.waitForSelector(travel);
+    expect(await countColour(page, travel, [0x00, 0x72, 0xb2])).toBeGreaterThan(50);
+    expect(await countColour(page, travel, [0xe6, 0x9f, 0x00])).toBeGreaterThan(50);
+    expect(await countColour(page, travel, [0x77, 0x77, 0x77], 12)).toBeGreaterThan(50);
+    const exps = await page.locator('[data-testid="travel-exponents"] tbody tr').allTextContents();
+    expect(exps).toHaveLength(4);
+    expect(exps.every((t) => /\d\.\d\d/.test(t))).toBe(true);
+    expect(await page.textContent('[data-testid="travel-chart"] .u-legend')).toContain('slope ½');
+
+    // Loss: the training line in black and the one val_loss point (window 9) in vermillion.
+    const loss = '[data-testid="loss-chart"] canvas';
+    await page.waitForSelector(loss);
+    expect(await countColour(page, loss, [0, 0, 0], 30)).toBeGreaterThan(50);
+    expect(await countColour(page, loss, [0xd5, 0x5e, 0x00], 30)).toBeGreaterThan(10);
+
+    // Noise scale: drawn, with the sentence comparing it to the batch size and calling it an estimate.
+    const noise = '[data-testid="noise-chart"] canvas';
+    await page.waitForSelector(noise);
+    expect(await countColour(page, noise, [0, 0, 0], 30)).toBeGreaterThan(50);
+    const sentence = (await page.textContent('[data-testid="noise-sentence"]')) ?? '';
+    expect(sentence).toContain('McCandlish et al. 2018');
+    expect(sentence).toContain('batch size of 32');
+    expect(sentence).toMatch(/estimate/);
+
+    // Information plane: 7 probe windows per layer so far (0, 2, …, 12), the 2 saturated ones (0, 2) hollow.
+    const info = '[data-testid="info-section"]';
+    expect(await page.isVisible(info)).toBe(true);
+    expect(await page.locator(`${info} circle.info-point`).count()).toBe(21);
+    expect(await page.locator(`${info} circle.info-point.saturated`).count()).toBe(6);
+    expect(await page.$$eval(`${info} circle.info-point.saturated`, (cs) => cs.every((c) => c.getAttribute('fill') === '#ffffff'))).toBe(true);
+    expect(await page.locator(`${info} g.info-layer`).count()).toBe(3);
+    expect(await page.textContent(info)).toContain('saturated: says nothing');
+    if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'run-charts.png'), fullPage: true });
+
+    // Live: a new probe window and a new marker reach every drawing without a reload.
+    const inkBefore = await inkPixels(page, travel);
+    store.append([
+      { type: 'window', window: windows[13]! },
+      { type: 'marker', marker: { run: run.id, layer: 'dense_Dense3', kind: 'drift-start', step: 64, detected_step: 112, confidence: 0.8, details: {} } },
+    ]);
+    await page.locator('[data-testid="run-step"]', { hasText: '112' }).waitFor({ timeout: 5_000 });
+    await page.waitForFunction(() => document.querySelectorAll('[data-testid="info-section"] circle.info-point').length === 24, undefined, { timeout: 5_000 });
+    await page.waitForFunction(() => document.querySelector('[data-testid="phase-strip"] g.phase-row[data-layer="dense_Dense3"] rect[data-phase="drift"]') !== null, undefined, { timeout: 5_000 });
+    expect(await inkPixels(page, travel)).toBeGreaterThan(0);
+    expect(inkBefore).toBeGreaterThan(0);
+    expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('hides the information plane for a run without probe values', async () => {
+    const page = await browser.newPage({ viewport: { width: 1200, height: 900 } });
+    await page.goto(`${server.url}/#/run/${bare.id}`);
+    await page.locator('[data-testid="run-step"]', { hasText: '48' }).waitFor({ timeout: 10_000 });
+    await page.waitForSelector('[data-testid="travel-chart"] canvas');
+    expect(await page.isVisible('[data-testid="info-section"]')).toBe(false);
+    expect(await page.locator('[data-testid="info-section"] circle').count()).toBe(0);
+    // No markers: every row of the strip is undetermined.
+    const phases = await page.$$eval('[data-testid="phase-strip"] rect.phase-seg', (rs) => rs.map((r) => r.getAttribute('data-phase')));
+    expect(phases).toEqual(['undetermined', 'undetermined', 'undetermined', 'undetermined']);
     await page.close();
   });
 

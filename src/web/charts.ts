@@ -1,0 +1,259 @@
+/**
+ * The run view's drawings beyond the SNR chart: the phase strip and the information plane (SVG, drawn
+ * here), and a small holder for the uPlot line charts that redraws in place while the series stay the same.
+ */
+import uPlot from 'uplot';
+import { formatNumber, NETWORK_LABEL, type InfoTrajectory, type PhaseName, type PhaseRow } from './model.js';
+import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY, layerStyle } from './palette.js';
+
+const SVG_NS = 'http://www.w3.org/2000/svg';
+
+function svg<K extends keyof SVGElementTagNameMap>(tag: K, attrs: Record<string, string | number> = {}, ...children: (Node | string)[]): SVGElementTagNameMap[K] {
+  const e = document.createElementNS(SVG_NS, tag);
+  for (const [k, v] of Object.entries(attrs)) e.setAttribute(k, String(v));
+  e.append(...children);
+  return e;
+}
+
+/** Fill of each phase; diffusion is also hatched and undetermined pale, so the phases differ without colour. */
+export const PHASE_FILL: Record<PhaseName, string> = {
+  drift: OKABE_ITO.orange,
+  diffusion: OKABE_ITO.skyBlue,
+  undetermined: '#e4e4e4',
+};
+
+export const PHASE_WORDS: Record<PhaseName, string> = {
+  drift: 'drift: the mean gradient outweighs its noise, weights move steadily',
+  diffusion: 'diffusion: noise dominates, weights wander',
+  undetermined: 'undetermined: no phase marker yet',
+};
+
+/** The horizontal placement shared with the SNR chart: CSS pixels of its plotting area and its step range. */
+export interface StripAxis {
+  width: number;
+  left: number;
+  plotWidth: number;
+  min: number;
+  max: number;
+}
+
+const ROW = 18;
+const GAP = 3;
+
+/** Draws one band per row (network on top) coloured by phase along the log step axis, with marker ticks. */
+export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis: StripAxis): void {
+  const lmin = Math.log10(axis.min);
+  const span = Math.log10(axis.max) - lmin || 1;
+  const x = (s: number): number => axis.left + (axis.plotWidth * (Math.log10(Math.max(s, axis.min)) - lmin)) / span;
+  const height = rows.length * (ROW + GAP) + 2;
+  const root = svg('svg', { width: axis.width, height, viewBox: `0 0 ${axis.width} ${height}`, role: 'img', 'aria-label': 'Phase of each layer against step' });
+  const hatch = svg(
+    'pattern',
+    { id: 'tm-diffusion-hatch', width: 6, height: 6, patternUnits: 'userSpaceOnUse', patternTransform: 'rotate(45)' },
+    svg('rect', { width: 6, height: 6, fill: PHASE_FILL.diffusion }),
+    svg('line', { x1: 0, y1: 0, x2: 0, y2: 6, stroke: '#ffffff', 'stroke-width': 2 }),
+  );
+  root.append(svg('defs', {}, hatch));
+  rows.forEach((row, i) => {
+    const y = 1 + i * (ROW + GAP);
+    const g = svg('g', { class: 'phase-row', 'data-layer': row.label });
+    for (const seg of row.segments) {
+      const x0 = x(seg.from);
+      const w = Math.max(x(seg.to) - x0, 1);
+      const fill = seg.phase === 'diffusion' ? 'url(#tm-diffusion-hatch)' : PHASE_FILL[seg.phase];
+      g.append(
+        svg(
+          'rect',
+          { class: `phase-seg ${seg.phase}`, 'data-phase': seg.phase, x: x0, y, width: w, height: ROW, fill },
+          svg('title', {}, `${row.label}: ${seg.phase} from step ${formatNumber(seg.from)} to ${formatNumber(seg.to)}`),
+        ),
+      );
+    }
+    for (const t of row.ticks) {
+      const tx = x(t.step);
+      g.append(
+        svg(
+          'line',
+          { class: 'phase-tick', x1: tx, x2: tx, y1: y - 1, y2: y + ROW + 1, stroke: OKABE_ITO.black, 'stroke-width': 2 },
+          svg('title', {}, `${t.kind} at step ${t.step} (confidence ${formatNumber(t.confidence)})`),
+        ),
+      );
+    }
+    // The row's name, left of the plotting area where it fits, inside the band otherwise.
+    const label = row.label === NETWORK_LABEL ? 'network' : row.label;
+    const inside = axis.left < 90;
+    g.append(
+      svg(
+        'text',
+        {
+          x: inside ? axis.left + 4 : axis.left - 6,
+          y: y + ROW - 5,
+          'text-anchor': inside ? 'start' : 'end',
+          'font-size': 11,
+          'font-weight': row.label === NETWORK_LABEL ? 700 : 400,
+          fill: '#1a1a1a',
+          ...(inside ? { stroke: '#ffffff', 'stroke-width': 3, 'paint-order': 'stroke' } : {}),
+        },
+        label,
+      ),
+    );
+    root.append(g);
+  });
+  box.replaceChildren(root);
+}
+
+/** The phase legend: a swatch and the phase in words, plus the tick. */
+export function phaseLegend(): HTMLElement {
+  const ul = document.createElement('ul');
+  ul.className = 'legend';
+  ul.dataset.testid = 'phase-legend';
+  for (const p of ['drift', 'diffusion', 'undetermined'] as const) {
+    const sw = svg('svg', { width: 22, height: 12, 'aria-hidden': 'true' }, svg('rect', { width: 22, height: 12, fill: PHASE_FILL[p], stroke: '#999' }));
+    // The same hatching as the strip's diffusion bands, drawn out so the legend stands without the strip.
+    if (p === 'diffusion') for (const x0 of [-6, 0, 6, 12, 18]) sw.append(svg('line', { x1: x0, y1: 12, x2: x0 + 12, y2: 0, stroke: '#ffffff', 'stroke-width': 2 }));
+    const li = document.createElement('li');
+    li.append(sw, ` ${PHASE_WORDS[p]}`);
+    ul.append(li);
+  }
+  const tick = document.createElement('li');
+  tick.append(svg('svg', { width: 22, height: 12, 'aria-hidden': 'true' }, svg('line', { x1: 11, x2: 11, y1: 0, y2: 12, stroke: '#000', 'stroke-width': 2 })), ' a drift-start or diffusion-start marker (placed at its estimated step)');
+  ul.append(tick);
+  return ul;
+}
+
+/** A uPlot chart in a box: data replaced in place while the number of series holds, rebuilt otherwise. */
+export class LineChart {
+  plot: uPlot | null = null;
+  constructor(
+    readonly box: HTMLElement,
+    readonly height: number,
+  ) {}
+
+  width(): number {
+    return Math.max(320, Math.min(this.box.clientWidth || 900, 1100));
+  }
+
+  update(data: uPlot.AlignedData, options: () => Omit<uPlot.Options, 'width' | 'height'>): void {
+    if (this.plot !== null && this.plot.series.length === data.length) {
+      this.plot.setData(data);
+      return;
+    }
+    this.plot?.destroy();
+    this.plot = new uPlot({ ...options(), width: this.width(), height: this.height }, data, this.box);
+  }
+
+  resize(): void {
+    this.plot?.setSize({ width: this.width(), height: this.height });
+  }
+
+  destroy(): void {
+    this.plot?.destroy();
+    this.plot = null;
+  }
+}
+
+/** Tick labels for a log axis (uPlot passes null for the ticks it leaves unlabelled). */
+export const logValues = (_u: uPlot, ticks: (number | null)[]): string[] => ticks.map((t) => (t === null ? '' : formatNumber(t)));
+
+/** The uPlot series of a layer (by index) or of the network. */
+export function lineSeries(label: string, i: number): uPlot.Series {
+  if (label === NETWORK_LABEL) return { label, stroke: NETWORK_STYLE.stroke, width: NETWORK_STYLE.width, spanGaps: false };
+  const s = layerStyle(i);
+  return { label, stroke: s.stroke, dash: s.dash, width: 1.5, spanGaps: false };
+}
+
+function niceTicks(max: number, count = 5): number[] {
+  if (!(max > 0)) return [0];
+  const raw = max / count;
+  const mag = 10 ** Math.floor(Math.log10(raw));
+  const step = [1, 2, 2.5, 5, 10].map((k) => k * mag).find((s) => s >= raw) ?? raw;
+  const out: number[] = [];
+  for (let v = 0; v <= max + 1e-9; v += step) out.push(Number(v.toPrecision(6)));
+  return out;
+}
+
+/**
+ * The information plane: I(X;T) across, I(T;Y) up, each layer's windows joined in step order. Windows whose
+ * estimate is saturated are hollow grey rings joined by dotted grey lines: they are not measurements.
+ */
+export function drawInfoPlane(box: HTMLElement, trajectories: readonly InfoTrajectory[], width: number): void {
+  const height = 380;
+  const m = { left: 62, right: 16, top: 12, bottom: 46 };
+  const pw = width - m.left - m.right;
+  const ph = height - m.top - m.bottom;
+  const all = trajectories.flatMap((t) => t.points);
+  const xmax = Math.max(...all.map((p) => p.x), 1e-9) * 1.05;
+  const ymax = Math.max(...all.map((p) => p.y), 1e-9) * 1.05;
+  const X = (v: number): number => m.left + (pw * v) / xmax;
+  const Y = (v: number): number => m.top + ph - (ph * v) / ymax;
+  const root = svg('svg', { width, height, viewBox: `0 0 ${width} ${height}`, role: 'img', 'aria-label': 'Information plane: input information against label information per layer' });
+  const axes = svg('g', { class: 'axes', 'font-size': 11, fill: '#333' });
+  axes.append(svg('rect', { x: m.left, y: m.top, width: pw, height: ph, fill: 'none', stroke: '#bbb' }));
+  for (const t of niceTicks(xmax)) {
+    axes.append(svg('line', { x1: X(t), x2: X(t), y1: m.top, y2: m.top + ph, stroke: '#eee' }), svg('text', { x: X(t), y: m.top + ph + 14, 'text-anchor': 'middle' }, formatNumber(t)));
+  }
+  for (const t of niceTicks(ymax)) {
+    axes.append(svg('line', { x1: m.left, x2: m.left + pw, y1: Y(t), y2: Y(t), stroke: '#eee' }), svg('text', { x: m.left - 6, y: Y(t) + 4, 'text-anchor': 'end' }, formatNumber(t)));
+  }
+  axes.append(
+    svg('text', { x: m.left + pw / 2, y: height - 8, 'text-anchor': 'middle' }, 'I(X;T), bits: information the layer keeps about the input (binned estimate)'),
+    svg('text', { x: 14, y: m.top + ph / 2, 'text-anchor': 'middle', transform: `rotate(-90 14 ${m.top + ph / 2})` }, 'I(T;Y), bits: about the label'),
+  );
+  root.append(axes);
+  for (const t of trajectories) {
+    const style = layerStyle(t.index);
+    const g = svg('g', { class: 'info-layer', 'data-layer': t.label });
+    for (let i = 1; i < t.points.length; i++) {
+      const a = t.points[i - 1]!;
+      const b = t.points[i]!;
+      const sat = a.saturated || b.saturated;
+      g.append(
+        svg('line', {
+          class: sat ? 'info-link saturated' : 'info-link',
+          x1: X(a.x),
+          y1: Y(a.y),
+          x2: X(b.x),
+          y2: Y(b.y),
+          stroke: sat ? REFERENCE_GREY : style.stroke,
+          'stroke-width': sat ? 1 : 1.5,
+          'stroke-dasharray': sat ? '2 3' : style.dash.join(' '),
+        }),
+      );
+    }
+    for (const p of t.points) {
+      g.append(
+        svg(
+          'circle',
+          p.saturated
+            ? { class: 'info-point saturated', cx: X(p.x), cy: Y(p.y), r: 4, fill: '#ffffff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 }
+            : { class: 'info-point', cx: X(p.x), cy: Y(p.y), r: 3.5, fill: style.stroke, stroke: '#ffffff', 'stroke-width': 0.5 },
+          svg('title', {}, `${t.label} at step ${p.step}: I(X;T) ${formatNumber(p.x)} bits, I(T;Y) ${formatNumber(p.y)} bits${p.saturated ? ' (saturated: says nothing)' : ''}`),
+        ),
+      );
+    }
+    // The latest window: a larger ring, so the direction of travel reads.
+    const last = t.points[t.points.length - 1]!;
+    g.append(svg('circle', { class: 'info-last', cx: X(last.x), cy: Y(last.y), r: 7, fill: 'none', stroke: last.saturated ? REFERENCE_GREY : style.stroke, 'stroke-width': 1.5 }));
+    root.append(g);
+  }
+  box.replaceChildren(root);
+}
+
+/** Legend of the information plane: one entry per layer, then the saturated mark. */
+export function infoLegend(trajectories: readonly InfoTrajectory[]): HTMLElement {
+  const ul = document.createElement('ul');
+  ul.className = 'legend';
+  for (const t of trajectories) {
+    const s = layerStyle(t.index);
+    const li = document.createElement('li');
+    li.append(svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('line', { x1: 0, x2: 26, y1: 6, y2: 6, stroke: s.stroke, 'stroke-width': 2, 'stroke-dasharray': s.dash.join(' ') }), svg('circle', { cx: 13, cy: 6, r: 3.5, fill: s.stroke })), ` ${t.label}`);
+    ul.append(li);
+  }
+  const sat = document.createElement('li');
+  sat.append(svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 6, r: 4, fill: '#fff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 })), ' saturated: says nothing (every probe example had its own bin, so the estimate is at its ceiling)');
+  ul.append(sat);
+  const last = document.createElement('li');
+  last.append(svg('svg', { width: 26, height: 16, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 8, r: 7, fill: 'none', stroke: '#333', 'stroke-width': 1.5 })), ' latest window');
+  ul.append(last);
+  return ul;
+}
