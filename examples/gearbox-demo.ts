@@ -1,16 +1,28 @@
 /**
- * `npm run demo`: trains the gearbox condition classifier with tidemark attached and prints, for each
- * window of minibatches, how strongly each layer's gradients agree, the gradient noise scale and how far
- * the weights have moved from where they started. In the windows where the activation probe ran, it also
- * prints each layer's information estimates on a held-out probe set.
+ * `npm run demo`: serves the demo's store with the live page, then trains the gearbox condition classifier
+ * with tidemark attached. The terminal prints one line per window of minibatches (the network's gradient
+ * signal-to-noise and its phase), the phase markers, each layer's information estimates on a held-out probe
+ * set in the windows where the activation probe ran, the advice when it changes and a summary; the page at
+ * the printed URL shows every layer's numbers as the windows land. After training the page keeps serving
+ * until Ctrl-C, unless --exit is given.
  *
- *   npx tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--exit]
+ *   npx tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--port N] [--exit] [--tables]
  */
 import { resolve } from 'node:path';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import cliProgress from 'cli-progress';
-import { defaultStore, monitor, type LayerStats, type Marker, type WindowRecord } from '../src/index.js';
+import {
+  DEFAULT_PORT,
+  TidemarkError,
+  defaultStore,
+  monitor,
+  startServer,
+  type LayerStats,
+  type Marker,
+  type RunningServer,
+  type WindowRecord,
+} from '../src/index.js';
 import { buildGearboxModel, makeGearboxData, sliceGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
@@ -24,14 +36,31 @@ const PROBE_ROWS = 1024;
 const PROBE_BINS = 30;
 /** Readings this close to the floor (in dB) are indistinguishable from pure minibatch noise. */
 const NEAR_FLOOR_DB = 3;
+/** Said wherever the demo prints advice. */
+const ADVICE_CAUTION = 'an estimate from minibatch statistics; confirm on held-out data before acting on it';
+const USAGE = 'usage: tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--port N] [--exit] [--tables]';
 
 function fail(message: string): never {
   console.error(`gearbox-demo: ${message}`);
-  console.error('usage: tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--exit]');
+  console.error(USAGE);
   process.exit(2);
 }
 
-function parseCli(): { epochs: number; seed: number; lr: number; out: string } {
+interface DemoArgs {
+  epochs: number;
+  seed: number;
+  lr: number;
+  out: string;
+  /** Port for the live page; `portGiven` when --port named it. */
+  port: number;
+  portGiven: boolean;
+  /** Stop after training instead of serving until Ctrl-C. */
+  exit: boolean;
+  /** Print every window's full per-layer table. */
+  tables: boolean;
+}
+
+function parseCli(): DemoArgs {
   let values;
   try {
     ({ values } = parseArgs({
@@ -40,18 +69,19 @@ function parseCli(): { epochs: number; seed: number; lr: number; out: string } {
         seed: { type: 'string' },
         lr: { type: 'string' },
         out: { type: 'string' },
-        // Training ends the process already; the flag is accepted so scripts can ask for it explicitly.
+        port: { type: 'string' },
         exit: { type: 'boolean' },
+        tables: { type: 'boolean' },
       },
       strict: true,
     }));
   } catch (e) {
     fail(e instanceof Error ? e.message : String(e));
   }
-  const int = (name: string, raw: string | undefined, fallback: number, min: number): number => {
+  const int = (name: string, raw: string | undefined, fallback: number, min: number, max = Number.MAX_SAFE_INTEGER): number => {
     if (raw === undefined) return fallback;
     const n = Number(raw);
-    if (!Number.isInteger(n) || n < min) fail(`--${name} must be an integer ≥ ${min}; received '${raw}'`);
+    if (!Number.isInteger(n) || n < min || n > max) fail(`--${name} must be an integer from ${min} to ${max}; received '${raw}'`);
     return n;
   };
   const lr = values.lr === undefined ? 0.01 : Number(values.lr);
@@ -63,6 +93,10 @@ function parseCli(): { epochs: number; seed: number; lr: number; out: string } {
     seed: int('seed', values.seed, 1, 0),
     lr,
     out,
+    port: int('port', values.port, DEFAULT_PORT, 0, 65535),
+    portGiven: values.port !== undefined,
+    exit: values.exit === true,
+    tables: values.tables === true,
   };
 }
 
@@ -146,6 +180,17 @@ function windowTable(w: WindowRecord, epochs: number, phases: Record<string, str
   return lines.join('\n');
 }
 
+/** One line per window when the full tables are off: the page carries every layer's numbers. */
+function windowLine(w: WindowRecord, epochs: number, network: string): string {
+  const floor = floorDb(w);
+  const nearFloor = Number.isFinite(floor) && w.network.grad_snr_db <= floor + NEAR_FLOOR_DB;
+  const epoch = w.epoch === null ? '' : `  epoch ${w.epoch + 1}/${epochs}`;
+  return (
+    `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  ${describeLogs(w.logs)}` +
+    `  network ${signedDb(w.network.grad_snr_db)} dB ${network}${nearFloor ? ' (near floor)' : ''}`
+  );
+}
+
 // ---- probe block -------------------------------------------------------------------------------------
 
 /** Marks a value that says nothing: every probe example has its own bin (or, for the bounds, stays apart through the noise). */
@@ -207,7 +252,8 @@ function probeBlock(w: WindowRecord): string[] {
   return lines;
 }
 
-const LEGEND = [
+/** The columns of the full tables (--tables). */
+const TABLE_LEGEND = [
   'Columns, per layer and per window of K minibatches:',
   '  SNR dB       mean gradient against its minibatch-to-minibatch spread; above 0 the minibatches',
   '               agree (drift), below 0 they mostly cancel (diffusion)',
@@ -218,6 +264,16 @@ const LEGEND = [
   '               random walk, lower when the wandering is confined',
   '  phase        drift or diffusion as the detector currently judges it (a statistical estimate)',
   '  near floor   within 3 dB of what pure noise would read for this window',
+];
+/** The one-line windows (default). */
+const LINE_LEGEND = [
+  'One line per window of minibatches: the logs at its end, then the whole network\'s gradient SNR',
+  '(mean gradient against its minibatch-to-minibatch spread; above 0 dB the minibatches agree, drift,',
+  'below 0 dB they mostly cancel, diffusion) and its phase as the detector currently judges it (a',
+  'statistical estimate); "near floor" is within 3 dB of what pure noise would read. The page shows',
+  'every layer; --tables prints every layer here too.',
+];
+const PROBE_LEGEND = [
   `In the windows where tidemark ran its activation probe, a probe block follows: ${PROBE_ROWS} held-out`,
   'measurements run through the network, values in bits:',
   `  I(X;T)       binned information between input and layer output (${PROBE_BINS} bins per unit)`,
@@ -227,7 +283,7 @@ const LEGEND = [
   '  at limit     share of activations pinned near the ends of their range (tanh ±1, softmax 0/1)',
   `  ${SAT_MARK}            saturated: every probe example in its own bin, so the value says nothing (on the`,
   '               bounds: the noise still leaves every example apart)',
-].join('\n');
+];
 
 // ---- the run ------------------------------------------------------------------------------------------
 
@@ -277,6 +333,30 @@ function say(text: string): void {
 }
 
 const outPath = resolve(args.out);
+
+/**
+ * Serves the store the demo writes, so the page can follow the run live. A port in use falls back to a
+ * free one; the page needs a SQLite store, so a .jsonl output is written without it.
+ */
+async function serveStore(): Promise<RunningServer | null> {
+  if (outPath.endsWith('.jsonl')) {
+    console.log(`The live page reads a SQLite store; ${args.out} is JSON Lines, so this run is written without it.\n`);
+    return null;
+  }
+  const onError = (e: unknown): void => say(`tidemark serve: ${e instanceof Error ? e.message : String(e)}`);
+  try {
+    return await startServer({ db: outPath, port: args.port, onError });
+  } catch (e) {
+    const cause = e instanceof TidemarkError ? (e.cause as { code?: string } | undefined)?.code : undefined;
+    if (cause !== 'EADDRINUSE' && cause !== 'EACCES') fail(e instanceof Error ? e.message : String(e));
+    const server = await startServer({ db: outPath, port: 0, onError }).catch((e2: unknown) => fail(e2 instanceof Error ? e2.message : String(e2)));
+    const why = cause === 'EADDRINUSE' ? 'is already in use' : 'is not open to this user';
+    console.log(`Port ${args.port} ${why}; serving on free port ${server.port} instead${args.portGiven ? '' : ' (--port N picks one)'}.\n`);
+    return server;
+  }
+}
+
+const server = await serveStore();
 const mon = await monitor(model, {
   run: 'gearbox-demo',
   store: outPath,
@@ -286,6 +366,35 @@ const mon = await monitor(model, {
   tags: { seed: String(args.seed), lr: String(args.lr), epochs: String(args.epochs) },
   onWarning: (w) => say(`tidemark warning [${w.code}]: ${w.message}`),
 });
+const runLink = server === null ? null : `${server.url}/#/run/${encodeURIComponent(mon.runId)}`;
+
+/**
+ * Ctrl-C (or SIGTERM) asks training to stop after the current minibatch; the monitor then closes and the
+ * run is stored as far as it got. A second one during training quits at once. After training, while the
+ * page is still served, it ends the demo.
+ */
+let interrupted = false;
+let onSignal: () => void = () => {
+  if (interrupted) {
+    bars?.stop();
+    console.error('gearbox-demo: stopped at once; the run keeps the windows stored so far.');
+    process.exit(130);
+  }
+  interrupted = true;
+  model.stopTraining = true;
+  say('Ctrl-C: stopping after the current minibatch (press it again to quit at once).');
+};
+// A Ctrl-C in a terminal reaches this process more than once: from the terminal, and relayed by the
+// launchers around it (npm, tsx). Copies within a second count as one press.
+let lastSignalAt = 0;
+const signalled = (): void => {
+  const now = Date.now();
+  if (now - lastSignalAt < 1000) return;
+  lastSignalAt = now;
+  onSignal();
+};
+process.on('SIGINT', signalled);
+process.on('SIGTERM', signalled);
 
 say(
   [
@@ -294,7 +403,12 @@ say(
     `  ${PROBE_ROWS} more, never trained on, form the activation probe set`,
     `network 32-24-16-8-4 tanh/softmax, plain SGD lr ${args.lr}, batch ${BATCH_SIZE}, ${args.epochs} epochs of ${stepsPerEpoch} steps`,
     '',
-    LEGEND,
+    ...(args.tables ? TABLE_LEGEND : LINE_LEGEND),
+    ...PROBE_LEGEND,
+    '',
+    runLink === null
+      ? `Run ${mon.runId} is stored in ${outPath}.`
+      : `Live view: ${runLink}\n  open it in a browser; the windows appear there as they land (Ctrl-C stops training).`,
     '',
   ].join('\n'),
 );
@@ -306,10 +420,18 @@ let markersShown = 0;
 const lastProbe = new Map<string, { stats: LayerStats; window: WindowRecord }>();
 let probeWindows = 0;
 let windowsSeen = 0;
+/**
+ * The advice last printed, its numbers blanked: printed again only when the verdict or the kind of reason
+ * changes, not each time a count in the reason moves on.
+ */
+let adviceShown: string | null = null;
 mon.onWindow((w) => {
   windowsSeen++;
   const phases = mon.phase();
-  const lines = [windowTable(w, args.epochs, phases.layers, phases.network), ...probeBlock(w)];
+  const lines = [
+    args.tables ? windowTable(w, args.epochs, phases.layers, phases.network) : windowLine(w, args.epochs, phases.network),
+    ...probeBlock(w),
+  ];
   let probed = false;
   for (const [name, s] of Object.entries(w.layers)) {
     if (!isProbed(s)) continue;
@@ -321,8 +443,13 @@ mon.onWindow((w) => {
   for (const m of markers.slice(markersShown)) lines.push(`   ▸ ${describeMarker(m)}`);
   markersShown = markers.length;
   const advice = mon.advice();
-  if (advice !== null) lines.push(`   advice: ${advice.verdict}. ${advice.reason}`);
-  say(`${lines.join('\n')}\n`);
+  const adviceKey = advice === null ? null : `${advice.verdict}. ${advice.reason.replace(/[0-9.]+/g, '#')}`;
+  if (advice !== null && (args.tables || adviceKey !== adviceShown)) {
+    lines.push(`   advice: ${advice.verdict}. ${advice.reason} (${ADVICE_CAUTION})`);
+    adviceShown = adviceKey;
+  }
+  // The full tables read better with a blank line between windows; the one-liners without.
+  say(args.tables ? `${lines.join('\n')}\n` : lines.join('\n'));
   for (const [name, s] of [...Object.entries(w.layers), ['(network)', w.network] as const]) {
     if (s.grad_snr_db >= 0) belowZeroSince.set(name, null);
     else if (!belowZeroSince.get(name)) belowZeroSince.set(name, w);
@@ -337,23 +464,31 @@ const progress = {
   },
   onBatchEnd: async (_batch: number, logs?: tf.Logs) => {
     if (logs?.loss !== undefined) lastLoss = logs.loss;
+    // fit may clear the flag when it starts; a Ctrl-C that came before is honoured here.
+    if (interrupted) model.stopTraining = true;
     bar?.increment(1, { epoch: epochNow + 1, epochs: args.epochs, loss: lastLoss.toFixed(4) });
   },
 };
 
 // Started only now, so a failure while setting up never leaves the terminal with a hidden cursor.
 const bar = bars?.create(totalSteps, 0, { epoch: 1, epochs: args.epochs, loss: '-' }) ?? null;
-let history: tf.History;
+let history: tf.History | null = null;
 try {
-  history = await model.fit(xs, ys, {
-    epochs: args.epochs,
-    batchSize: BATCH_SIZE,
-    shuffle: true,
-    validationSplit: VALIDATION_SPLIT,
-    verbose: 0,
-    // Progress first, so the bar has counted a batch before a window closing on it is printed.
-    callbacks: [progress, mon.callback],
-  });
+  if (!interrupted) {
+    history = await model.fit(xs, ys, {
+      epochs: args.epochs,
+      batchSize: BATCH_SIZE,
+      shuffle: true,
+      validationSplit: VALIDATION_SPLIT,
+      verbose: 0,
+      // Back to the event loop after every minibatch, so the page's requests are answered and a Ctrl-C is
+      // seen at once: tsx, which runs the demo, kills a child that does not acknowledge a signal within
+      // tens of milliseconds.
+      yieldEvery: 'batch',
+      // Progress first, so the bar has counted a batch before a window closing on it is printed.
+      callbacks: [progress, mon.callback],
+    });
+  }
 } finally {
   await mon.close();
   bars?.stop();
@@ -362,7 +497,7 @@ try {
 // ---- summary --------------------------------------------------------------------------------------
 
 const last = (key: string): string => {
-  const series = history.history[key];
+  const series = history?.history[key];
   const v = series?.[series.length - 1];
   return typeof v === 'number' ? v.toFixed(key.endsWith('acc') ? 3 : 4) : '-';
 };
@@ -379,7 +514,9 @@ tf.dispose([xs, ys, probeSet.xs, probeSet.ys]);
 
 const seconds = ((Date.now() - started) / 1000).toFixed(1);
 const summary = [
-  `Finished ${args.epochs} epochs (${totalSteps} steps) in ${seconds} s.`,
+  interrupted
+    ? `Stopped on Ctrl-C after ${history?.epoch.length ?? 0} of ${args.epochs} epochs (${mon.windows().at(-1)?.step ?? 0} steps) in ${seconds} s.`
+    : `Finished ${args.epochs} epoch${args.epochs === 1 ? '' : 's'} (${totalSteps} steps) in ${seconds} s.`,
   `  training    loss ${last('loss')}  acc ${last('acc')}`,
   `  held out    loss ${last('val_loss')}  acc ${last('val_acc')} against the recorded labels, ` +
     `${heldOut.truth.toFixed(3)} against the true conditions`,
@@ -396,6 +533,7 @@ for (const name of [...model.layers.map((l) => l.name), '(network)']) {
   );
 }
 const phase = mon.phase();
+const finalAdvice = mon.advice();
 summary.push(
   '',
   `Phase detector: network ${phase.network}; ` +
@@ -426,6 +564,7 @@ summary.push(
     ? `Read it back with: npx tidemark summary ${args.out}`
     : `Read it back with: npx tidemark runs --db ${args.out}   and   npx tidemark show ${mon.runId.slice(0, 8)} --db ${args.out}`,
   '',
+  ...(finalAdvice === null ? [] : [`Last advice: ${finalAdvice.verdict}. ${finalAdvice.reason} (${ADVICE_CAUTION})`]),
   'Caution: these numbers are statistical estimates from minibatches, not guarantees about the model;' +
     ' confirm any decision to stop training on held-out data.',
   `The information values are estimates too: binned ones move with the bin count (${PROBE_BINS} per unit here)` +
@@ -434,3 +573,29 @@ summary.push(
     ' on its own to stop or change training.',
 );
 console.log(summary.join('\n'));
+
+// ---- serving on -------------------------------------------------------------------------------------
+
+/** Closes the server, giving up after a few seconds so a stuck connection cannot hold the terminal. */
+async function closeServer(running: RunningServer): Promise<void> {
+  let timer: NodeJS.Timeout | undefined;
+  const timeout = new Promise<void>((done) => {
+    timer = setTimeout(done, 3000);
+  });
+  await Promise.race([running.close().catch((e: unknown) => console.error(`gearbox-demo: closing the server: ${String(e)}`)), timeout]);
+  clearTimeout(timer);
+}
+
+if (server !== null) {
+  if (!args.exit && !interrupted) {
+    console.log(`\nTraining is over; still serving ${runLink} (the other stored runs are listed at ${server.url}/).`);
+    console.log('Press Ctrl-C to stop the server; --exit ends the demo after training instead.');
+    await new Promise<void>((done) => {
+      onSignal = done;
+    });
+    onSignal = () => process.exit(130);
+    console.log('\nStopping the server.');
+  }
+  await closeServer(server);
+}
+process.exitCode = interrupted ? 130 : 0;
