@@ -84,30 +84,36 @@ export class LiveHub {
     return out;
   }
 
-  /** Sends to one viewer, unless its buffer is over the limit; returns whether it was sent. */
-  send(v: Viewer, message: LiveMessage): boolean {
+  /**
+   * Sends to one viewer, unless its buffer is over the limit; returns whether it was sent. A message
+   * published to many viewers comes already encoded, once.
+   */
+  send(v: Viewer, message: LiveMessage | string): boolean {
     if (v.ws.readyState !== v.ws.OPEN) return false;
     if (v.ws.bufferedAmount > this.bufferLimit) {
       this.counters.dropped++;
       return false;
     }
-    v.ws.send(encodeJson(message));
+    v.ws.send(typeof message === 'string' ? message : encodeJson(message));
     this.counters.sent++;
     return true;
   }
 
   publishWindow(window: WindowRecord): void {
+    let text: string | null = null;
     for (const v of this.viewers) {
       if (!v.runs.has(window.run)) continue;
       const last = v.lastStep.get(window.run) ?? null;
       if (last !== null && window.step <= last) continue;
       if (!this.catchUp(v, window.run)) continue;
-      if (this.send(v, { v: 1, type: 'window', window })) v.lastStep.set(window.run, window.step);
+      text ??= encodeJson({ v: 1, type: 'window', window } satisfies LiveMessage);
+      if (this.send(v, text)) v.lastStep.set(window.run, window.step);
       else v.behind.set(window.run, v.lastStep.get(window.run) ?? null);
     }
   }
 
   publishMarker(marker: Marker): void {
+    let text: string | null = null;
     for (const v of this.viewers) {
       if (!v.runs.has(marker.run)) continue;
       const key = markerKey(marker);
@@ -115,13 +121,15 @@ export class LiveHub {
       if (keys === undefined) v.markerKeys.set(marker.run, (keys = new Set()));
       if (keys.has(key)) continue;
       if (!this.catchUp(v, marker.run)) continue;
-      if (this.send(v, { v: 1, type: 'marker', marker })) keys.add(key);
+      text ??= encodeJson({ v: 1, type: 'marker', marker } satisfies LiveMessage);
+      if (this.send(v, text)) keys.add(key);
       else v.behind.set(marker.run, v.lastStep.get(marker.run) ?? null);
     }
   }
 
   publishRun(row: RunSummary): void {
-    for (const v of this.viewers) if (v.runsList) this.send(v, { v: 1, type: 'runs', runs: [row] });
+    const text = encodeJson({ v: 1, type: 'runs', runs: [row] } satisfies LiveMessage);
+    for (const v of this.viewers) if (v.runsList) this.send(v, text);
   }
 
   /** A viewer that fell behind on a run first gets a gap message (once its buffer has drained). */
