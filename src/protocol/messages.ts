@@ -74,15 +74,17 @@ export interface UnsubscribeMessage {
 
 export type ViewerMessage = SubscribeMessage | SubscribeRunsMessage | UnsubscribeMessage;
 
-/** A run as a row of the runs list. */
+/** A run as a row of the runs list (the store's RunRow adds what only it needs). */
 export interface RunSummary {
   id: string;
   name: string;
   group: string | null;
   tags: Record<string, string>;
   status: RunStatus;
+  /** ms since the epoch. */
   created_at: number;
   ended_at: number | null;
+  /** Last step stored, or null before the first window. */
   last_step: number | null;
   windows: number;
 }

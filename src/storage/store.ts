@@ -3,6 +3,7 @@
  * The SQLite implementation (sqlite-store.ts) is the default; readers (CLI, server) use only this
  * interface. Writes are synchronous and batched: one transaction per call of `append`.
  */
+import type { RunSummary } from '../protocol/messages.js';
 import type { LayerInfo, Marker, RunInfo, RunStatus, SinkRecord, WindowRecord } from '../protocol/records.js';
 
 export interface WindowQuery {
@@ -12,22 +13,12 @@ export interface WindowQuery {
   points?: number;
 }
 
-export interface RunRow {
-  id: string;
-  name: string;
-  group: string | null;
-  tags: Record<string, string>;
-  status: RunStatus;
-  /** ms since the epoch. */
-  created_at: number;
-  ended_at: number | null;
+/** A run as the store lists it: the row of the runs list viewers see, plus what the store keeps about it. */
+export interface RunRow extends RunSummary {
   /** Step of the `end` record, or null while no end record was stored. */
   end_step: number | null;
   /** Last time the writer showed it was alive; a running run whose heartbeat is older than the limit is `interrupted`. */
   heartbeat_at: number;
-  /** Last step stored, or null before the first window. */
-  last_step: number | null;
-  windows: number;
   config: Record<string, unknown>;
 }
 
