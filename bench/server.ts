@@ -21,14 +21,14 @@ import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { parseArgs } from 'node:util';
 import WebSocket from 'ws';
-import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
+import type { RunInfo, SinkRecord, WindowRecord } from '../src/protocol/records.js';
 import { RemoteSink } from '../src/storage/remote-sink.js';
 import { encodeJson, encodeRecord } from '../src/storage/sink.js';
 import { openStore } from '../src/storage/sqlite-store.js';
 import type { Store } from '../src/storage/store.js';
 import { printTable, progress } from './report.js';
-import { xorshift32 } from './seeded-data.js';
 import { windowPoints } from '../src/protocol/points.js';
+import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
 import { freePort, rssMb, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
 
 const USAGE = `usage: node --import tsx bench/server.ts [--quick]
@@ -56,78 +56,12 @@ function readSettings(): Settings | null {
 }
 
 // ---------------------------------------------------------------------------------------------
-// Records: a model of 10 dense layers (kernel + bias), windows of 8 minibatches.
+// Records: a model of 10 dense layers (kernel + bias), windows of 8 minibatches (test/helpers/window-records.ts).
 
 const LAYERS = 10;
 
-function benchRun(id: string): RunInfo {
-  const layers: LayerInfo[] = [];
-  for (let i = 0; i < LAYERS; i++) {
-    const name = `dense_Dense${i + 1}`;
-    layers.push({
-      name,
-      class_name: 'Dense',
-      params: 64 * 64 + 64,
-      variables: [
-        { name: `${name}/kernel`, shape: [64, 64], params: 64 * 64 },
-        { name: `${name}/bias`, shape: [64], params: 64 },
-      ],
-    });
-  }
-  return { id, name: `bench ${id}`, group: 'bench', tags: {}, started_at: Date.now(), config: { window: 'auto', batchSize: 32 }, layers };
-}
-
-function benchWindows(run: RunInfo, count: number, seed: number): WindowRecord[] {
-  const rng = xorshift32(seed);
-  const stats = (params: number, w: number): VariableStats => {
-    const mean = rng() * 2;
-    const std = rng() * 3 + 0.1;
-    return {
-      grad_mean_norm: mean,
-      grad_std_norm: std,
-      grad_snr: mean / std,
-      grad_snr_db: 20 * Math.log10(mean / std),
-      noise_scale: rng() < 0.1 ? null : rng() * 500,
-      weight_norm: 1 + rng(),
-      weight_travel: rng() * 0.01 * (w + 1),
-      update_ratio: rng() * 1e-3,
-      nonfinite: 0,
-      batches: 8,
-      params,
-    };
-  };
-  const out: WindowRecord[] = [];
-  for (let w = 0; w < count; w++) {
-    const layers: Record<string, LayerStats> = {};
-    let params = 0;
-    for (const l of run.layers) {
-      const variables: Record<string, VariableStats> = {};
-      for (const v of l.variables) variables[v.name] = stats(v.params, w);
-      layers[l.name] = { ...stats(l.params, w), travel_exponent: w < 3 ? null : 0.5 + rng(), variables };
-      params += l.params;
-    }
-    const logs: Record<string, number> = { loss: 1 / (w + 1) + rng() * 0.01, acc: rng() };
-    if (w % 16 === 15) logs.val_loss = 1.1 / (w + 1);
-    out.push({
-      run: run.id,
-      index: w,
-      step: (w + 1) * 8,
-      first_step: w * 8 + 1,
-      epoch: Math.floor(w / 16),
-      batches: 8,
-      batch_size: 32,
-      batches_per_epoch: w < 16 ? null : 128,
-      pass_batches: [8],
-      snr_floor: w < 16 ? 1 / Math.sqrt(8) : Math.sqrt((1 - 8 / 128) / 8),
-      time: run.started_at + 250 * (w + 1),
-      layers,
-      network: { ...stats(params, w), travel_exponent: w < 3 ? null : 0.5 + rng() },
-      logs,
-    });
-  }
-  return out;
-}
-
+const benchRun = (id: string): RunInfo => fakeRun({ id, name: `bench ${id}`, group: 'bench', layers: LAYERS, started_at: Date.now() });
+const benchWindows = (run: RunInfo, count: number, seed: number): WindowRecord[] => fakeWindows(run, count, seed, false);
 
 const windowRecords = (ws: readonly WindowRecord[]): SinkRecord[] => ws.map((window) => ({ type: 'window', window }));
 
