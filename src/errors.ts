@@ -87,6 +87,12 @@ export interface MonitorWarning {
   cause?: unknown;
 }
 
+/** The stable code an error carries, if it is one of ours (a TidemarkError, or anything with such a `code`). */
+export function codeOf(e: unknown): ErrorCode | null {
+  const code = (e as { code?: unknown } | null)?.code;
+  return typeof code === 'string' && code in ERROR_CODES ? (code as ErrorCode) : null;
+}
+
 export function describeCause(cause: unknown): string {
   if (cause instanceof Error) return cause.message;
   return String(cause);

@@ -10,7 +10,7 @@ import { travelExponent } from '../analysis/travel-exponent.js';
 import { PhaseDetector } from '../analysis/phase-detector.js';
 import { StopAdvisor, type Advice } from '../analysis/stop-advice.js';
 import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
-import { describeCause, ERROR_CODES, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
+import { codeOf, describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
   LayerStats,
   Marker,
@@ -100,12 +100,6 @@ function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
   }
   if (store.endsWith('.jsonl')) return new JsonlSink(store, { onError });
   return new StoreSink(() => openStore(store), { onError });
-}
-
-/** The stable code an error carries, if it is one of ours. */
-function codeOf(e: unknown): ErrorCode | null {
-  const code = (e as { code?: unknown } | null)?.code;
-  return typeof code === 'string' && code in ERROR_CODES ? (code as ErrorCode) : null;
 }
 
 function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {

@@ -12,7 +12,7 @@ import type { Duplex } from 'node:stream';
 import { Ajv } from 'ajv';
 import Fastify, { type FastifyInstance, type FastifyReply, type FastifyRequest } from 'fastify';
 import { WebSocketServer, type RawData, type WebSocket } from 'ws';
-import { ERROR_CODES, TidemarkError, type ErrorCode } from '../errors.js';
+import { codeOf, ERROR_CODES, TidemarkError, type ErrorCode } from '../errors.js';
 import { MAX_FRAME_BYTES, type BackfillMessage, type ErrorMessage, type IngestReply } from '../protocol/messages.js';
 import { windowPoints } from '../protocol/points.js';
 import type { SinkRecord } from '../protocol/records.js';
@@ -100,9 +100,8 @@ const CLIENT_FACING: ReadonlySet<string> = new Set([
 
 /** What a client is told about an error: a stable code and a message that leaks nothing of the store. */
 export function publicError(e: unknown): { code: string; message: string; status: number; retry: boolean } {
-  const code = (e as { code?: unknown } | null)?.code;
-  if (typeof code === 'string' && code in ERROR_CODES) {
-    const known = code as ErrorCode;
+  const known = codeOf(e);
+  if (known !== null) {
     const message = CLIENT_FACING.has(known) ? (e as Error).message : ERROR_CODES[known];
     const retry = known === 'TIDEMARK_ERR_STORE_WRITE' || known === 'TIDEMARK_ERR_STORE_READ' || known === 'TIDEMARK_ERR_RATE_LIMITED';
     return { code: known, message, status: STATUS[known] ?? (retry ? 503 : 500), retry };
