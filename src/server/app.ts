@@ -18,7 +18,7 @@ import { windowPoints } from '../protocol/points.js';
 import type { SinkRecord } from '../protocol/records.js';
 import { exportLines, type ExportFormat } from '../storage/export.js';
 import { decodeJson, encodeJson } from '../storage/sink.js';
-import type { RunFilter, Store } from '../storage/store.js';
+import type { RunFilter, Store, WindowQuery } from '../storage/store.js';
 import { originAllowed, tokenMatches, tokenOf } from './auth.js';
 import { LiveHub, markerKey, type Viewer } from './live.js';
 import { metricsText } from './metrics.js';
@@ -288,13 +288,20 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     {
       schema: {
         params: idParams,
-        querystring: queryOf({ after: { type: 'number' }, points: { type: 'integer', minimum: 2, maximum: 100000 } }),
+        querystring: queryOf({
+          after: { type: 'number' },
+          from: { type: 'number' },
+          to: { type: 'number' },
+          points: { type: 'integer', minimum: 2, maximum: 100000 },
+        }),
       },
     },
     async (req) => {
       const run = store.resolveRun((req.params as { id: string }).id);
-      const q = req.query as { after?: number; points?: number };
-      return store.windows(run.id, { ...(q.after !== undefined ? { after: q.after } : {}), ...(q.points !== undefined ? { points: q.points } : {}) });
+      const q = req.query as { after?: number; from?: number; to?: number; points?: number };
+      const query: WindowQuery = {};
+      for (const key of ['after', 'from', 'to', 'points'] as const) if (q[key] !== undefined) query[key] = q[key];
+      return store.windows(run.id, query);
     },
   );
 

@@ -84,6 +84,20 @@ export class LiveHub {
     return out;
   }
 
+  /** The earliest last step sent of this run over the viewers that follow it (null: one of them has no window yet). */
+  earliestStep(runId: string): number | null {
+    let out: number | null = null;
+    let first = true;
+    for (const v of this.viewers) {
+      if (!v.runs.has(runId)) continue;
+      const last = v.lastStep.get(runId) ?? null;
+      if (last === null) return null;
+      out = first ? last : Math.min(out!, last);
+      first = false;
+    }
+    return out;
+  }
+
   /**
    * Sends to one viewer, unless its buffer is over the limit; returns whether it was sent. A message
    * published to many viewers comes already encoded, once.

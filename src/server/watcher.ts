@@ -64,16 +64,21 @@ export class StoreWatcher {
       for (const r of rows) {
         const row = summaryOf(r);
         let s = this.seen.get(r.id);
+        let changed: boolean;
         if (s === undefined) {
-          // A run first seen now: its past is the backfill's business, not the live stream's.
+          // A run first seen now: its past is the backfill's business, not the live stream's. But a viewer may
+          // have subscribed (and had its backfill) before this poll: it is owed what came after its backfill.
           s = { row, lastStep: r.last_step, markerKeys: null };
           this.seen.set(r.id, s);
           this.hub.publishRun(row);
-          continue;
+          if (!followed.has(r.id)) continue;
+          s.lastStep = this.hub.earliestStep(r.id);
+          changed = true;
+        } else {
+          changed = s.row.status !== row.status || s.row.windows !== row.windows || s.row.last_step !== row.last_step || s.row.ended_at !== row.ended_at;
+          s.row = row;
+          if (changed) this.hub.publishRun(row);
         }
-        const changed = s.row.status !== row.status || s.row.windows !== row.windows || s.row.last_step !== row.last_step || s.row.ended_at !== row.ended_at;
-        s.row = row;
-        if (changed) this.hub.publishRun(row);
         if (!followed.has(r.id)) {
           s.lastStep = r.last_step;
           s.markerKeys = null;
@@ -93,10 +98,9 @@ export class StoreWatcher {
 
   private publishMarkers(runId: string, s: Seen): void {
     const markers = this.store.markers(runId);
-    if (s.markerKeys === null) {
-      s.markerKeys = new Set(markers.map(markerKey));
-      return;
-    }
+    // A run followed since the last poll: its markers may include some stored after a viewer's backfill, so
+    // all are offered; the hub sends each viewer only those its backfill did not hold.
+    s.markerKeys ??= new Set();
     for (const m of markers) {
       const key = markerKey(m);
       if (s.markerKeys.has(key)) continue;

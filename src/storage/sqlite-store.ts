@@ -405,6 +405,11 @@ export class SqliteStore implements Store {
       FROM windows WHERE run_id = ? ORDER BY step`);
     p('windowsAfter', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
       FROM windows WHERE run_id = ? AND step > ? ORDER BY step`);
+    p('windowsRange', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+      FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step`);
+    p('windowStepsRange', 'SELECT step FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step');
+    p('windowsAt', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+      FROM windows WHERE run_id = ? AND step IN (SELECT value FROM json_each(?)) ORDER BY step`);
     p('markersOf', `SELECT layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = ?
       ORDER BY step, detected_step, id`);
     p('warningsOf', 'SELECT code, message, step, time FROM warnings WHERE run_id = ? ORDER BY time, id');
@@ -417,6 +422,7 @@ export class SqliteStore implements Store {
       AND NOT (status = 'running' AND heartbeat_at >= ?) ORDER BY created_at`);
     // Series reads return [step, value] arrays: a million small objects would cost more than the read.
     for (const name of ['pointsAll', 'pointsAt', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
+    this.st.windowStepsRange!.pluck(true);
     for (const name of ['stepsRange', 'valuesRange']) this.st[name]!.pluck(true);
   }
 
@@ -995,19 +1001,35 @@ export class SqliteStore implements Store {
   }
 
   windows(runId: string, query: WindowQuery = {}): WindowRecord[] {
-    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, points }', query);
+    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, from, to, points }', query);
+    for (const key of ['after', 'from', 'to'] as const) {
+      const v = query[key];
+      if (v !== undefined && (typeof v !== 'number' || Number.isNaN(v))) throw invalidOption('windows', key, 'a step number', v);
+    }
     const after = query.after ?? null;
-    if (after !== null && (typeof after !== 'number' || Number.isNaN(after))) throw invalidOption('windows', 'after', 'a step number', after);
     const points = query.points ?? null;
     if (points !== null && (!Number.isInteger(points) || points < 2)) throw invalidOption('windows', 'points', 'an integer ≥ 2', points);
+    const ranged = after !== null || query.from !== undefined || query.to !== undefined;
+    // `after` is exclusive and `from` inclusive; both bound from below, so the larger one holds.
+    const lo = Math.max(query.from ?? -Infinity, after === null ? -Infinity : nextAbove(after));
+    const hi = query.to ?? Infinity;
     return this.read('windows', () => {
       this.requireRun(runId);
-      // The windows after a step come from the (run, step) index: a live poll or a scrape reads only what is new.
-      let rows = (after === null ? this.stmt('windowsOf').all(runId) : this.stmt('windowsAfter').all(runId, after)) as WindowDbRow[];
-      let partial = after !== null;
-      if (points !== null && rows.length > points) {
-        rows = thinEvenly(rows, points);
-        partial = true;
+      let rows: WindowDbRow[];
+      let partial = ranged;
+      if (points !== null) {
+        // Thinning reads only the steps first (one integer per window, from the (run, step) index) and then
+        // the chosen windows by key: a run of a million windows opens without reading a million rows.
+        const steps = this.stmt('windowStepsRange').all(runId, lo, hi) as number[];
+        if (steps.length > points) {
+          rows = this.stmt('windowsAt').all(runId, JSON.stringify(thinEvenly(steps, points))) as WindowDbRow[];
+          partial = true;
+        } else {
+          rows = this.stmt('windowsRange').all(runId, lo, hi) as WindowDbRow[];
+        }
+      } else {
+        // The windows after a step come from the (run, step) index: a live poll or a scrape reads only what is new.
+        rows = (ranged ? this.stmt('windowsRange').all(runId, lo, hi) : this.stmt('windowsOf').all(runId)) as WindowDbRow[];
       }
       const stepsJson = JSON.stringify(rows.map((r) => r.step));
       const records = rows.map((r): WindowRecord => {
@@ -1078,6 +1100,11 @@ export class SqliteStore implements Store {
       return records;
     });
   }
+}
+
+/** The smallest step greater than `v` (steps are integers). */
+function nextAbove(v: number): number {
+  return Number.isInteger(v) ? v + 1 : Math.ceil(v);
 }
 
 /** `n` of the items, evenly spread, the first and the last included. */

@@ -9,7 +9,10 @@ import type { LayerInfo, Marker, RunInfo, RunStatus, SinkRecord, WindowRecord } 
 export interface WindowQuery {
   /** Only windows whose step is greater. Default: from the start. */
   after?: number;
-  /** At most this many windows (an integer ≥ 2), spread evenly over those selected. Default: all. */
+  /** Inclusive step range (with `after`, both bounds apply). Default: the whole run. */
+  from?: number;
+  to?: number;
+  /** At most this many windows (an integer ≥ 2), spread evenly over those selected, the first and last kept. Default: all. */
   points?: number;
 }
 

@@ -121,25 +121,100 @@ export function phaseLegend(): HTMLElement {
   return ul;
 }
 
+/** A step range shown on the charts. */
+export interface StepRange {
+  min: number;
+  max: number;
+}
+
+/**
+ * One step range for all the charts of a view: zooming one (drag across it) zooms the others, a double
+ * click goes back to the whole run, and `changed` hears of it (the run view then fetches the zoomed part in
+ * full detail). New data would reset a chart's scales, so data goes in through `setData`, which keeps the zoom.
+ */
+export class StepZoom {
+  range: StepRange | null = null;
+  private readonly plots = new Set<uPlot>();
+  private quiet = 0;
+
+  constructor(private readonly changed: (range: StepRange | null) => void = () => {}) {}
+
+  add(u: uPlot): void {
+    this.plots.add(u);
+    if (this.range !== null) this.quietly(() => u.setScale('x', this.range!));
+  }
+
+  remove(u: uPlot): void {
+    this.plots.delete(u);
+  }
+
+  /** uPlot's setScale hook: a user's zoom or reset on one chart. */
+  readonly scaled = (u: uPlot, key: string): void => {
+    if (key !== 'x' || this.quiet > 0) return;
+    const min = u.scales.x?.min;
+    const max = u.scales.x?.max;
+    if (min === undefined || max === undefined || min === null || max === null) return;
+    const xs = u.data[0];
+    const whole = xs.length === 0 || (min <= xs[0]! && max >= xs[xs.length - 1]!);
+    this.set(whole ? null : { min, max });
+  };
+
+  /** Shows this range on every chart (null: each its whole data). */
+  set(range: StepRange | null): void {
+    this.range = range;
+    this.quietly(() => {
+      for (const u of this.plots) this.apply(u);
+    });
+    this.changed(range);
+  }
+
+  setData(u: uPlot, data: uPlot.AlignedData): void {
+    this.quietly(() => {
+      u.setData(data);
+      if (this.range !== null) u.setScale('x', this.range);
+    });
+  }
+
+  private apply(u: uPlot): void {
+    const xs = u.data[0];
+    if (this.range !== null) u.setScale('x', this.range);
+    else if (xs.length > 0) u.setScale('x', { min: xs[0]!, max: xs[xs.length - 1]! });
+  }
+
+  private quietly(f: () => void): void {
+    this.quiet++;
+    try {
+      f();
+    } finally {
+      this.quiet--;
+    }
+  }
+}
+
 /** A uPlot chart in a box: data replaced in place while the number of series holds, rebuilt otherwise. */
 export class LineChart {
   plot: uPlot | null = null;
   constructor(
     readonly box: HTMLElement,
     readonly height: number,
+    readonly zoom: StepZoom | null = null,
   ) {}
 
   width(): number {
-    return Math.max(320, Math.min(this.box.clientWidth || 900, 1100));
+    return Math.max(280, Math.min(this.box.clientWidth || 900, 1100));
   }
 
   update(data: uPlot.AlignedData, options: () => Omit<uPlot.Options, 'width' | 'height'>): void {
     if (this.plot !== null && this.plot.series.length === data.length) {
-      this.plot.setData(data);
+      if (this.zoom !== null) this.zoom.setData(this.plot, data);
+      else this.plot.setData(data);
       return;
     }
-    this.plot?.destroy();
-    this.plot = new uPlot({ ...options(), width: this.width(), height: this.height }, data, this.box);
+    this.destroy();
+    const opts = options();
+    if (this.zoom !== null) opts.hooks = { ...opts.hooks, setScale: [...(opts.hooks?.setScale ?? []), this.zoom.scaled] };
+    this.plot = new uPlot({ ...opts, width: this.width(), height: this.height }, data, this.box);
+    this.zoom?.add(this.plot);
   }
 
   resize(): void {
@@ -147,9 +222,31 @@ export class LineChart {
   }
 
   destroy(): void {
+    if (this.plot !== null) this.zoom?.remove(this.plot);
     this.plot?.destroy();
     this.plot = null;
   }
+}
+
+/** uPlot draw hook: the 0 dB line, where the mean gradient and its noise are of equal size. */
+export function zeroDbLine(u: uPlot): void {
+  const y = u.valToPos(0, 'y', true);
+  if (!Number.isFinite(y) || y < u.bbox.top || y > u.bbox.top + u.bbox.height) return;
+  const ctx = u.ctx;
+  const px = uPlot.pxRatio;
+  ctx.save();
+  ctx.strokeStyle = REFERENCE_GREY;
+  ctx.lineWidth = 1.5 * px;
+  ctx.setLineDash([]);
+  ctx.beginPath();
+  ctx.moveTo(u.bbox.left, y);
+  ctx.lineTo(u.bbox.left + u.bbox.width, y);
+  ctx.stroke();
+  ctx.fillStyle = REFERENCE_GREY;
+  ctx.font = `${11 * px}px sans-serif`;
+  ctx.textAlign = 'right';
+  ctx.fillText('0 dB', u.bbox.left + u.bbox.width - 4 * px, y - 4 * px);
+  ctx.restore();
 }
 
 /** Tick labels for a log axis (uPlot passes null for the ticks it leaves unlabelled). */
@@ -256,4 +353,56 @@ export function infoLegend(trajectories: readonly InfoTrajectory[]): HTMLElement
   last.append(svg('svg', { width: 26, height: 16, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 8, r: 7, fill: 'none', stroke: '#333', 'stroke-width': 1.5 })), ' latest window');
   ul.append(last);
   return ul;
+}
+
+/**
+ * The keyboard's way to zoom: two step fields and two buttons, kept in step with the charts' range.
+ * Returns the form and a function that writes a new range into the fields.
+ */
+export function stepRangeForm(zoom: StepZoom): { form: HTMLFormElement; show(range: StepRange | null): void } {
+  const field = (label: string, testid: string): HTMLInputElement => {
+    const input = document.createElement('input');
+    input.type = 'number';
+    input.min = '0';
+    input.step = 'any';
+    input.setAttribute('aria-label', label);
+    input.dataset.testid = testid;
+    return input;
+  };
+  const from = field('First step to show', 'range-from');
+  const to = field('Last step to show', 'range-to');
+  const apply = document.createElement('button');
+  apply.type = 'submit';
+  apply.textContent = 'Show steps';
+  const whole = document.createElement('button');
+  whole.type = 'button';
+  whole.textContent = 'Whole run';
+  whole.dataset.testid = 'range-whole';
+  const form = document.createElement('form');
+  form.className = 'range';
+  form.dataset.testid = 'range-form';
+  const hint = document.createElement('span');
+  hint.className = 'note';
+  hint.textContent = 'or drag across a chart to zoom, double-click to go back';
+  form.append('Steps ', from, ' to ', to, ' ', apply, ' ', whole, ' ', hint);
+  form.addEventListener('submit', (ev) => {
+    ev.preventDefault();
+    const a = Number(from.value);
+    const b = Number(to.value);
+    if (from.value === '' || to.value === '' || !(b > a) || !(a > 0)) {
+      from.setCustomValidity(!(a > 0) ? 'A step above 0 (the step axis is logarithmic).' : 'The first step must be below the last.');
+      from.reportValidity();
+      return;
+    }
+    from.setCustomValidity('');
+    zoom.set({ min: a, max: b });
+  });
+  whole.addEventListener('click', () => zoom.set(null));
+  return {
+    form,
+    show(range) {
+      from.value = range === null ? '' : String(Math.round(range.min));
+      to.value = range === null ? '' : String(Math.round(range.max));
+    },
+  };
 }

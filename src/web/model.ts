@@ -35,26 +35,44 @@ export function mergeRuns(current: readonly RunRowView[], incoming: readonly Run
   return [...byId.values()].sort((a, b) => b.created_at - a.created_at || a.id.localeCompare(b.id));
 }
 
-export type Route = { view: 'runs' } | { view: 'run'; id: string };
+export type Route = { view: 'runs' } | { view: 'run'; id: string } | { view: 'compare'; ids: string[] };
 
-/** `#/run/<id>` opens a run; anything else is the list. A token in the fragment (`#/…?token=T`) is ignored here. */
+/** The compare view overlays this many runs at least and at most. */
+export const COMPARE_MIN = 2;
+export const COMPARE_MAX = 6;
+
+function decodePart(text: string): string {
+  try {
+    return decodeURIComponent(text);
+  } catch {
+    // A malformed escape: keep the raw text, the server will say it matches no run.
+    return text;
+  }
+}
+
+/**
+ * `#/run/<id>` opens a run, `#/compare/<id>,<id>,…` overlays runs (ids escaped, so a comma in one stays
+ * apart from the separators; repeats dropped); anything else is the list. A token in the fragment
+ * (`#/…?token=T`) is ignored here.
+ */
 export function parseRoute(hash: string): Route {
   const path = hash.replace(/^#/, '').split('?')[0] ?? '';
-  const m = /^\/run\/(.+)$/.exec(path);
-  if (m?.[1] !== undefined) {
-    let id = m[1];
-    try {
-      id = decodeURIComponent(id);
-    } catch {
-      // A malformed escape: keep the raw text, the server will say it matches no run.
-    }
-    return { view: 'run', id };
+  const run = /^\/run\/(.+)$/.exec(path);
+  if (run?.[1] !== undefined) return { view: 'run', id: decodePart(run[1]) };
+  const cmp = /^\/compare\/(.+)$/.exec(path);
+  if (cmp?.[1] !== undefined) {
+    const ids = [...new Set(cmp[1].split(',').filter((p) => p.length > 0).map(decodePart))];
+    return { view: 'compare', ids };
   }
   return { view: 'runs' };
 }
 
 export function runHash(id: string): string {
   return `#/run/${encodeURIComponent(id)}`;
+}
+
+export function compareHash(ids: readonly string[]): string {
+  return `#/compare/${ids.map(encodeURIComponent).join(',')}`;
 }
 
 /** The token from `?token=` in the query, or in the fragment (`#/run/x?token=T` or `#token=T`). */
@@ -324,4 +342,63 @@ export function infoTrajectories(layerNames: readonly string[], windows: readonl
     if (points.length > 0) out.push({ label, index, points });
   });
   return out;
+}
+
+/** Windows of a run with more added (a live window, a backfill, the detail of a zoomed range): one per step, in step order. */
+export function mergeWindows(current: readonly WindowRecord[], incoming: readonly WindowRecord[]): WindowRecord[] {
+  if (incoming.length === 0) return current as WindowRecord[];
+  const last = current.at(-1);
+  // The common live case: one window after the last, appended without a rebuild.
+  if (last !== undefined && incoming.length === 1 && incoming[0]!.step > last.step) return [...current, incoming[0]!];
+  const byStep = new Map<number, WindowRecord>();
+  for (const w of current) byStep.set(w.step, w);
+  for (const w of incoming) if (!byStep.has(w.step)) byStep.set(w.step, w);
+  return [...byStep.values()].sort((a, b) => a.step - b.step);
+}
+
+/** How many of the windows lie in [min, max] (the windows are in step order). */
+export function windowsIn(windows: readonly WindowRecord[], min: number, max: number): number {
+  const lower = (x: number, strict: boolean): number => {
+    let lo = 0;
+    let hi = windows.length;
+    while (lo < hi) {
+      const mid = (lo + hi) >> 1;
+      const s = windows[mid]!.step;
+      if (s < x || (strict && s === x)) lo = mid + 1;
+      else hi = mid;
+    }
+    return lo;
+  };
+  return Math.max(0, lower(max, true) - lower(min, false));
+}
+
+/**
+ * Columns for runs overlaid on one chart, aligned by step: the union of their (positive) steps, and per run
+ * its value, null where the value is not finite (a gap in its line), undefined where the run has no window
+ * at that step (the chart joins across it, as uPlot does for undefined).
+ */
+export interface OverlayColumns {
+  steps: number[];
+  series: (number | null | undefined)[][];
+}
+
+export function overlayColumns(runs: readonly (readonly WindowRecord[])[], value: (w: WindowRecord) => number | null | undefined): OverlayColumns {
+  const all = new Set<number>();
+  const maps = runs.map((ws) => {
+    const m = new Map<number, number | null>();
+    for (const w of ws) {
+      if (!(w.step > 0)) continue;
+      all.add(w.step);
+      const v = value(w);
+      m.set(w.step, typeof v === 'number' && Number.isFinite(v) ? v : null);
+    }
+    return m;
+  });
+  const steps = [...all].sort((a, b) => a - b);
+  return { steps, series: maps.map((m) => steps.map((s) => m.get(s))) };
+}
+
+/** The phase a row is in at its end ('undetermined' before any marker). */
+export function currentPhase(row: PhaseRow): PhaseName {
+  return row.segments.at(-1)?.phase ?? 'undetermined';
 }

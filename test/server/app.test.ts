@@ -91,6 +91,11 @@ describe('HTTP API', () => {
     expect(decodeJson(markers.body)).toEqual(store.markers(run.id));
     const windows = await server.app.inject(`/api/runs/${run.id}/windows?after=${ws[9]!.step}`);
     expect(decodeJson(windows.body)).toEqual(ws.slice(10));
+    // A zoomed chart's request: an inclusive range, thinned within it.
+    const zoomed = await server.app.inject(`/api/runs/${run.id}/windows?from=${ws[2]!.step}&to=${ws[6]!.step}&points=3`);
+    expect(decodeJson(zoomed.body)).toEqual([ws[2], ws[4], ws[6]]);
+    const bad = await server.app.inject(`/api/runs/${run.id}/windows?from=abc`);
+    expect(bad.statusCode).toBe(400);
   });
 
   it('exports a run as CSV and JSON Lines, byte for byte what exportRun gives', async () => {

@@ -593,9 +593,21 @@ describe('SQLite store: parts of a run', () => {
     expect(s.windows(run.id, { after: ws[5]!.step, points: 2 })).toEqual([ws[6], ws[11]]);
   });
 
+  it('reads an inclusive step range, thinned within it (what a zoomed chart asks for)', () => {
+    const { s, run, ws } = seeded(freshPath(), 12);
+    expect(s.windows(run.id, { from: ws[3]!.step, to: ws[7]!.step })).toEqual(ws.slice(3, 8));
+    // Bounds between steps take the windows inside them.
+    expect(s.windows(run.id, { from: ws[3]!.step + 0.5, to: ws[7]!.step - 0.5 })).toEqual(ws.slice(4, 7));
+    expect(s.windows(run.id, { from: ws[3]!.step, to: ws[7]!.step, points: 3 })).toEqual([ws[3], ws[5], ws[7]]);
+    // `after` and `from` together: the tighter lower bound holds.
+    expect(s.windows(run.id, { after: ws[4]!.step, from: ws[2]!.step, to: ws[6]!.step })).toEqual(ws.slice(5, 7));
+    expect(s.windows(run.id, { from: ws[7]!.step, to: ws[3]!.step })).toEqual([]);
+  });
+
   it('refuses a bad query', () => {
     const { s, run } = seeded(freshPath(), 2);
     expectCoded(() => s.windows(run.id, { points: 1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /points/);
     expectCoded(() => s.windows(run.id, { after: Number.NaN }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /after/);
+    expectCoded(() => s.windows(run.id, { to: 'x' as unknown as number }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'to'|to/);
   });
 });

@@ -3,6 +3,11 @@ import type { Marker } from '../../src/protocol/records.js';
 import {
   CAUTION,
   adviceSentence,
+  compareHash,
+  currentPhase,
+  mergeWindows,
+  overlayColumns,
+  windowsIn,
   decodeJson,
   infoTrajectories,
   latestAdvice,
@@ -59,6 +64,10 @@ describe('page model', () => {
     expect(parseRoute(runHash('run/x y'))).toEqual({ view: 'run', id: 'run/x y' });
     expect(parseRoute('#/run/abc?token=secret-123')).toEqual({ view: 'run', id: 'abc' });
     expect(parseRoute('#/run/%E0%A4%A')).toEqual({ view: 'run', id: '%E0%A4%A' });
+    // Compare: ids escaped, so a comma inside one is not a separator; repeats dropped.
+    expect(compareHash(['a,1', 'b'])).toBe('#/compare/a%2C1,b');
+    expect(parseRoute(compareHash(['a,1', 'b']))).toEqual({ view: 'compare', ids: ['a,1', 'b'] });
+    expect(parseRoute('#/compare/x,,y,x?token=t-12345678')).toEqual({ view: 'compare', ids: ['x', 'y'] });
     expect(tokenFrom('?token=t1', '')).toBe('t1');
     expect(tokenFrom('', '#/run/a?token=t2')).toBe('t2');
     expect(tokenFrom('', '#token=t3')).toBe('t3');
@@ -197,5 +206,40 @@ describe('page model', () => {
     expect(t[0]!.points.map((p) => p.step)).toEqual([8, 16, 24, 32]);
     expect(t[0]!.points.map((p) => p.saturated)).toEqual([true, false, false, false]);
     expect(t[0]!.points[2]).toEqual({ step: 24, x: 3, y: 0.2 * 1, saturated: false });
+  });
+
+  it('merges windows by step in step order, keeping the first copy, and counts those in a range', () => {
+    const ws = fakeWindows(fakeRun({ id: 'm1' }), 10, 1, false);
+    const thinned = [ws[0]!, ws[4]!, ws[9]!];
+    const merged = mergeWindows(thinned, [ws[5]!, ws[4]!, ws[3]!]);
+    expect(merged.map((w) => w.step)).toEqual([8, 32, 40, 48, 80]);
+    expect(merged[2]).toBe(ws[4]); // the copy already held
+    // A live window after the last is appended.
+    expect(mergeWindows(ws.slice(0, 9), [ws[9]!]).map((w) => w.step)).toEqual(ws.map((w) => w.step));
+    expect(mergeWindows(ws, [])).toBe(ws);
+    // windowsIn counts inclusive ranges by binary search: steps 8, 16, …, 80.
+    expect(windowsIn(ws, 16, 40)).toBe(4);
+    expect(windowsIn(ws, 17, 39)).toBe(2);
+    expect(windowsIn(ws, 0, 1000)).toBe(10);
+    expect(windowsIn(ws, 90, 100)).toBe(0);
+    expect(windowsIn(ws, 40, 16)).toBe(0);
+  });
+
+  it('aligns overlaid runs by step: undefined where a run has no window, null where its value is not finite', () => {
+    const a = fakeWindows(fakeRun({ id: 'o1' }), 3, 1, false); // steps 8, 16, 24
+    const b = fakeWindows(fakeRun({ id: 'o2' }), 2, 2, false).map((w, i) => ({ ...w, step: 12 + 12 * i })); // steps 12, 24
+    b[0] = { ...b[0]!, network: { ...b[0]!.network, grad_snr_db: Number.NaN } };
+    const cols = overlayColumns([a, b], (w) => w.network.grad_snr_db);
+    expect(cols.steps).toEqual([8, 12, 16, 24]);
+    expect(cols.series[0]).toEqual([a[0]!.network.grad_snr_db, undefined, a[1]!.network.grad_snr_db, a[2]!.network.grad_snr_db]);
+    expect(cols.series[1]).toEqual([undefined, null, undefined, b[1]!.network.grad_snr_db]);
+  });
+
+  it('names the phase a row ends in', () => {
+    const run = fakeRun({ id: 'p1' });
+    const marker = (kind: Marker['kind'], step: number): Marker => ({ run: run.id, layer: null, kind, step, detected_step: step, confidence: 1, details: {} });
+    expect(currentPhase(phaseRows([], [], 1, 100)[0]!)).toBe('undetermined');
+    expect(currentPhase(phaseRows([], [marker('drift-start', 5)], 1, 100)[0]!)).toBe('drift');
+    expect(currentPhase(phaseRows([], [marker('drift-start', 5), marker('diffusion-start', 50)], 1, 100)[0]!)).toBe('diffusion');
   });
 });

@@ -3,43 +3,22 @@
  * SQLite store. Needs /usr/bin/chromium (CI installs it in .ci/run; there a missing browser fails the
  * test). The page is built first when dist/web is missing.
  */
-import { execFileSync } from 'node:child_process';
-import { existsSync, mkdtempSync, rmSync } from 'node:fs';
+import { mkdtempSync, rmSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
-import { fileURLToPath } from 'node:url';
-import { chromium, type Browser, type Page } from 'playwright-core';
+import type { Browser } from 'playwright-core';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
 import type { Marker, SinkRecord, WindowRecord } from '../../src/protocol/records.js';
 import { startServer, type RunningServer } from '../../src/server/serve.js';
 import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
+import { CHROMIUM, countColour, ensurePageBuilt, haveChromium, inkPixels, launchChromium } from '../helpers/browser.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
 
-const CHROMIUM = '/usr/bin/chromium';
-const ROOT = fileURLToPath(new URL('../../', import.meta.url));
-const haveChromium = existsSync(CHROMIUM);
 const inCI = Boolean(process.env.CI);
 const SHOTS = process.env.TIDEMARK_SCREENSHOTS ?? null;
 
 if (!haveChromium && !inCI) {
   console.warn(`test/web/page.e2e.test.ts skipped: no browser at ${CHROMIUM} (apt-get install chromium to run it).`);
-}
-
-/** Pixels of a canvas within `tol` of an RGB colour, fully opaque. */
-async function countColour(page: Page, selector: string, rgb: [number, number, number], tol = 40): Promise<number> {
-  return page.$eval(
-    selector,
-    (c, [r, g, b, t]) => {
-      const canvas = c as HTMLCanvasElement;
-      const data = canvas.getContext('2d')!.getImageData(0, 0, canvas.width, canvas.height).data;
-      let n = 0;
-      for (let i = 0; i < data.length; i += 4) {
-        if (data[i + 3]! > 200 && Math.abs(data[i]! - r!) <= t! && Math.abs(data[i + 1]! - g!) <= t! && Math.abs(data[i + 2]! - b!) <= t!) n++;
-      }
-      return n;
-    },
-    [...rgb, tol],
-  );
 }
 
 /** Probe values on the even windows and the last one; windows 0 and 2 saturated, so they must be drawn hollow. */
@@ -53,17 +32,6 @@ function withProbe(ws: WindowRecord[]): WindowRecord[] {
       ]),
     );
     return { ...w, layers };
-  });
-}
-
-/** Pixels of a canvas that are not blank (any opaque pixel that is not near white). */
-async function inkPixels(page: Page, selector: string): Promise<number> {
-  return page.$eval(selector, (c) => {
-    const canvas = c as HTMLCanvasElement;
-    const data = canvas.getContext('2d')!.getImageData(0, 0, canvas.width, canvas.height).data;
-    let n = 0;
-    for (let i = 0; i < data.length; i += 4) if (data[i + 3]! > 200 && data[i]! + data[i + 1]! + data[i + 2]! < 600) n++;
-    return n;
   });
 }
 
@@ -88,7 +56,7 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
 
   beforeAll(async () => {
     if (!haveChromium) throw new Error(`No browser at ${CHROMIUM}: CI must install Debian's chromium (see .ci/run).`);
-    if (!existsSync(join(ROOT, 'dist/web/index.html'))) execFileSync(process.execPath, [join(ROOT, 'scripts/build-web.mjs')], { stdio: 'inherit' });
+    ensurePageBuilt();
     dir = mkdtempSync(join(tmpdir(), 'tidemark-web-'));
     store = openStore(join(dir, 'runs.db'));
     store.beginRun(run);
@@ -99,10 +67,7 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     store.beginRun(bare);
     store.append(fakeWindows(bare, 6).map((window): SinkRecord => ({ type: 'window', window })));
     server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
-    browser = await chromium.launch({
-      executablePath: CHROMIUM,
-      args: ['--headless', '--no-sandbox', '--disable-gpu', '--disable-background-networking', '--disable-component-update', '--no-first-run'],
-    });
+    browser = await launchChromium();
   });
 
   afterAll(async () => {

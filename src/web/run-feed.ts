@@ -1,0 +1,115 @@
+/**
+ * One run as the page follows it: the backfill, then live windows and markers, resubscribing after a
+ * reconnect or a gap with the last step it holds (so nothing is missed or repeated), and the windows of a
+ * zoomed range fetched in full detail when the backfill was thinned.
+ */
+import type { BackfillMessage, LiveMessage } from '../protocol/messages.js';
+import type { Marker, WindowRecord } from '../protocol/records.js';
+import { getJson, type Live } from './connection.js';
+import { mergeWindows, windowsIn } from './model.js';
+import type { StepRange } from './charts.js';
+
+export type FeedChange = 'backfill' | 'window' | 'marker' | 'detail';
+
+/** A zoomed range holding fewer windows than this is fetched in detail. */
+export const DETAIL_ENOUGH = 400;
+/** Windows asked for when a zoomed range is fetched. */
+export const DETAIL_POINTS = 1500;
+
+export function markerKey(m: Marker): string {
+  return `${m.kind}|${m.layer ?? ''}|${m.step}|${m.detected_step}`;
+}
+
+export class RunFeed {
+  info: BackfillMessage['run'] | null = null;
+  windows: WindowRecord[] = [];
+  markers: Marker[] = [];
+  /** Windows the run holds in all (more than `windows.length` while the backfill is thinned). */
+  total = 0;
+  failed = false;
+  private readonly keys = new Set<string>();
+  private readonly fetched: StepRange[] = [];
+  private readonly stopListening: () => void;
+  private readonly stopOpen: () => void;
+
+  constructor(
+    private readonly live: Live,
+    /** The id, id prefix or name the view asked for. */
+    readonly id: string,
+    private readonly points: number,
+    private readonly onChange: (change: FeedChange) => void,
+    private readonly onError: (code: string, message: string) => void,
+  ) {
+    this.stopListening = live.listen((m) => this.receive(m));
+    this.stopOpen = live.whenOpen(() => this.subscribe());
+  }
+
+  lastStep(): number | null {
+    return this.windows.at(-1)?.step ?? null;
+  }
+
+  private subscribe(): void {
+    if (this.failed) return;
+    const after = this.lastStep();
+    this.live.send(after === null ? { v: 1, type: 'subscribe', run: this.id, points: this.points } : { v: 1, type: 'subscribe', run: this.id, after });
+  }
+
+  private addMarkers(list: readonly Marker[]): void {
+    for (const m of list) {
+      const k = markerKey(m);
+      if (this.keys.has(k)) continue;
+      this.keys.add(k);
+      this.markers.push(m);
+    }
+  }
+
+  private receive(m: LiveMessage): void {
+    if (this.failed) return;
+    if (m.type === 'backfill' && (m.run.id === this.id || m.run.name === this.id || (this.info === null && m.run.id.startsWith(this.id)) || m.run.id === this.info?.id)) {
+      this.info = m.run;
+      this.windows = mergeWindows(this.windows, m.windows);
+      this.total = Math.max(m.total_windows, this.windows.length);
+      this.addMarkers(m.markers);
+      this.onChange('backfill');
+    } else if (m.type === 'window' && this.info !== null && m.window.run === this.info.id) {
+      const before = this.windows.length;
+      this.windows = mergeWindows(this.windows, [m.window]);
+      if (this.windows.length > before) this.total++;
+      this.info = { ...this.info, last_step: Math.max(this.info.last_step ?? 0, m.window.step) };
+      this.onChange('window');
+    } else if (m.type === 'marker' && this.info !== null && m.marker.run === this.info.id) {
+      this.addMarkers([m.marker]);
+      this.onChange('marker');
+    } else if (m.type === 'gap' && this.info !== null && m.run === this.info.id) {
+      this.subscribe();
+    } else if (m.type === 'error' && m.run === this.id) {
+      this.failed = true;
+      this.onError(m.code, m.message);
+    }
+  }
+
+  /**
+   * Fetches the windows of a zoomed range when the backfill was thinned there; resolves to whether new
+   * windows came (then `onChange('detail')` has run).
+   */
+  async detail(range: StepRange): Promise<boolean> {
+    if (this.info === null || this.total <= this.windows.length) return false;
+    if (windowsIn(this.windows, range.min, range.max) >= DETAIL_ENOUGH) return false;
+    if (this.fetched.some((r) => r.min <= range.min && r.max >= range.max)) return false;
+    const from = Math.floor(range.min);
+    const to = Math.ceil(range.max);
+    const ws = (await getJson(`api/runs/${encodeURIComponent(this.info.id)}/windows?from=${from}&to=${to}&points=${DETAIL_POINTS}`)) as WindowRecord[];
+    this.fetched.push({ min: from, max: to });
+    const before = this.windows.length;
+    this.windows = mergeWindows(this.windows, ws);
+    if (this.windows.length === before) return false;
+    this.onChange('detail');
+    return true;
+  }
+
+  dispose(): void {
+    this.stopListening();
+    this.stopOpen();
+    if (this.info !== null) this.live.send({ v: 1, type: 'unsubscribe', run: this.info.id });
+  }
+}

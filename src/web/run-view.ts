@@ -1,0 +1,332 @@
+/**
+ * The view of one run: header, stop advice with its caution, a phase strip over the gradient SNR per
+ * layer against step, weight travel, loss, noise scale, the information plane when a probe ran, and the
+ * markers. All charts share one step range; zooming into a thinned part fetches it in full detail.
+ */
+import uPlot from 'uplot';
+import type { Live } from './connection.js';
+import { el, type View } from './dom.js';
+import {
+  CAUTION,
+  adviceSentence,
+  detailsText,
+  formatNumber,
+  infoTrajectories,
+  latestAdvice,
+  lossColumns,
+  noiseColumns,
+  noiseSentence,
+  phaseRows,
+  snrColumns,
+  travelColumns,
+} from './model.js';
+import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
+import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, logValues, phaseLegend, stepRangeForm, zeroDbLine } from './charts.js';
+import { RunFeed, type FeedChange } from './run-feed.js';
+
+/** Windows in the first backfill of a run: enough for a smooth line at any screen width. */
+export const BACKFILL_POINTS = 2000;
+
+export const xLog: uPlot.Scale = { time: false, distr: 3 };
+
+/** A message for a run the server refused. */
+export function refusal(ref: string, code: string, message: string): string {
+  return code === 'TIDEMARK_ERR_RUN_NOT_FOUND'
+    ? `No run matches “${ref}”. Check the link, or pick a run from the list.`
+    : code === 'TIDEMARK_ERR_RUN_AMBIGUOUS'
+      ? `“${ref}” matches more than one run; use a longer id.`
+      : `The server refused this run: ${message}`;
+}
+
+export function runView(root: HTMLElement, live: Live, id: string): View {
+  const back = el('a', { href: `${location.pathname}${location.search}#/` }, '← all runs');
+  const title = el('h2', { 'data-testid': 'run-name' }, id);
+  const facts = el('p', { class: 'facts', 'data-testid': 'run-facts' }, 'Loading…');
+  const advice = el('p', { class: 'advice', 'data-testid': 'advice' });
+  const caution = el('p', { class: 'caution', 'data-testid': 'caution' }, CAUTION);
+  const chartBox = el('div', { class: 'chart', 'data-testid': 'snr-chart' });
+  const chartNote = el(
+    'p',
+    { class: 'note' },
+    'Gradient signal-to-noise per layer, in dB (20·log10 of |mean gradient| / gradient spread over a window), against step on a log axis. ' +
+      'Above 0 dB the mean gradient outweighs its noise; the dashed grey line is where pure noise would read.',
+  );
+  const markerBody = el('tbody');
+  const markersNote = el('p', { class: 'note' });
+  const stripBox = el('div', { class: 'strip', 'data-testid': 'phase-strip' });
+  const stripNote = el(
+    'p',
+    { class: 'note' },
+    'Phase of the network (top row) and of each layer, on the same step axis as the chart below, from the drift-start and diffusion-start markers. ' +
+      'A row is undetermined until its first marker. Phases are estimated after the fact and can be revised.',
+  );
+  const travelBox = el('div', { class: 'chart', 'data-testid': 'travel-chart' });
+  const travelBody = el('tbody');
+  const travelTable = el(
+    'table',
+    { class: 'exponents', 'data-testid': 'travel-exponents' },
+    el('thead', {}, el('tr', {}, el('th', {}, 'Layer'), el('th', {}, 'Latest travel exponent'))),
+    travelBody,
+  );
+  const travelNote = el(
+    'p',
+    { class: 'note', 'data-testid': 'travel-note' },
+    'Distance of the weights from where they started, against step, both on log axes. The grey reference lines have slope 1 (steady travel, travel ∝ step) ' +
+      'and slope ½ (travel ∝ √step, as a random walk would go), drawn through the network at the middle of the run. ' +
+      'The exponent is a local slope estimated from recent windows: an estimate, not a measurement.',
+  );
+  const lossBox = el('div', { class: 'chart small', 'data-testid': 'loss-chart' });
+  const lossNote = el('p', { class: 'note' }, 'Training loss as a mean over each window; validation loss at the windows where an epoch ended.');
+  const noiseBox = el('div', { class: 'chart small', 'data-testid': 'noise-chart' });
+  const noiseText = el('p', { class: 'advice-note', 'data-testid': 'noise-sentence' });
+  const infoSection = el('section', { class: 'info', 'data-testid': 'info-section', hidden: '' });
+  const infoBox = el('div', { class: 'plane', 'data-testid': 'info-chart' });
+  const infoLegendBox = el('div');
+  const detailNote = el('p', { class: 'note', 'data-testid': 'detail-note', 'aria-live': 'polite' });
+  infoSection.append(
+    el('h3', {}, 'Information plane (probe windows)'),
+    el(
+      'p',
+      { class: 'note' },
+      'Per layer, the binned estimate of how much its activations say about the input (across) and about the label (up), joined in step order. ' +
+        'Hollow grey rings are windows where the estimate is saturated: says nothing, they are not measurements. Binned estimates depend on the bin count; read shapes, not exact values.',
+    ),
+    infoLegendBox,
+    infoBox,
+  );
+
+  let feed: RunFeed | null = null;
+  const zoom = new StepZoom((range) => {
+    rangeForm.show(range);
+    if (range === null || feed === null) return;
+    detailNote.textContent = '';
+    feed
+      .detail(range)
+      .then((more) => {
+        if (more) detailNote.textContent = `Showing steps ${formatNumber(Math.round(range.min))} to ${formatNumber(Math.round(range.max))} in full detail.`;
+      })
+      .catch((e: unknown) => {
+        detailNote.textContent = `Could not fetch the detail of this range: ${(e as Error).message}`;
+      });
+  });
+  const rangeForm = stepRangeForm(zoom);
+
+  const main = el(
+    'section',
+    { class: 'run' },
+    back,
+    title,
+    facts,
+    advice,
+    caution,
+    rangeForm.form,
+    detailNote,
+    el('h3', {}, 'Phase per layer (estimated)'),
+    phaseLegend(),
+    stripBox,
+    stripNote,
+    el('h3', {}, 'Gradient SNR (dB) per layer'),
+    chartBox,
+    chartNote,
+    el('h3', {}, 'Weight travel per layer'),
+    travelBox,
+    travelNote,
+    travelTable,
+    el('h3', {}, 'Loss'),
+    lossBox,
+    lossNote,
+    el('h3', {}, 'Gradient noise scale (network)'),
+    noiseBox,
+    noiseText,
+    infoSection,
+    el('h3', {}, 'Markers'),
+    markersNote,
+    el('div', { class: 'scroll' }, el('table', { class: 'markers', 'data-testid': 'markers' }, el('thead', {}, el('tr', {}, ...['Step', 'Found at', 'Layer', 'Kind', 'Confidence', 'Details'].map((h) => el('th', {}, h)))), markerBody)),
+  );
+  root.append(main);
+
+  const snr = new LineChart(chartBox, 360, zoom);
+  const travel = new LineChart(travelBox, 340, zoom);
+  const loss = new LineChart(lossBox, 260, zoom);
+  const noise = new LineChart(noiseBox, 260, zoom);
+
+  const layerNames = (): string[] => (feed?.info === null || feed === null ? [] : feed.info.layers.map((l) => l.name));
+  const windows = () => feed?.windows ?? [];
+  const markers = () => feed?.markers ?? [];
+
+  const drawHeader = (): void => {
+    const info = feed?.info;
+    if (info === null || info === undefined || feed === null) return;
+    title.textContent = info.name;
+    const step = feed.lastStep() ?? info.last_step;
+    facts.replaceChildren(
+      el('span', { class: `status ${info.status}`, 'data-testid': 'run-status' }, info.status),
+      ' · step ',
+      el('span', { 'data-testid': 'run-step' }, step === null ? '–' : String(step)),
+      ` · ${feed.total} windows${feed.total > feed.windows.length ? ` (${feed.windows.length} drawn)` : ''} · ${info.layers.length} layers`,
+      info.group === null ? '' : ` · group ${info.group}`,
+    );
+    advice.textContent = adviceSentence(latestAdvice(markers()));
+  };
+
+  const drawMarkers = (): void => {
+    const sorted = [...markers()].sort((a, b) => a.step - b.step || a.detected_step - b.detected_step);
+    markersNote.textContent = sorted.length === 0 ? 'No markers yet.' : 'Phase changes are estimated after the fact: "step" is where the change is placed, "found at" when it was detected.';
+    markerBody.replaceChildren(
+      ...sorted.map((m) =>
+        el(
+          'tr',
+          {},
+          el('td', { class: 'num' }, String(m.step)),
+          el('td', { class: 'num' }, String(m.detected_step)),
+          el('td', {}, m.layer ?? '(network)'),
+          el('td', {}, m.kind),
+          el('td', { class: 'num' }, formatNumber(m.confidence)),
+          el('td', {}, detailsText(m.details)),
+        ),
+      ),
+    );
+  };
+
+  const drawStrip = (u: uPlot | null = snr.plot): void => {
+    if (feed?.info === null || feed === null) return;
+    if (u === null || windows().length === 0) {
+      stripBox.replaceChildren(el('p', { class: 'note' }, 'No windows yet.'));
+      return;
+    }
+    const min = u.scales.x?.min;
+    const max = u.scales.x?.max;
+    if (min === undefined || max === undefined || min === null || max === null || !(min > 0) || !(max > min)) return;
+    const ratio = uPlot.pxRatio;
+    drawPhaseStrip(stripBox, phaseRows(layerNames(), markers(), min, max), { width: u.width, left: u.bbox.left / ratio, plotWidth: u.bbox.width / ratio, min, max });
+  };
+
+  const drawSnr = (): void => {
+    const cols = snrColumns(layerNames(), windows());
+    snr.update([cols.steps, ...cols.series, cols.floor], () => ({
+      scales: { x: xLog, y: { auto: true } },
+      axes: [
+        { label: 'step (log scale)', values: logValues },
+        { label: 'gradient SNR (dB)' },
+      ],
+      series: [{ label: 'step' }, ...cols.labels.map((l, i) => lineSeries(l, i)), { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 }],
+      // The phase strip follows this chart's step axis, so it is redrawn with it.
+      hooks: { draw: [(u) => drawStrip(u), zeroDbLine] },
+    }));
+  };
+
+  const drawTravel = (): void => {
+    const cols = travelColumns(layerNames(), windows());
+    if (!cols.series.some((s) => s.some((v) => v !== null))) {
+      travel.destroy();
+      travelBox.replaceChildren(el('p', { class: 'note' }, 'No weight travel yet.'));
+    } else {
+      if (travel.plot === null) travelBox.replaceChildren();
+      travel.update([cols.steps, ...cols.series, cols.slope1, cols.slopeHalf], () => ({
+        scales: { x: xLog, y: { distr: 3 } },
+        axes: [
+          { label: 'step (log scale)', values: logValues },
+          { label: 'weight travel ‖w − w₀‖ (log scale)', values: logValues, size: 70 },
+        ],
+        series: [
+          { label: 'step' },
+          ...cols.labels.map((l, i) => lineSeries(l, i)),
+          { label: 'slope 1', stroke: REFERENCE_GREY, dash: [10, 5], width: 1 },
+          { label: 'slope ½', stroke: REFERENCE_GREY, dash: [2, 4], width: 1.5 },
+        ],
+      }));
+    }
+    travelBody.replaceChildren(
+      ...cols.labels.map((l, i) =>
+        el('tr', { 'data-layer': l }, el('td', {}, l), el('td', { class: 'num' }, cols.exponents[i] === null || cols.exponents[i] === undefined ? '– (too few windows)' : formatNumber(cols.exponents[i]))),
+      ),
+    );
+  };
+
+  const drawLoss = (): void => {
+    const cols = lossColumns(windows());
+    if (!cols.loss.some((v) => v !== null)) {
+      loss.destroy();
+      lossBox.replaceChildren(el('p', { class: 'note' }, 'No loss logged yet.'));
+      return;
+    }
+    if (loss.plot === null) lossBox.replaceChildren();
+    const data: uPlot.AlignedData = cols.hasVal ? [cols.steps, cols.loss, cols.valLoss] : [cols.steps, cols.loss];
+    loss.update(data, () => ({
+      scales: { x: xLog, y: { auto: true } },
+      axes: [{ label: 'step (log scale)', values: logValues }, { label: 'loss' }],
+      series: [
+        { label: 'step' },
+        { label: 'loss (training, window mean)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
+        ...(cols.hasVal ? [{ label: 'val_loss (end of epoch)', stroke: OKABE_ITO.vermillion, dash: [6, 3], width: 1.5, spanGaps: true, points: { show: true, size: 7, fill: OKABE_ITO.vermillion } }] : []),
+      ],
+    }));
+  };
+
+  const drawNoise = (): void => {
+    const cols = noiseColumns(windows());
+    noiseText.textContent = noiseSentence(cols);
+    if (!cols.noise.some((v) => v !== null)) {
+      noise.destroy();
+      noiseBox.replaceChildren(el('p', { class: 'note' }, 'No noise scale estimate yet.'));
+      return;
+    }
+    if (noise.plot === null) noiseBox.replaceChildren();
+    noise.update([cols.steps, cols.noise, cols.batch], () => ({
+      scales: { x: xLog, y: { distr: 3 } },
+      axes: [
+        { label: 'step (log scale)', values: logValues },
+        { label: 'examples (log scale)', values: logValues, size: 60 },
+      ],
+      series: [
+        { label: 'step' },
+        { label: 'B_noise (network, estimate)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
+        { label: 'batch size', stroke: REFERENCE_GREY, dash: [6, 4], width: 1.5 },
+      ],
+    }));
+  };
+
+  const drawInfo = (): void => {
+    const traj = infoTrajectories(layerNames(), windows());
+    if (traj.length === 0) {
+      infoSection.hidden = true;
+      return;
+    }
+    infoSection.hidden = false;
+    infoLegendBox.replaceChildren(infoLegend(traj));
+    drawInfoPlane(infoBox, traj, Math.max(280, Math.min(infoSection.clientWidth || 900, 900)));
+  };
+
+  const drawSeries = (): void => {
+    drawSnr();
+    drawTravel();
+    drawLoss();
+    drawNoise();
+    drawInfo();
+  };
+
+  const onChange = (change: FeedChange): void => {
+    drawHeader();
+    if (change !== 'marker') drawSeries();
+    if (change !== 'window' && change !== 'detail') {
+      drawStrip();
+      drawMarkers();
+    }
+  };
+  feed = new RunFeed(live, id, BACKFILL_POINTS, onChange, (code, message) => {
+    main.replaceChildren(back, el('h2', {}, 'Run not available'), el('p', { class: 'error', 'data-testid': 'run-error' }, refusal(id, code, message)));
+  });
+
+  const onResize = (): void => {
+    for (const c of [snr, travel, loss, noise]) c.resize();
+    drawInfo();
+  };
+  window.addEventListener('resize', onResize);
+  return {
+    dispose() {
+      feed?.dispose();
+      window.removeEventListener('resize', onResize);
+      for (const c of [snr, travel, loss, noise]) c.destroy();
+    },
+  };
+}

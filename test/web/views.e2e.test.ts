@@ -1,0 +1,210 @@
+/**
+ * The page in chromium, beyond one run's charts: choosing runs with the keyboard and comparing them,
+ * zooming into a thinned run (its detail is fetched), surviving a server restart, and the layout at
+ * 1280×800 and on a phone-sized screen. Same browser rules as page.e2e.test.ts.
+ */
+import { mkdtempSync, rmSync } from 'node:fs';
+import { tmpdir } from 'node:os';
+import { join } from 'node:path';
+import type { Browser, Page } from 'playwright-core';
+import { afterAll, beforeAll, describe, expect, it } from 'vitest';
+import type { SinkRecord } from '../../src/protocol/records.js';
+import { startServer, type RunningServer } from '../../src/server/serve.js';
+import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
+import { CHROMIUM, countColour, ensurePageBuilt, haveChromium, launchChromium } from '../helpers/browser.js';
+import { freePort } from '../helpers/server-child.js';
+import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
+
+const inCI = Boolean(process.env.CI);
+const SHOTS = process.env.TIDEMARK_SCREENSHOTS ?? null;
+
+const windowRecords = (ws: ReturnType<typeof fakeWindows>): SinkRecord[] => ws.map((window) => ({ type: 'window', window }));
+
+/** Whether the page is wider than the window (a horizontal scroll bar on the page itself). */
+const overflows = (page: Page): Promise<boolean> => page.evaluate(() => document.documentElement.scrollWidth > window.innerWidth + 1);
+
+describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, restart, screens', () => {
+  let dir: string;
+  let store: SqliteStore;
+  let server: RunningServer;
+  let browser: Browser;
+  const a = fakeRun({ id: 'run-cmp-000a', name: 'gearbox-lr-0.05', group: 'cmp', tags: { lr: '0.05' }, started_at: 1_700_000_000_000 });
+  const b = fakeRun({ id: 'run-cmp-000b', name: 'gearbox-lr-0.2', group: 'cmp', tags: { lr: '0.2' }, started_at: 1_700_000_100_000 });
+  // A long run of one layer: more windows than a backfill carries, so its view starts thinned.
+  const long = fakeRun({ id: 'run-long-0001', name: 'gearbox-long', layers: 1, started_at: 1_600_000_000_000 });
+  const LONG = 5000;
+
+  beforeAll(async () => {
+    if (!haveChromium) throw new Error(`No browser at ${CHROMIUM}: CI must install Debian's chromium (see .ci/run).`);
+    ensurePageBuilt();
+    dir = mkdtempSync(join(tmpdir(), 'tidemark-views-'));
+    store = openStore(join(dir, 'runs.db'));
+    store.beginRun(a);
+    store.append([...windowRecords(fakeWindows(a, 12, 1, false)), ...fakeMarkers(a).map((marker): SinkRecord => ({ type: 'marker', marker }))]);
+    store.beginRun(b);
+    store.append(windowRecords(fakeWindows(b, 16, 2, false)));
+    store.beginRun(long);
+    store.append(windowRecords(fakeWindows(long, LONG, 3, false)));
+    server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
+    browser = await launchChromium();
+  }, 120_000);
+
+  afterAll(async () => {
+    await browser?.close();
+    await server?.close();
+    store?.close();
+    if (dir !== undefined) rmSync(dir, { recursive: true, force: true });
+  });
+
+  it('picks two runs with the keyboard alone and overlays them, one colour each, in a view the URL reopens', async () => {
+    const page = await browser.newPage({ viewport: { width: 1280, height: 800 } });
+    const errors: string[] = [];
+    page.on('pageerror', (e) => errors.push(String(e)));
+    await page.goto(`${server.url}/`);
+    await page.locator(`tr[data-run="${a.id}"]`).waitFor({ timeout: 10_000 });
+    expect(await page.isDisabled('[data-testid="compare-button"]')).toBe(true);
+
+    // Tab until the focus is on the first run's compare box, tick it with Space, and on to the second;
+    // then back (Shift+Tab) to the Compare button and Enter.
+    const tabTo = async (label: string, key = 'Tab'): Promise<void> => {
+      for (let i = 0; i < 40; i++) {
+        await page.keyboard.press(key);
+        if ((await page.evaluate(() => document.activeElement?.getAttribute('aria-label') ?? document.activeElement?.textContent)) === label) return;
+      }
+      throw new Error(`${key} never reached ${label}`);
+    };
+    await tabTo(`Compare ${b.name}`);
+    await page.keyboard.press('Space');
+    await tabTo(`Compare ${a.name}`);
+    await page.keyboard.press('Space');
+    expect(await page.textContent('[data-testid="compare-button"]')).toBe('Compare 2 runs');
+    await tabTo('Compare 2 runs', 'Shift+Tab');
+    await page.keyboard.press('Enter');
+
+    // Newest first in the list, so b then a.
+    await page.waitForFunction(() => location.hash.startsWith('#/compare/'));
+    expect(new URL(page.url()).hash).toBe(`#/compare/${b.id},${a.id}`);
+    const rows = page.locator('[data-testid="compare-runs"] tbody tr');
+    await page.locator('[data-testid="compare-runs"] tbody tr', { hasText: '128' }).waitFor({ timeout: 10_000 });
+    expect(await rows.count()).toBe(2);
+    const texts = await rows.allTextContents();
+    expect(texts[0]).toContain('gearbox-lr-0.2');
+    expect(texts[0]).toContain('128'); // 16 windows of 8 steps
+    expect(texts[1]).toContain('gearbox-lr-0.05');
+    expect(texts[1]).toContain('96');
+    // Run a has a diffusion-start marker for the network (fakeMarkers): its phase now is diffusion.
+    expect(texts[1]).toContain('diffusion');
+    expect(texts[0]).toContain('undetermined');
+
+    // Each run's line is drawn in its colour: the first Okabe & Ito blue, the second orange.
+    const snr = '[data-testid="compare-snr"] canvas';
+    await page.waitForSelector(snr);
+    expect(await countColour(page, snr, [0x00, 0x72, 0xb2])).toBeGreaterThan(50);
+    expect(await countColour(page, snr, [0xe6, 0x9f, 0x00])).toBeGreaterThan(50);
+    for (const chart of ['compare-travel', 'compare-loss', 'compare-noise']) {
+      const c = `[data-testid="${chart}"] canvas`;
+      await page.waitForSelector(c);
+      expect(await countColour(page, c, [0x00, 0x72, 0xb2])).toBeGreaterThan(20);
+      expect(await countColour(page, c, [0xe6, 0x9f, 0x00])).toBeGreaterThan(20);
+    }
+    // The phase strip has one row per run, named after it.
+    expect(await page.$$eval('[data-testid="compare-strip"] g.phase-row', (gs) => gs.map((g) => g.getAttribute('data-layer')))).toEqual([b.name, a.name]);
+    expect(await page.textContent('.compare')).toContain('confirm any decision to stop training on held-out data');
+    expect(await overflows(page)).toBe(false);
+    if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'compare.png'), fullPage: true });
+
+    // A window of a compared run arrives live.
+    store.append(windowRecords(fakeWindows(a, 13, 1, false).slice(12)));
+    await page.locator('[data-testid="compare-runs"] tbody tr', { hasText: '104' }).waitFor({ timeout: 5_000 });
+
+    // The link reopens the same comparison.
+    const again = await browser.newPage();
+    await again.goto(page.url());
+    await again.locator('[data-testid="compare-runs"] tbody tr', { hasText: 'gearbox-lr-0.05' }).waitFor({ timeout: 10_000 });
+    await again.close();
+    expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('refuses a comparison of one run, and says which run of a comparison does not exist', async () => {
+    const page = await browser.newPage();
+    await page.goto(`${server.url}/#/compare/${a.id}`);
+    expect(await page.locator('[data-testid="compare-error"]').textContent({ timeout: 10_000 })).toContain('2 to 6 runs');
+    await page.goto(`${server.url}/#/compare/${a.id},no-such-run`);
+    expect(await page.locator('[data-testid="run-error"]').textContent({ timeout: 10_000 })).toContain('No run matches “no-such-run”');
+    await page.locator('[data-testid="compare-runs"] tbody tr', { hasText: 'gearbox-lr-0.05' }).waitFor({ timeout: 10_000 });
+    await page.close();
+  });
+
+  it('opens a long run thinned, and fetches a zoomed range in full detail', async () => {
+    const page = await browser.newPage({ viewport: { width: 1280, height: 800 } });
+    const errors: string[] = [];
+    page.on('pageerror', (e) => errors.push(String(e)));
+    await page.goto(`${server.url}/#/run/${long.id}`);
+    const facts = page.locator('[data-testid="run-facts"]');
+    await facts.filter({ hasText: `${LONG} windows` }).waitFor({ timeout: 15_000 });
+    // The backfill carries 2000 of the 5000 windows.
+    expect(await facts.textContent()).toContain('(2000 drawn)');
+
+    // Steps 800 to 1600 hold 101 windows (one every 8 steps); the backfill has about 40 of them.
+    const detail = page.waitForRequest((r) => r.url().includes('/windows?from=800&to=1600'));
+    await page.fill('[data-testid="range-from"]', '800');
+    await page.fill('[data-testid="range-to"]', '1600');
+    await page.keyboard.press('Enter');
+    await detail;
+    await facts.filter({ hasText: /\((20[6-9]\d) drawn\)/ }).waitFor({ timeout: 10_000 });
+    expect(await page.textContent('[data-testid="detail-note"]')).toContain('full detail');
+    // Every chart shows the chosen range.
+    const ranges = await page.evaluate(() => document.querySelectorAll('[data-testid$="-chart"] canvas').length);
+    expect(ranges).toBeGreaterThanOrEqual(4);
+    // "Whole run" goes back; the detail stays merged in.
+    await page.click('[data-testid="range-whole"]');
+    expect(await page.inputValue('[data-testid="range-from"]')).toBe('');
+    expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('reconnects by itself after a server restart and shows what was stored meanwhile', async () => {
+    const port = await freePort();
+    const run = fakeRun({ id: 'run-restart-01', name: 'gearbox-restart' });
+    const all = fakeWindows(run, 10, 4, false);
+    store.beginRun(run);
+    store.append(windowRecords(all.slice(0, 6)));
+    let s = await startServer({ store, port, pollMs: 50, onError: () => {} });
+    const page = await browser.newPage();
+    try {
+      await page.goto(`${s.url}/#/run/${run.id}`);
+      await page.locator('[data-testid="run-step"]', { hasText: '48' }).waitFor({ timeout: 10_000 });
+      await s.close();
+      await page.locator('[data-testid="connection"]', { hasText: 'reconnecting' }).waitFor({ timeout: 10_000 });
+      // Written while no server was up: the page must fetch these after it reconnects.
+      store.append(windowRecords(all.slice(6)));
+      s = await startServer({ store, port, pollMs: 50, onError: () => {} });
+      await page.locator('[data-testid="connection"]', { hasText: 'live' }).waitFor({ timeout: 20_000 });
+      await page.locator('[data-testid="run-step"]', { hasText: '80' }).waitFor({ timeout: 10_000 });
+      expect(await page.textContent('[data-testid="run-facts"]')).toContain('10 windows');
+    } finally {
+      await page.close();
+      await s.close();
+    }
+  });
+
+  it('fits a 1280×800 screen and a phone-sized one without a sideways scroll', async () => {
+    for (const viewport of [
+      { width: 1280, height: 800 },
+      { width: 390, height: 844 },
+    ]) {
+      const page = await browser.newPage({ viewport });
+      await page.goto(`${server.url}/#/run/${a.id}`);
+      await page.waitForSelector('[data-testid="noise-chart"] canvas', { timeout: 10_000 });
+      expect(await overflows(page)).toBe(false);
+      const widest = await page.$$eval('canvas, svg', (els) => Math.max(...els.map((e) => e.getBoundingClientRect().right)));
+      expect(widest).toBeLessThanOrEqual(viewport.width);
+      if (SHOTS !== null && viewport.width < 500) await page.screenshot({ path: join(SHOTS, 'run-narrow.png'), fullPage: true });
+      await page.goto(`${server.url}/`);
+      await page.locator(`tr[data-run="${a.id}"]`).waitFor({ timeout: 10_000 });
+      expect(await overflows(page)).toBe(false);
+      await page.close();
+    }
+  });
+});
