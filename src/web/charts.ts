@@ -204,13 +204,17 @@ export class LineChart {
     return Math.max(280, Math.min(this.box.clientWidth || 900, 1100));
   }
 
-  update(data: uPlot.AlignedData, options: () => Omit<uPlot.Options, 'width' | 'height'>): void {
-    if (this.plot !== null && this.plot.series.length === data.length) {
+  private key = '';
+
+  /** New data; the chart is rebuilt when the number of series or the `key` (say, their labels) changed. */
+  update(data: uPlot.AlignedData, options: () => Omit<uPlot.Options, 'width' | 'height'>, key = ''): void {
+    if (this.plot !== null && this.plot.series.length === data.length && key === this.key) {
       if (this.zoom !== null) this.zoom.setData(this.plot, data);
       else this.plot.setData(data);
       return;
     }
     this.destroy();
+    this.key = key;
     const opts = options();
     if (this.zoom !== null) opts.hooks = { ...opts.hooks, setScale: [...(opts.hooks?.setScale ?? []), this.zoom.scaled] };
     this.plot = new uPlot({ ...opts, width: this.width(), height: this.height }, data, this.box);
@@ -252,11 +256,17 @@ export function zeroDbLine(u: uPlot): void {
 /** Tick labels for a log axis (uPlot passes null for the ticks it leaves unlabelled). */
 export const logValues = (_u: uPlot, ticks: (number | null)[]): string[] => ticks.map((t) => (t === null ? '' : formatNumber(t)));
 
+/**
+ * Dots on a line only while few windows are in view: they show where the measurements are, and past that
+ * they cost more drawing time than they tell (50 layers × 200 windows is 10,000 dots per chart).
+ */
+export const fewPoints = (_u: uPlot, _series: number, i0: number, i1: number): boolean => i1 - i0 < 40;
+
 /** The uPlot series of a layer (by index) or of the network. */
 export function lineSeries(label: string, i: number): uPlot.Series {
-  if (label === NETWORK_LABEL) return { label, stroke: NETWORK_STYLE.stroke, width: NETWORK_STYLE.width, spanGaps: false };
+  if (label === NETWORK_LABEL) return { label, stroke: NETWORK_STYLE.stroke, width: NETWORK_STYLE.width, spanGaps: false, points: { show: fewPoints } };
   const s = layerStyle(i);
-  return { label, stroke: s.stroke, dash: s.dash, width: 1.5, spanGaps: false };
+  return { label, stroke: s.stroke, dash: s.dash, width: 1.5, spanGaps: false, points: { show: fewPoints } };
 }
 
 function niceTicks(max: number, count = 5): number[] {

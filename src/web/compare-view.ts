@@ -12,6 +12,7 @@ import {
   COMPARE_MAX,
   COMPARE_MIN,
   NETWORK_LABEL,
+  compareLabels,
   currentPhase,
   formatNumber,
   latestAdvice,
@@ -21,7 +22,7 @@ import {
   travelColumns,
 } from './model.js';
 import { layerStyle } from './palette.js';
-import { LineChart, StepZoom, drawPhaseStrip, logValues, stepRangeForm, zeroDbLine } from './charts.js';
+import { LineChart, StepZoom, drawPhaseStrip, fewPoints, logValues, stepRangeForm, zeroDbLine } from './charts.js';
 import { RunFeed } from './run-feed.js';
 import { refusal, xLog } from './run-view.js';
 
@@ -106,11 +107,11 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
   const noise = new LineChart(noiseBox, 260, zoom);
   const charts = [snr, travel, loss, noise];
 
-  const names = (): string[] => feeds.map((f) => f.info?.name ?? f.id);
+  const names = (): string[] => compareLabels(feeds.map((f) => ({ id: f.info?.id ?? f.id, name: f.info?.name ?? f.id, tags: f.info?.tags ?? {} })));
   const windowsOf = (): WindowRecord[][] => feeds.map((f) => f.windows);
   const runSeries = (label: string, i: number, extra: Partial<uPlot.Series> = {}): uPlot.Series => {
     const s = layerStyle(i);
-    return { label, stroke: s.stroke, width: 2, ...extra };
+    return { label, stroke: s.stroke, width: 2, points: { show: fewPoints }, ...extra };
   };
 
   const drawFacts = (): void => {
@@ -127,12 +128,12 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
           'tr',
           { 'data-run': info?.id ?? f.id },
           el('td', {}, el('span', { class: 'swatch', style: `background:${s.stroke}`, 'aria-hidden': 'true' })),
-          el('td', {}, el('a', { href: `${location.pathname}${location.search}${runHash(info?.id ?? f.id)}` }, info?.name ?? f.id)),
+          el('td', {}, el('a', { href: `${location.pathname}${location.search}${runHash(info?.id ?? f.id)}` }, names()[i] ?? f.id)),
           el('td', { class: `status ${info?.status ?? ''}` }, info?.status ?? (f.failed ? 'not available' : 'loading…')),
           el('td', { class: 'num' }, step === null ? '–' : String(step)),
           el('td', {}, rows === null ? '–' : currentPhase(rows[0]!)),
           el('td', { class: 'num' }, exponent === null ? '–' : formatNumber(exponent)),
-          el('td', {}, adv.step === null ? 'keep training (no advice yet)' : `${adv.verdict} since step ${adv.step}`),
+          el('td', {}, adv.step === null ? 'keep training (no stop advice so far)' : `${adv.verdict} since step ${adv.step}`),
         );
       }),
     );
@@ -154,6 +155,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     const ws = windowsOf();
     if (ws.every((w) => w.length === 0)) return;
     const n = names();
+    const key = n.join('\u0000');
     const snrCols = overlayColumns(ws, (w) => w.network.grad_snr_db);
     const floorCols = overlayColumns(ws, (w) => 20 * Math.log10(w.snr_floor));
     // Both overlays cover the same windows, so their step columns agree.
@@ -166,7 +168,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
         ...n.map((name, i) => runSeries(`${name} noise floor`, i, { width: 1, dash: [1, 4] })),
       ],
       hooks: { draw: [drawStrip, zeroDbLine] },
-    }));
+    }), key);
     const travelCols = overlayColumns(ws, (w) => positive(w.network.weight_travel));
     travel.update([travelCols.steps, ...travelCols.series], () => ({
       scales: { x: xLog, y: { distr: 3 } },
@@ -175,7 +177,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
         { label: 'weight travel ‖w − w₀‖ (log scale)', values: logValues, size: 70 },
       ],
       series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
-    }));
+    }), key);
     const lossCols = overlayColumns(ws, (w) => w.logs.loss);
     const valCols = overlayColumns(ws, (w) => w.logs.val_loss);
     // val_loss exists at epoch ends only: its missing values are joined, not gaps.
@@ -188,7 +190,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
         ...n.map((name, i) => runSeries(`${name} loss`, i)),
         ...n.map((name, i) => runSeries(`${name} val_loss`, i, { width: 1.5, dash: [6, 3], points: { show: true, size: 6, fill: layerStyle(i).stroke } })),
       ],
-    }));
+    }), key);
     const noiseCols = overlayColumns(ws, (w) => positive(w.network.noise_scale));
     noise.update([noiseCols.steps, ...noiseCols.series], () => ({
       scales: { x: xLog, y: { distr: 3 } },
@@ -197,12 +199,17 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
         { label: 'examples (log scale)', values: logValues, size: 60 },
       ],
       series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
-    }));
+    }), key);
   };
 
+  // Drawn once per animation frame, however many runs' windows arrived in it.
+  let frame: number | null = null;
   const draw = (): void => {
-    drawFacts();
-    drawCharts();
+    frame ??= requestAnimationFrame(() => {
+      frame = null;
+      drawFacts();
+      drawCharts();
+    });
   };
   ids.forEach((id) => {
     feeds.push(
@@ -220,6 +227,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
   window.addEventListener('resize', onResize);
   return {
     dispose() {
+      if (frame !== null) cancelAnimationFrame(frame);
       for (const f of feeds) f.dispose();
       window.removeEventListener('resize', onResize);
       for (const c of charts) c.destroy();

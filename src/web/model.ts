@@ -137,7 +137,7 @@ export function adviceSentence(a: AdviceView): string {
       : a.verdict === 'may-stop'
         ? 'Stop advice: training may be near the point where it stops paying off'
         : 'Stop advice: keep training';
-  const at = a.step === null ? ' (no advice recorded yet)' : ` (since step ${a.step})`;
+  const at = a.step === null ? ' (no stop advice so far)' : ` (since step ${a.step})`;
   return `${head}${at}.${a.reason === null ? '' : ` Reason: ${a.reason}.`}`;
 }
 
@@ -401,4 +401,19 @@ export function overlayColumns(runs: readonly (readonly WindowRecord[])[], value
 /** The phase a row is in at its end ('undetermined' before any marker). */
 export function currentPhase(row: PhaseRow): PhaseName {
   return row.segments.at(-1)?.phase ?? 'undetermined';
+}
+
+/**
+ * Labels for compared runs: the name, and where names repeat (a sweep often reuses one), the tags in which
+ * those runs differ, or else the start of the id.
+ */
+export function compareLabels(runs: readonly { id: string; name: string; tags: Record<string, string> }[]): string[] {
+  return runs.map((r) => {
+    const twins = runs.filter((o) => o.name === r.name);
+    if (twins.length < 2) return r.name;
+    const keys = [...new Set(twins.flatMap((t) => Object.keys(t.tags)))].sort();
+    const differing = keys.filter((k) => new Set(twins.map((t) => t.tags[k])).size > 1);
+    if (differing.length > 0) return `${r.name} (${differing.map((k) => `${k}=${r.tags[k] ?? '–'}`).join(' ')})`;
+    return `${r.name} (${r.id.slice(0, 8)})`;
+  });
 }

@@ -305,13 +305,24 @@ export function runView(root: HTMLElement, live: Live, id: string): View {
     drawInfo();
   };
 
+  // Changes are drawn once per animation frame: windows that arrive together (a poll that found several,
+  // a burst after a stall) cost one redraw, not one each.
+  let pending = { series: false, markers: false };
+  let frame: number | null = null;
   const onChange = (change: FeedChange): void => {
-    drawHeader();
-    if (change !== 'marker') drawSeries();
-    if (change !== 'window' && change !== 'detail') {
-      drawStrip();
-      drawMarkers();
-    }
+    if (change !== 'marker') pending.series = true;
+    if (change !== 'window' && change !== 'detail') pending.markers = true;
+    frame ??= requestAnimationFrame(() => {
+      frame = null;
+      const todo = pending;
+      pending = { series: false, markers: false };
+      drawHeader();
+      if (todo.series) drawSeries();
+      if (todo.markers) {
+        drawStrip();
+        drawMarkers();
+      }
+    });
   };
   feed = new RunFeed(live, id, BACKFILL_POINTS, onChange, (code, message) => {
     main.replaceChildren(back, el('h2', {}, 'Run not available'), el('p', { class: 'error', 'data-testid': 'run-error' }, refusal(id, code, message)));
@@ -324,6 +335,7 @@ export function runView(root: HTMLElement, live: Live, id: string): View {
   window.addEventListener('resize', onResize);
   return {
     dispose() {
+      if (frame !== null) cancelAnimationFrame(frame);
       feed?.dispose();
       window.removeEventListener('resize', onResize);
       for (const c of [snr, travel, loss, noise]) c.destroy();

@@ -4,6 +4,7 @@ import {
   CAUTION,
   adviceSentence,
   compareHash,
+  compareLabels,
   currentPhase,
   mergeWindows,
   overlayColumns,
@@ -241,5 +242,15 @@ describe('page model', () => {
     expect(currentPhase(phaseRows([], [], 1, 100)[0]!)).toBe('undetermined');
     expect(currentPhase(phaseRows([], [marker('drift-start', 5)], 1, 100)[0]!)).toBe('drift');
     expect(currentPhase(phaseRows([], [marker('drift-start', 5), marker('diffusion-start', 50)], 1, 100)[0]!)).toBe('diffusion');
+  });
+
+  it('labels compared runs by name, adding the differing tags (or the id) where names repeat', () => {
+    const runs: { id: string; name: string; tags: Record<string, string> }[] = [
+      { id: 'aaaaaaaa-1', name: 'gearbox', tags: { lr: '0.01', seed: '1' } },
+      { id: 'bbbbbbbb-2', name: 'gearbox', tags: { lr: '0.05', seed: '1' } },
+      { id: 'cccccccc-3', name: 'other', tags: {} },
+    ];
+    expect(compareLabels(runs)).toEqual(['gearbox (lr=0.01)', 'gearbox (lr=0.05)', 'other']);
+    expect(compareLabels([runs[2]!, { ...runs[2]!, id: 'dddddddd-4' }])).toEqual(['other (cccccccc)', 'other (dddddddd)']);
   });
 });
