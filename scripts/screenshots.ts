@@ -60,7 +60,8 @@ try {
     await page.goto(`${server.url}/#/run/${older.id}`);
     await page.locator('[data-testid="info-section"] circle.info-point').first().waitFor();
     await page.waitForSelector('[data-testid="noise-chart"] canvas');
-    await shot('run.png', true);
+    await shot('run.png', false);
+    await shot('run-full.png', true);
 
     await page.goto(`${server.url}/#/compare/${older.id},${newer.id}`);
     await page.waitForSelector('[data-testid="compare-noise"] canvas');

@@ -13,6 +13,7 @@ import { startServer, type RunningServer } from '../../src/server/serve.js';
 import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
 import { CHROMIUM, countColour, ensurePageBuilt, haveChromium, launchChromium } from '../helpers/browser.js';
 import { freePort } from '../helpers/server-child.js';
+import { formatNumber } from '../../src/web/model.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const inCI = Boolean(process.env.CI);
@@ -95,6 +96,11 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     // Run a has a diffusion-start marker for the network (fakeMarkers): its phase now is diffusion.
     expect(texts[1]).toContain('diffusion');
     expect(texts[0]).toContain('undetermined');
+    // Each row's travel exponent is that run's latest network value, as stored.
+    const exponentOf = (id: string): string => formatNumber(store.windows(id).at(-1)!.network.travel_exponent!);
+    const cells = await page.$$eval('[data-testid="compare-runs"] tbody tr', (trs) => trs.map((tr) => tr.children[5]!.textContent));
+    expect(cells).toEqual([exponentOf(b.id), exponentOf(a.id)]);
+    expect(cells[0]).not.toBe(cells[1]);
 
     // Each run's line is drawn in its colour: the first Okabe & Ito blue, the second orange.
     const snr = '[data-testid="compare-snr"] canvas';
