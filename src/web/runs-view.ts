@@ -35,6 +35,10 @@ export function runsView(root: HTMLElement, live: Live): View {
   });
 
   const draw = (): void => {
+    // A live update rebuilds the rows; whoever was tabbing through them keeps their place.
+    const active = document.activeElement;
+    const focusedRun = active instanceof HTMLElement && body.contains(active) ? (active.closest('tr')?.dataset.run ?? null) : null;
+    const focusedBox = active instanceof HTMLInputElement;
     const shown = rows.filter((r) => runMatches(r, search.value));
     note.textContent = rows.length === 0 ? 'No runs stored yet.' : shown.length === 0 ? 'No run matches the filter.' : `${shown.length} of ${rows.length} runs`;
     body.replaceChildren(
@@ -60,6 +64,11 @@ export function runsView(root: HTMLElement, live: Live): View {
         );
       }),
     );
+    if (focusedRun !== null) {
+      const row = Array.from(body.rows).find((tr) => tr.dataset.run === focusedRun);
+      const target = row?.querySelector(focusedBox ? 'input' : 'a');
+      if (target instanceof HTMLElement) target.focus();
+    }
   };
   search.addEventListener('input', draw);
   drawCompare();

@@ -76,6 +76,12 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     };
     await tabTo(`Compare ${b.name}`);
     await page.keyboard.press('Space');
+    // A run that starts meanwhile redraws the list; the focus and the tick stay where they were.
+    const c = fakeRun({ id: 'run-cmp-000c', name: 'gearbox-started-later', started_at: 1_700_000_200_000 });
+    store.beginRun(c);
+    await page.locator(`tr[data-run="${c.id}"]`).waitFor({ timeout: 10_000 });
+    expect(await page.evaluate(() => document.activeElement?.getAttribute('aria-label'))).toBe(`Compare ${b.name}`);
+    expect(await page.isChecked(`tr[data-run="${b.id}"] input[type="checkbox"]`)).toBe(true);
     await tabTo(`Compare ${a.name}`);
     await page.keyboard.press('Space');
     expect(await page.textContent('[data-testid="compare-button"]')).toBe('Compare 2 runs');
