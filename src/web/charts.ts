@@ -3,7 +3,7 @@
  * here), and a small holder for the uPlot line charts that redraws in place while the series stay the same.
  */
 import uPlot from 'uplot';
-import { formatNumber, NETWORK_LABEL, type InfoTrajectory, type PhaseName, type PhaseRow } from './model.js';
+import { formatNumber, NETWORK_LABEL, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY, layerStyle } from './palette.js';
 
 const SVG_NS = 'http://www.w3.org/2000/svg';
@@ -121,73 +121,70 @@ export function phaseLegend(): HTMLElement {
   return ul;
 }
 
-/** A step range shown on the charts. */
-export interface StepRange {
-  min: number;
-  max: number;
-}
 
 /**
  * One step range for all the charts of a view: zooming one (drag across it) zooms the others, a double
  * click goes back to the whole run, and `changed` hears of it (the run view then fetches the zoomed part in
- * full detail). New data would reset a chart's scales, so data goes in through `setData`, which keeps the zoom.
+ * full detail). The user's intent is read from the mouse, not from uPlot's scale events, which also fire
+ * for new data and new charts. New data would reset a chart's scales, so it goes in through `setData`.
  */
 export class StepZoom {
   range: StepRange | null = null;
   private readonly plots = new Set<uPlot>();
-  private quiet = 0;
+  private dragged: uPlot | null = null;
+  private readonly onMouseUp = (): void => {
+    const u = this.dragged;
+    this.dragged = null;
+    // uPlot applies a drag's range in its own mouseup handler; read it once that has run.
+    if (u !== null) setTimeout(() => this.fromUser(u), 0);
+  };
 
   constructor(private readonly changed: (range: StepRange | null) => void = () => {}) {}
 
   add(u: uPlot): void {
+    if (this.plots.size === 0) window.addEventListener('mouseup', this.onMouseUp);
     this.plots.add(u);
-    if (this.range !== null) this.quietly(() => u.setScale('x', this.range!));
+    u.over.addEventListener('mousedown', () => {
+      this.dragged = u;
+    });
+    u.over.addEventListener('dblclick', () => setTimeout(() => this.fromUser(u), 0));
+    if (this.range !== null) u.setScale('x', this.range);
   }
 
   remove(u: uPlot): void {
     this.plots.delete(u);
+    if (this.plots.size === 0) window.removeEventListener('mouseup', this.onMouseUp);
   }
 
-  /** uPlot's setScale hook: a user's zoom or reset on one chart. */
-  readonly scaled = (u: uPlot, key: string): void => {
-    if (key !== 'x' || this.quiet > 0) return;
+  /** After a drag or a double click on one chart: its step range becomes every chart's. */
+  private fromUser(u: uPlot): void {
     const min = u.scales.x?.min;
     const max = u.scales.x?.max;
     if (min === undefined || max === undefined || min === null || max === null) return;
     const xs = u.data[0];
     const whole = xs.length === 0 || (min <= xs[0]! && max >= xs[xs.length - 1]!);
-    this.set(whole ? null : { min, max });
-  };
+    const next = whole ? null : { min, max };
+    // A click without a drag changes nothing.
+    if (next === null ? this.range === null : this.range !== null && next.min === this.range.min && next.max === this.range.max) return;
+    this.set(next);
+  }
 
   /** Shows this range on every chart (null: each its whole data). */
   set(range: StepRange | null): void {
     this.range = range;
-    this.quietly(() => {
-      for (const u of this.plots) this.apply(u);
-    });
+    for (const u of this.plots) this.apply(u);
     this.changed(range);
   }
 
   setData(u: uPlot, data: uPlot.AlignedData): void {
-    this.quietly(() => {
-      u.setData(data);
-      if (this.range !== null) u.setScale('x', this.range);
-    });
+    u.setData(data);
+    if (this.range !== null) u.setScale('x', this.range);
   }
 
   private apply(u: uPlot): void {
     const xs = u.data[0];
     if (this.range !== null) u.setScale('x', this.range);
     else if (xs.length > 0) u.setScale('x', { min: xs[0]!, max: xs[xs.length - 1]! });
-  }
-
-  private quietly(f: () => void): void {
-    this.quiet++;
-    try {
-      f();
-    } finally {
-      this.quiet--;
-    }
   }
 }
 
@@ -216,7 +213,12 @@ export class LineChart {
     this.destroy();
     this.key = key;
     const opts = options();
-    if (this.zoom !== null) opts.hooks = { ...opts.hooks, setScale: [...(opts.hooks?.setScale ?? []), this.zoom.scaled] };
+    // The shown step range, on the box: what the browser tests read to see every chart follow a zoom.
+    const mark = (u: uPlot, key: string): void => {
+      if (key !== 'x') return;
+      this.box.dataset.steps = `${Math.round(u.scales.x?.min ?? 0)}-${Math.round(u.scales.x?.max ?? 0)}`;
+    };
+    opts.hooks = { ...opts.hooks, setScale: [...(opts.hooks?.setScale ?? []), mark] };
     this.plot = new uPlot({ ...opts, width: this.width(), height: this.height }, data, this.box);
     this.zoom?.add(this.plot);
   }

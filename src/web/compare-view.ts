@@ -20,18 +20,19 @@ import {
   phaseRows,
   runHash,
   travelColumns,
+  type StepRange,
 } from './model.js';
 import { layerStyle } from './palette.js';
 import { LineChart, StepZoom, drawPhaseStrip, fewPoints, logValues, stepRangeForm, zeroDbLine } from './charts.js';
 import { RunFeed } from './run-feed.js';
-import { refusal, xLog } from './run-view.js';
+import { keepRangeInUrl, refusal, xLog } from './run-view.js';
 
 /** Windows per run in the backfill: six runs together stay as light as one run's view. */
 const COMPARE_POINTS = 800;
 
 const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
 
-export function compareView(root: HTMLElement, live: Live, ids: readonly string[]): View {
+export function compareView(root: HTMLElement, live: Live, ids: readonly string[], initial: StepRange | null = null): View {
   const back = el('a', { href: `${location.pathname}${location.search}#/` }, '← all runs');
   if (ids.length < COMPARE_MIN || ids.length > COMPARE_MAX) {
     root.append(
@@ -62,17 +63,22 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
   const detailNote = el('p', { class: 'note', 'aria-live': 'polite' });
 
   const feeds: RunFeed[] = [];
-  const zoom = new StepZoom((range) => {
-    rangeForm.show(range);
-    if (range === null) return;
-    Promise.all(feeds.map((f) => f.detail(range).catch(() => false))).then(
+  const fetchDetail = (range: StepRange, from: readonly RunFeed[]): void => {
+    Promise.all(from.map((f) => f.detail(range).catch(() => false))).then(
       (got) => {
         if (got.some((g) => g)) detailNote.textContent = `Showing steps ${formatNumber(Math.round(range.min))} to ${formatNumber(Math.round(range.max))} in full detail.`;
       },
       () => {},
     );
+  };
+  const zoom = new StepZoom((range) => {
+    rangeForm.show(range);
+    keepRangeInUrl(range);
+    if (range !== null) fetchDetail(range, feeds);
   });
   const rangeForm = stepRangeForm(zoom);
+  zoom.range = initial;
+  rangeForm.show(initial);
 
   root.append(
     el(
@@ -212,12 +218,20 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     });
   };
   ids.forEach((id) => {
-    feeds.push(
-      new RunFeed(live, id, COMPARE_POINTS, draw, (code, message) => {
+    const feed: RunFeed = new RunFeed(
+      live,
+      id,
+      COMPARE_POINTS,
+      (change) => {
+        if (change === 'backfill' && zoom.range !== null) fetchDetail(zoom.range, [feed]);
+        draw();
+      },
+      (code, message) => {
         errors.append(el('p', { class: 'error', 'data-testid': 'run-error' }, refusal(id, code, message)));
         drawFacts();
-      }),
+      },
     );
+    feeds.push(feed);
   });
   drawFacts();
 

@@ -24,7 +24,7 @@ function render(): void {
   current?.dispose();
   root.replaceChildren();
   const route = parseRoute(location.hash);
-  current = route.view === 'run' ? runView(root, live, route.id) : route.view === 'compare' ? compareView(root, live, route.ids) : runsView(root, live);
+  current = route.view === 'run' ? runView(root, live, route.id, route.range) : route.view === 'compare' ? compareView(root, live, route.ids, route.range) : runsView(root, live);
   // A new view: move focus to its heading, so keyboard and screen-reader users start at the top of it.
   const heading = root.querySelector('h2');
   if (heading !== null) {

@@ -35,7 +35,13 @@ export function mergeRuns(current: readonly RunRowView[], incoming: readonly Run
   return [...byId.values()].sort((a, b) => b.created_at - a.created_at || a.id.localeCompare(b.id));
 }
 
-export type Route = { view: 'runs' } | { view: 'run'; id: string } | { view: 'compare'; ids: string[] };
+/** A step range shown on the charts. */
+export interface StepRange {
+  min: number;
+  max: number;
+}
+
+export type Route = { view: 'runs' } | { view: 'run'; id: string; range: StepRange | null } | { view: 'compare'; ids: string[]; range: StepRange | null };
 
 /** The compare view overlays this many runs at least and at most. */
 export const COMPARE_MIN = 2;
@@ -50,21 +56,49 @@ function decodePart(text: string): string {
   }
 }
 
+/** The fragment's own query (`#/run/x?steps=8-800&token=T`). */
+function fragmentQuery(hash: string): URLSearchParams {
+  const h = hash.replace(/^#/, '');
+  const i = h.indexOf('?');
+  return new URLSearchParams(i >= 0 ? h.slice(i + 1) : '');
+}
+
+/** `steps=A-B` (0 < A < B): the zoomed step range of the view. */
+function rangeOf(hash: string): StepRange | null {
+  const m = /^(\d+(?:\.\d+)?)-(\d+(?:\.\d+)?)$/.exec(fragmentQuery(hash).get('steps') ?? '');
+  if (m === null) return null;
+  const min = Number(m[1]);
+  const max = Number(m[2]);
+  return min > 0 && max > min ? { min, max } : null;
+}
+
 /**
  * `#/run/<id>` opens a run, `#/compare/<id>,<id>,…` overlays runs (ids escaped, so a comma in one stays
- * apart from the separators; repeats dropped); anything else is the list. A token in the fragment
- * (`#/…?token=T`) is ignored here.
+ * apart from the separators; repeats dropped); anything else is the list. `?steps=A-B` in the fragment is the
+ * zoomed step range; a token there (`?token=T`) is read by tokenFrom.
  */
 export function parseRoute(hash: string): Route {
   const path = hash.replace(/^#/, '').split('?')[0] ?? '';
   const run = /^\/run\/(.+)$/.exec(path);
-  if (run?.[1] !== undefined) return { view: 'run', id: decodePart(run[1]) };
+  if (run?.[1] !== undefined) return { view: 'run', id: decodePart(run[1]), range: rangeOf(hash) };
   const cmp = /^\/compare\/(.+)$/.exec(path);
   if (cmp?.[1] !== undefined) {
     const ids = [...new Set(cmp[1].split(',').filter((p) => p.length > 0).map(decodePart))];
-    return { view: 'compare', ids };
+    return { view: 'compare', ids, range: rangeOf(hash) };
   }
   return { view: 'runs' };
+}
+
+/** The fragment with its step range replaced (or removed, for null); the rest of its query stays. */
+export function withRange(hash: string, range: StepRange | null): string {
+  const h = hash.replace(/^#/, '');
+  const i = h.indexOf('?');
+  const path = i >= 0 ? h.slice(0, i) : h;
+  const q = fragmentQuery(hash);
+  if (range === null) q.delete('steps');
+  else q.set('steps', `${Math.round(range.min)}-${Math.round(range.max)}`);
+  const rest = q.toString().replace(/%2C/gi, ',');
+  return `#${path}${rest === '' ? '' : `?${rest}`}`;
 }
 
 export function runHash(id: string): string {

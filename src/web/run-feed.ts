@@ -6,8 +6,7 @@
 import type { BackfillMessage, LiveMessage } from '../protocol/messages.js';
 import type { Marker, WindowRecord } from '../protocol/records.js';
 import { getJson, type Live } from './connection.js';
-import { mergeWindows, windowsIn } from './model.js';
-import type { StepRange } from './charts.js';
+import { mergeWindows, windowsIn, type StepRange } from './model.js';
 
 export type FeedChange = 'backfill' | 'window' | 'marker' | 'detail';
 

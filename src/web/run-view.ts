@@ -19,6 +19,8 @@ import {
   phaseRows,
   snrColumns,
   travelColumns,
+  withRange,
+  type StepRange,
 } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
 import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, logValues, phaseLegend, stepRangeForm, zeroDbLine } from './charts.js';
@@ -27,7 +29,17 @@ import { RunFeed, type FeedChange } from './run-feed.js';
 /** Windows in the first backfill of a run: enough for a smooth line at any screen width. */
 export const BACKFILL_POINTS = 2000;
 
-export const xLog: uPlot.Scale = { time: false, distr: 3 };
+/**
+ * The step axis, logarithmic. Its range is exactly the data's (or the zoom's): uPlot's default log range
+ * widens to whole decades, which left a run of 3,000 steps on an axis to 10,000.
+ */
+export const xLog: uPlot.Scale = { time: false, distr: 3, range: (_u, min, max) => (min === max ? [min / 2, max * 2] : [min, max]) };
+
+/** The zoomed range goes into the URL (replacing, so Back still leaves the view), and a link reopens it. */
+export function keepRangeInUrl(range: StepRange | null): void {
+  const hash = withRange(location.hash, range);
+  if (hash !== location.hash) history.replaceState(null, '', `${location.pathname}${location.search}${hash}`);
+}
 
 /** A message for a run the server refused. */
 export function refusal(ref: string, code: string, message: string): string {
@@ -38,7 +50,7 @@ export function refusal(ref: string, code: string, message: string): string {
       : `The server refused this run: ${message}`;
 }
 
-export function runView(root: HTMLElement, live: Live, id: string): View {
+export function runView(root: HTMLElement, live: Live, id: string, initial: StepRange | null = null): View {
   const back = el('a', { href: `${location.pathname}${location.search}#/` }, '← all runs');
   const title = el('h2', { 'data-testid': 'run-name' }, id);
   const facts = el('p', { class: 'facts', 'data-testid': 'run-facts' }, 'Loading…');
@@ -96,9 +108,8 @@ export function runView(root: HTMLElement, live: Live, id: string): View {
   );
 
   let feed: RunFeed | null = null;
-  const zoom = new StepZoom((range) => {
-    rangeForm.show(range);
-    if (range === null || feed === null) return;
+  const fetchDetail = (range: StepRange): void => {
+    if (feed === null) return;
     detailNote.textContent = '';
     feed
       .detail(range)
@@ -108,8 +119,16 @@ export function runView(root: HTMLElement, live: Live, id: string): View {
       .catch((e: unknown) => {
         detailNote.textContent = `Could not fetch the detail of this range: ${(e as Error).message}`;
       });
+  };
+  const zoom = new StepZoom((range) => {
+    rangeForm.show(range);
+    keepRangeInUrl(range);
+    if (range !== null) fetchDetail(range);
   });
   const rangeForm = stepRangeForm(zoom);
+  // A link with a step range opens zoomed; its detail is fetched once the run is known.
+  zoom.range = initial;
+  rangeForm.show(initial);
 
   const main = el(
     'section',
@@ -312,6 +331,7 @@ export function runView(root: HTMLElement, live: Live, id: string): View {
   const onChange = (change: FeedChange): void => {
     if (change !== 'marker') pending.series = true;
     if (change !== 'window' && change !== 'detail') pending.markers = true;
+    if (change === 'backfill' && zoom.range !== null) fetchDetail(zoom.range);
     frame ??= requestAnimationFrame(() => {
       frame = null;
       const todo = pending;

@@ -9,6 +9,7 @@ import {
   mergeWindows,
   overlayColumns,
   windowsIn,
+  withRange,
   decodeJson,
   infoTrajectories,
   latestAdvice,
@@ -62,13 +63,20 @@ describe('page model', () => {
   it('reads the route and the token from the URL', () => {
     expect(parseRoute('')).toEqual({ view: 'runs' });
     expect(parseRoute('#/')).toEqual({ view: 'runs' });
-    expect(parseRoute(runHash('run/x y'))).toEqual({ view: 'run', id: 'run/x y' });
-    expect(parseRoute('#/run/abc?token=secret-123')).toEqual({ view: 'run', id: 'abc' });
-    expect(parseRoute('#/run/%E0%A4%A')).toEqual({ view: 'run', id: '%E0%A4%A' });
+    expect(parseRoute(runHash('run/x y'))).toEqual({ view: 'run', id: 'run/x y', range: null });
+    expect(parseRoute('#/run/abc?token=secret-123')).toEqual({ view: 'run', id: 'abc', range: null });
+    expect(parseRoute('#/run/%E0%A4%A')).toEqual({ view: 'run', id: '%E0%A4%A', range: null });
     // Compare: ids escaped, so a comma inside one is not a separator; repeats dropped.
     expect(compareHash(['a,1', 'b'])).toBe('#/compare/a%2C1,b');
-    expect(parseRoute(compareHash(['a,1', 'b']))).toEqual({ view: 'compare', ids: ['a,1', 'b'] });
-    expect(parseRoute('#/compare/x,,y,x?token=t-12345678')).toEqual({ view: 'compare', ids: ['x', 'y'] });
+    expect(parseRoute(compareHash(['a,1', 'b']))).toEqual({ view: 'compare', ids: ['a,1', 'b'], range: null });
+    expect(parseRoute('#/compare/x,,y,x?token=t-12345678')).toEqual({ view: 'compare', ids: ['x', 'y'], range: null });
+    // The zoomed step range rides in the fragment's query, beside a token, and only a sensible one is read.
+    expect(parseRoute('#/run/abc?steps=800-1600&token=t-12345678')).toEqual({ view: 'run', id: 'abc', range: { min: 800, max: 1600 } });
+    expect(parseRoute('#/run/abc?steps=1600-800')).toEqual({ view: 'run', id: 'abc', range: null });
+    expect(parseRoute('#/run/abc?steps=0-10')).toEqual({ view: 'run', id: 'abc', range: null });
+    expect(withRange('#/compare/a,b?token=t-12345678', { min: 800.4, max: 1599.6 })).toBe('#/compare/a,b?token=t-12345678&steps=800-1600');
+    expect(withRange('#/run/abc?steps=800-1600&token=t-12345678', null)).toBe('#/run/abc?token=t-12345678');
+    expect(withRange('#/run/abc', null)).toBe('#/run/abc');
     expect(tokenFrom('?token=t1', '')).toBe('t1');
     expect(tokenFrom('', '#/run/a?token=t2')).toBe('t2');
     expect(tokenFrom('', '#token=t3')).toBe('t3');

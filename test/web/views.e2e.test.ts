@@ -166,12 +166,46 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     await detail;
     await facts.filter({ hasText: /\((20[6-9]\d) drawn\)/ }).waitFor({ timeout: 10_000 });
     expect(await page.textContent('[data-testid="detail-note"]')).toContain('full detail');
-    // Every chart shows the chosen range.
-    const ranges = await page.evaluate(() => document.querySelectorAll('[data-testid$="-chart"] canvas').length);
-    expect(ranges).toBeGreaterThanOrEqual(4);
-    // "Whole run" goes back; the detail stays merged in.
+    // The range is in the URL; every chart shows it.
+    expect(new URL(page.url()).hash).toBe(`#/run/${long.id}?steps=800-1600`);
+    const shown = (): Promise<(string | null)[]> => page.$$eval('[data-testid$="-chart"][data-steps]', (boxes) => boxes.map((b) => b.getAttribute('data-steps')));
+    await page.waitForFunction(() => document.querySelectorAll('[data-testid$="-chart"][data-steps="800-1600"]').length === 4);
+    expect(await shown()).toEqual(['800-1600', '800-1600', '800-1600', '800-1600']);
+
+    // "Whole run" goes back and takes the range out of the URL; the detail stays merged in.
     await page.click('[data-testid="range-whole"]');
     expect(await page.inputValue('[data-testid="range-from"]')).toBe('');
+    expect(new URL(page.url()).hash).toBe(`#/run/${long.id}`);
+
+    // A drag across the SNR chart zooms every chart: the form and the URL take the dragged range.
+    const over = await page.locator('[data-testid="snr-chart"] .u-over').boundingBox();
+    if (over === null) throw new Error('no plotting area');
+    await page.mouse.move(over.x + over.width * 0.4, over.y + over.height / 2);
+    await page.mouse.down();
+    await page.mouse.move(over.x + over.width * 0.6, over.y + over.height / 2, { steps: 5 });
+    await page.mouse.up();
+    await page.waitForFunction(() => location.hash.includes('steps='));
+    const from = Number(await page.inputValue('[data-testid="range-from"]'));
+    const to = Number(await page.inputValue('[data-testid="range-to"]'));
+    expect(from).toBeGreaterThan(8);
+    expect(to).toBeGreaterThan(from);
+    expect(to).toBeLessThan(LONG * 8);
+    await page.waitForFunction((r) => Array.from(document.querySelectorAll('[data-testid$="-chart"][data-steps]')).every((b) => b.getAttribute('data-steps') === r), `${from}-${to}`);
+    expect(await shown()).toEqual(Array(4).fill(`${from}-${to}`));
+    // A double click goes back to the whole run.
+    await page.mouse.dblclick(over.x + over.width / 2, over.y + over.height / 2);
+    await page.waitForFunction(() => !location.hash.includes('steps='));
+    expect(await shown()).toEqual(Array(4).fill(`8-${LONG * 8}`));
+    expect(await page.inputValue('[data-testid="range-from"]')).toBe('');
+
+    // A link with a range opens zoomed, and fetches that range's detail by itself.
+    const linked = await browser.newPage({ viewport: { width: 1280, height: 800 } });
+    const detailAgain = linked.waitForRequest((r) => r.url().includes('/windows?from=2000&to=3000'));
+    await linked.goto(`${server.url}/#/run/${long.id}?steps=2000-3000`);
+    await detailAgain;
+    expect(await linked.inputValue('[data-testid="range-from"]')).toBe('2000');
+    await linked.locator('[data-testid="detail-note"]', { hasText: 'full detail' }).waitFor({ timeout: 10_000 });
+    await linked.close();
     expect(errors).toEqual([]);
     await page.close();
   });
