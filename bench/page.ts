@@ -26,7 +26,7 @@ import type { LayerStats, RunInfo, SinkRecord, WindowRecord } from '../src/proto
 import { startServer, type RunningServer } from '../src/server/serve.js';
 import { openStore, type SqliteStore } from '../src/storage/sqlite-store.js';
 import { CHROMIUM, ensurePageBuilt, haveChromium, launchChromium } from '../test/helpers/browser.js';
-import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
+import { fakeRun, fakeWindows, windowAt } from '../test/helpers/window-records.js';
 import { printTable, progress } from './report.js';
 
 const { values } = parseArgs({ options: { quick: { type: 'boolean', default: false } } });
@@ -75,22 +75,11 @@ function writeBigRun(store: SqliteStore, run: RunInfo, n: number): void {
   for (let start = 0; start < n; start += 20_000) {
     const chunk: SinkRecord[] = [];
     for (let w = start; w < Math.min(n, start + 20_000); w++) {
-      const window: WindowRecord = {
-        run: run.id,
-        index: w,
-        step: (w + 1) * 8,
-        first_step: w * 8 + 1,
-        epoch: Math.floor(w / 10),
-        batches: 8,
-        batch_size: 32,
-        batches_per_epoch: 80,
-        pass_batches: [8],
-        snr_floor: Math.sqrt((1 - 8 / 80) / 8),
-        time: run.started_at + w * 100,
+      const window = windowAt(run, w, {
         layers: { [layer.name]: lean(w, n, layer.params, noise) },
         network: lean(w, n, layer.params, noise),
         logs: { loss: 1 / Math.sqrt(w + 1) + 0.01 * noise() },
-      };
+      });
       chunk.push({ type: 'window', window });
     }
     store.append(chunk);

@@ -259,6 +259,23 @@ export function zeroDbLine(u: uPlot): void {
 export const logValues = (_u: uPlot, ticks: (number | null)[]): string[] => ticks.map((t) => (t === null ? '' : formatNumber(t)));
 
 /**
+ * The step axis, logarithmic. Its range is exactly the data's (or the zoom's): uPlot's default log range
+ * widens to whole decades, which left a run of 3,000 steps on an axis to 10,000.
+ */
+export const xLog: uPlot.Scale = { time: false, distr: 3, range: (_u, min, max) => (min === max ? [min / 2, max * 2] : [min, max]) };
+
+/**
+ * Scales and axes of a chart against step (log axis): a linear y axis with this label, or, given the axis
+ * width in pixels, a logarithmic one (its label should say so).
+ */
+export function stepChart(yLabel: string, logWidth?: number): Pick<uPlot.Options, 'scales' | 'axes'> {
+  return {
+    scales: { x: xLog, y: logWidth === undefined ? { auto: true } : { distr: 3 } },
+    axes: [{ label: 'step (log scale)', values: logValues }, logWidth === undefined ? { label: yLabel } : { label: yLabel, values: logValues, size: logWidth }],
+  };
+}
+
+/**
  * Dots on a line only while few windows are in view: they show where the measurements are, and past that
  * they cost more drawing time than they tell (50 layers × 200 windows is 10,000 dots per chart).
  */

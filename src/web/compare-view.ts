@@ -23,9 +23,9 @@ import {
   type StepRange,
 } from './model.js';
 import { layerStyle } from './palette.js';
-import { LineChart, StepZoom, drawPhaseStrip, fewPoints, logValues, stepRangeForm, zeroDbLine } from './charts.js';
+import { LineChart, StepZoom, drawPhaseStrip, fewPoints, stepChart, stepRangeForm, zeroDbLine } from './charts.js';
 import { RunFeed } from './run-feed.js';
-import { keepRangeInUrl, refusal, xLog } from './run-view.js';
+import { keepRangeInUrl, refusal } from './run-view.js';
 
 /** Windows per run in the backfill: six runs together stay as light as one run's view. */
 const COMPARE_POINTS = 800;
@@ -166,8 +166,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     const floorCols = overlayColumns(ws, (w) => 20 * Math.log10(w.snr_floor));
     // Both overlays cover the same windows, so their step columns agree.
     snr.update([snrCols.steps, ...snrCols.series, ...floorCols.series], () => ({
-      scales: { x: xLog, y: { auto: true } },
-      axes: [{ label: 'step (log scale)', values: logValues }, { label: 'gradient SNR (dB)' }],
+      ...stepChart('gradient SNR (dB)'),
       series: [
         { label: 'step' },
         ...n.map((name, i) => runSeries(name, i)),
@@ -177,11 +176,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     }), key);
     const travelCols = overlayColumns(ws, (w) => positive(w.network.weight_travel));
     travel.update([travelCols.steps, ...travelCols.series], () => ({
-      scales: { x: xLog, y: { distr: 3 } },
-      axes: [
-        { label: 'step (log scale)', values: logValues },
-        { label: 'weight travel ‖w − w₀‖ (log scale)', values: logValues, size: 70 },
-      ],
+      ...stepChart('weight travel ‖w − w₀‖ (log scale)', 70),
       series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
     }), key);
     const lossCols = overlayColumns(ws, (w) => w.logs.loss);
@@ -189,8 +184,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     // val_loss exists at epoch ends only: its missing values are joined, not gaps.
     const valSeries = valCols.series.map((s) => s.map((v) => (v === null ? undefined : v)));
     loss.update([lossCols.steps, ...lossCols.series, ...valSeries], () => ({
-      scales: { x: xLog, y: { auto: true } },
-      axes: [{ label: 'step (log scale)', values: logValues }, { label: 'loss' }],
+      ...stepChart('loss'),
       series: [
         { label: 'step' },
         ...n.map((name, i) => runSeries(`${name} loss`, i)),
@@ -199,11 +193,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     }), key);
     const noiseCols = overlayColumns(ws, (w) => positive(w.network.noise_scale));
     noise.update([noiseCols.steps, ...noiseCols.series], () => ({
-      scales: { x: xLog, y: { distr: 3 } },
-      axes: [
-        { label: 'step (log scale)', values: logValues },
-        { label: 'examples (log scale)', values: logValues, size: 60 },
-      ],
+      ...stepChart('examples (log scale)', 60),
       series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
     }), key);
   };

@@ -23,17 +23,11 @@ import {
   type StepRange,
 } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
-import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, logValues, phaseLegend, stepRangeForm, zeroDbLine } from './charts.js';
+import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, phaseLegend, stepChart, stepRangeForm, zeroDbLine } from './charts.js';
 import { RunFeed, type FeedChange } from './run-feed.js';
 
 /** Windows in the first backfill of a run: enough for a smooth line at any screen width. */
 export const BACKFILL_POINTS = 2000;
-
-/**
- * The step axis, logarithmic. Its range is exactly the data's (or the zoom's): uPlot's default log range
- * widens to whole decades, which left a run of 3,000 steps on an axis to 10,000.
- */
-export const xLog: uPlot.Scale = { time: false, distr: 3, range: (_u, min, max) => (min === max ? [min / 2, max * 2] : [min, max]) };
 
 /** The zoomed range goes into the URL (replacing, so Back still leaves the view), and a link reopens it. */
 export function keepRangeInUrl(range: StepRange | null): void {
@@ -223,11 +217,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const drawSnr = (): void => {
     const cols = snrColumns(layerNames(), windows());
     snr.update([cols.steps, ...cols.series, cols.floor], () => ({
-      scales: { x: xLog, y: { auto: true } },
-      axes: [
-        { label: 'step (log scale)', values: logValues },
-        { label: 'gradient SNR (dB)' },
-      ],
+      ...stepChart('gradient SNR (dB)'),
       series: [{ label: 'step' }, ...cols.labels.map((l, i) => lineSeries(l, i)), { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 }],
       // The phase strip follows this chart's step axis, so it is redrawn with it.
       hooks: { draw: [(u) => drawStrip(u), zeroDbLine] },
@@ -242,11 +232,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     } else {
       if (travel.plot === null) travelBox.replaceChildren();
       travel.update([cols.steps, ...cols.series, cols.slope1, cols.slopeHalf], () => ({
-        scales: { x: xLog, y: { distr: 3 } },
-        axes: [
-          { label: 'step (log scale)', values: logValues },
-          { label: 'weight travel ‖w − w₀‖ (log scale)', values: logValues, size: 70 },
-        ],
+        ...stepChart('weight travel ‖w − w₀‖ (log scale)', 70),
         series: [
           { label: 'step' },
           ...cols.labels.map((l, i) => lineSeries(l, i)),
@@ -272,8 +258,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     if (loss.plot === null) lossBox.replaceChildren();
     const data: uPlot.AlignedData = cols.hasVal ? [cols.steps, cols.loss, cols.valLoss] : [cols.steps, cols.loss];
     loss.update(data, () => ({
-      scales: { x: xLog, y: { auto: true } },
-      axes: [{ label: 'step (log scale)', values: logValues }, { label: 'loss' }],
+      ...stepChart('loss'),
       series: [
         { label: 'step' },
         { label: 'loss (training, window mean)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
@@ -292,11 +277,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     }
     if (noise.plot === null) noiseBox.replaceChildren();
     noise.update([cols.steps, cols.noise, cols.batch], () => ({
-      scales: { x: xLog, y: { distr: 3 } },
-      axes: [
-        { label: 'step (log scale)', values: logValues },
-        { label: 'examples (log scale)', values: logValues, size: 60 },
-      ],
+      ...stepChart('examples (log scale)', 60),
       series: [
         { label: 'step' },
         { label: 'B_noise (network, estimate)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },

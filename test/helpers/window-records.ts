@@ -78,24 +78,27 @@ export function fakeWindows(run: RunInfo, count: number, seed = 1, specials = tr
     const logs: Record<string, number> = { loss: 1 / (w + 1) + rng() * 0.01, acc: rng() };
     if (w % 10 === 9) logs.val_loss = 1.1 / (w + 1);
     if (specials && w === 6) logs.loss = Number.NaN;
-    out.push({
-      run: run.id,
-      index: w,
-      step: (w + 1) * 8,
-      first_step: w * 8 + 1,
-      epoch: Math.floor(w / 10),
-      batches: 8,
-      batch_size: 32,
-      batches_per_epoch: w < 10 ? null : 80,
-      pass_batches: [8],
-      snr_floor: w < 10 ? 1 / Math.sqrt(8) : Math.sqrt((1 - 8 / 80) / 8),
-      time: run.started_at + 1000 * (w + 1) + 0.25,
-      layers,
-      network,
-      logs,
-    });
+    out.push(windowAt(run, w, { layers, network, logs }));
   }
   return out;
+}
+
+/** Window `w` of `run` with these statistics: 8 minibatches of 32, 10 windows to an epoch (80 minibatches). */
+export function windowAt(run: RunInfo, w: number, stats: Pick<WindowRecord, 'layers' | 'network' | 'logs'>): WindowRecord {
+  return {
+    run: run.id,
+    index: w,
+    step: (w + 1) * 8,
+    first_step: w * 8 + 1,
+    epoch: Math.floor(w / 10),
+    batches: 8,
+    batch_size: 32,
+    batches_per_epoch: w < 10 ? null : 80,
+    pass_batches: [8],
+    snr_floor: w < 10 ? 1 / Math.sqrt(8) : Math.sqrt((1 - 8 / 80) / 8),
+    time: run.started_at + 1000 * (w + 1) + 0.25,
+    ...stats,
+  };
 }
 
 export function fakeMarkers(run: RunInfo): Marker[] {
