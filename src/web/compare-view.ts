@@ -47,6 +47,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     return { dispose() {} };
   }
   const title = el('h2', { 'data-testid': 'compare-title' }, `Comparing ${ids.length} runs`);
+  document.title = `Comparing ${ids.length} runs — tidemark`;
   const factsBody = el('tbody');
   const factsTable = el(
     'table',

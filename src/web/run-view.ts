@@ -9,6 +9,7 @@ import { el, type View } from './dom.js';
 import {
   CAUTION,
   adviceSentence,
+  currentPhase,
   detailsText,
   formatNumber,
   infoTrajectories,
@@ -179,7 +180,11 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       ` · ${feed.total} windows${feed.total > feed.windows.length ? ` (${feed.windows.length} drawn)` : ''} · ${info.layers.length} layers`,
       info.group === null ? '' : ` · group ${info.group}`,
     );
-    advice.textContent = adviceSentence(latestAdvice(markers()));
+    const verdict = latestAdvice(markers());
+    advice.textContent = adviceSentence(verdict);
+    // The tab's title tells the state of a run kept open in the background.
+    const phase = step === null ? 'undetermined' : currentPhase(phaseRows([], markers(), 1, Math.max(step, 1))[0]!);
+    document.title = `${info.name} · step ${step ?? '–'} · ${phase}${verdict.verdict === 'continue' ? '' : ` · ${verdict.verdict}`} — tidemark`;
   };
 
   const drawMarkers = (): void => {

@@ -7,6 +7,7 @@ import { el, type View } from './dom.js';
 import { COMPARE_MAX, COMPARE_MIN, compareHash, mergeRuns, runHash, runMatches, type RunRowView } from './model.js';
 
 export function runsView(root: HTMLElement, live: Live): View {
+  document.title = 'Runs — tidemark';
   let rows: RunRowView[] = [];
   const chosen = new Set<string>();
   const search = el('input', { type: 'search', placeholder: 'filter by name, group or tag (key=value)', 'aria-label': 'Filter runs', 'data-testid': 'run-filter' });

@@ -105,6 +105,8 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(blue).toBeGreaterThan(50);
     expect(orange).toBeGreaterThan(50);
     expect(await page.textContent('[data-testid="advice"]')).toContain('may be near');
+    // The tab title carries the run's state: the network entered diffusion at step 40 (fakeMarkers), advice may-stop.
+    expect(await page.title()).toBe('gearbox-e2e · step 96 · diffusion · may-stop — tidemark');
     expect(await page.textContent('[data-testid="caution"]')).toContain('confirm any decision to stop training on held-out data');
     const markerRows = await page.locator('[data-testid="markers"] tbody tr').allTextContents();
     expect(markerRows.some((t) => t.includes('drift-start') && t.includes('dense_Dense1'))).toBe(true);
