@@ -119,6 +119,11 @@ export interface Marker {
   details: Record<string, unknown>;
 }
 
+/** What makes a marker the same marker within a run (the store's unique key): its layer, kind, step and detected step. */
+export function markerKey(m: Marker): string {
+  return `${m.layer ?? ''}\u0000${m.kind}\u0000${m.step}\u0000${m.detected_step}`;
+}
+
 export interface LayerInfo {
   name: string;
   class_name: string;

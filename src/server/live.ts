@@ -4,7 +4,7 @@
  * limit is dropped; once the buffer drains the viewer gets a `gap` message and fetches what it missed.
  */
 import type { WebSocket } from 'ws';
-import type { Marker, WindowRecord } from '../protocol/records.js';
+import { markerKey, type Marker, type WindowRecord } from '../protocol/records.js';
 import type { LiveMessage, RunSummary } from '../protocol/messages.js';
 import { encodeJson } from '../storage/sink.js';
 
@@ -19,10 +19,6 @@ export interface Viewer {
   lastStep: Map<string, number | null>;
   /** Markers sent per followed run (the backfill's included), so none is sent twice. */
   markerKeys: Map<string, Set<string>>;
-}
-
-export function markerKey(m: Marker): string {
-  return `${m.layer ?? ''}\u0000${m.kind}\u0000${m.step}\u0000${m.detected_step}`;
 }
 
 export interface LiveCounters {
@@ -87,13 +83,11 @@ export class LiveHub {
   /** The earliest last step sent of this run over the viewers that follow it (null: one of them has no window yet). */
   earliestStep(runId: string): number | null {
     let out: number | null = null;
-    let first = true;
     for (const v of this.viewers) {
       if (!v.runs.has(runId)) continue;
       const last = v.lastStep.get(runId) ?? null;
       if (last === null) return null;
-      out = first ? last : Math.min(out!, last);
-      first = false;
+      out = out === null ? last : Math.min(out, last);
     }
     return out;
   }

@@ -6,7 +6,8 @@
  */
 import type { RunSummary } from '../protocol/messages.js';
 import type { RunRow, Store } from '../storage/store.js';
-import { markerKey, type LiveHub } from './live.js';
+import { markerKey } from '../protocol/records.js';
+import type { LiveHub } from './live.js';
 
 interface Seen {
   row: RunSummary;

@@ -403,8 +403,6 @@ export class SqliteStore implements Store {
     p('hasWindows', 'SELECT 1 FROM windows WHERE run_id = ? LIMIT 1');
     p('windowsOf', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
       FROM windows WHERE run_id = ? ORDER BY step`);
-    p('windowsAfter', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
-      FROM windows WHERE run_id = ? AND step > ? ORDER BY step`);
     p('windowsRange', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
       FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step`);
     p('windowStepsRange', 'SELECT step FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step');
@@ -422,8 +420,7 @@ export class SqliteStore implements Store {
       AND NOT (status = 'running' AND heartbeat_at >= ?) ORDER BY created_at`);
     // Series reads return [step, value] arrays: a million small objects would cost more than the read.
     for (const name of ['pointsAll', 'pointsAt', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
-    this.st.windowStepsRange!.pluck(true);
-    for (const name of ['stepsRange', 'valuesRange']) this.st[name]!.pluck(true);
+    for (const name of ['stepsRange', 'valuesRange', 'windowStepsRange']) this.st[name]!.pluck(true);
   }
 
   private conn(doing: string): Database.Database {

@@ -4,7 +4,7 @@
  * zoomed range fetched in full detail when the backfill was thinned.
  */
 import type { BackfillMessage, LiveMessage } from '../protocol/messages.js';
-import type { Marker, WindowRecord } from '../protocol/records.js';
+import { markerKey, type Marker, type WindowRecord } from '../protocol/records.js';
 import { getJson, type Live } from './connection.js';
 import { mergeWindows, windowsIn, type StepRange } from './model.js';
 
@@ -14,10 +14,6 @@ export type FeedChange = 'backfill' | 'window' | 'marker' | 'detail';
 export const DETAIL_ENOUGH = 400;
 /** Windows asked for when a zoomed range is fetched. */
 export const DETAIL_POINTS = 1500;
-
-export function markerKey(m: Marker): string {
-  return `${m.kind}|${m.layer ?? ''}|${m.step}|${m.detected_step}`;
-}
 
 export class RunFeed {
   info: BackfillMessage['run'] | null = null;
