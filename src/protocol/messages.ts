@@ -57,6 +57,11 @@ export interface SubscribeMessage {
   points?: number;
   /** Only windows after this step in the backfill (a reconnecting viewer asks for what it missed). */
   after?: number;
+  /**
+   * false: windows (in the backfill and live) come without each layer's per-variable statistics, a third of
+   * the size for a model of dense layers. Default true.
+   */
+  variables?: boolean;
 }
 
 /** Viewer → server: follow the list of runs (new runs, status changes). */

@@ -150,3 +150,13 @@ export type SinkRecord =
   | { type: 'marker'; marker: Marker }
   | { type: 'warning'; run: string; code: string; message: string; step: number | null; time: number }
   | { type: 'end'; run: string; status: RunStatus; step: number; time: number };
+
+/** A window without its layers' per-variable statistics. */
+export function withoutVariables(window: WindowRecord): WindowRecord {
+  const layers: WindowRecord['layers'] = {};
+  for (const [name, stats] of Object.entries(window.layers)) {
+    const { variables: _variables, ...rest } = stats;
+    layers[name] = rest;
+  }
+  return { ...window, layers };
+}

@@ -293,14 +293,16 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
           from: { type: 'number' },
           to: { type: 'number' },
           points: { type: 'integer', minimum: 2, maximum: 100000 },
+          variables: { type: 'boolean' },
         }),
       },
     },
     async (req) => {
       const run = store.resolveRun((req.params as { id: string }).id);
-      const q = req.query as { after?: number; from?: number; to?: number; points?: number };
+      const q = req.query as { after?: number; from?: number; to?: number; points?: number; variables?: boolean };
       const query: WindowQuery = {};
       for (const key of ['after', 'from', 'to', 'points'] as const) if (q[key] !== undefined) query[key] = q[key];
+      if (q.variables !== undefined) query.variables = q.variables;
       return store.windows(run.id, query);
     },
   );
@@ -437,7 +439,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
           if (msg.run === undefined) viewer.runsList = false;
           else forget(viewer, msg.run);
         } else {
-          backfill(viewer, msg.run, msg.points ?? 500, msg.after ?? null);
+          backfill(viewer, msg.run, msg.points ?? 500, msg.after ?? null, msg.variables ?? true);
         }
       } catch (e) {
         replyError(ws, e, msg.type === 'subscribe' ? { run: msg.run } : {});
@@ -451,11 +453,12 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     viewer.lastStep.delete(runId);
     viewer.markerKeys.delete(runId);
     viewer.behind.delete(runId);
+    viewer.lean.delete(runId);
   };
 
-  const backfill = (viewer: Viewer, ref: string, points: number, after: number | null): void => {
+  const backfill = (viewer: Viewer, ref: string, points: number, after: number | null, variables: boolean): void => {
     const run = store.resolveRun(ref);
-    const windows = store.windows(run.id, { points, ...(after !== null ? { after } : {}) });
+    const windows = store.windows(run.id, { points, variables, ...(after !== null ? { after } : {}) });
     const markers = store.markers(run.id);
     const message: BackfillMessage = {
       v: 1,
@@ -467,6 +470,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     };
     forget(viewer, run.id);
     viewer.runs.add(run.id);
+    if (!variables) viewer.lean.add(run.id);
     viewer.lastStep.set(run.id, windows.at(-1)?.step ?? after);
     viewer.markerKeys.set(run.id, new Set(markers.map(markerKey)));
     if (!hub.send(viewer, message)) viewer.behind.set(run.id, after);

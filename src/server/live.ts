@@ -4,7 +4,7 @@
  * limit is dropped; once the buffer drains the viewer gets a `gap` message and fetches what it missed.
  */
 import type { WebSocket } from 'ws';
-import { markerKey, type Marker, type WindowRecord } from '../protocol/records.js';
+import { markerKey, withoutVariables, type Marker, type WindowRecord } from '../protocol/records.js';
 import type { LiveMessage, RunSummary } from '../protocol/messages.js';
 import { encodeJson } from '../storage/sink.js';
 
@@ -19,7 +19,10 @@ export interface Viewer {
   lastStep: Map<string, number | null>;
   /** Markers sent per followed run (the backfill's included), so none is sent twice. */
   markerKeys: Map<string, Set<string>>;
+  /** Followed runs whose windows this viewer takes without per-variable statistics. */
+  lean: Set<string>;
 }
+
 
 export interface LiveCounters {
   viewers: number;
@@ -59,7 +62,7 @@ export class LiveHub {
   }
 
   add(ws: WebSocket): Viewer {
-    const v: Viewer = { ws, runs: new Set(), runsList: false, alive: true, behind: new Map(), lastStep: new Map(), markerKeys: new Map() };
+    const v: Viewer = { ws, runs: new Set(), runsList: false, alive: true, behind: new Map(), lastStep: new Map(), markerKeys: new Map(), lean: new Set() };
     this.viewers.add(v);
     ws.on('pong', () => {
       v.alive = true;
@@ -108,13 +111,17 @@ export class LiveHub {
   }
 
   publishWindow(window: WindowRecord): void {
-    let text: string | null = null;
+    // Encoded at most twice, with and without per-variable statistics, whatever the number of viewers.
+    let full: string | null = null;
+    let lean: string | null = null;
     for (const v of this.viewers) {
       if (!v.runs.has(window.run)) continue;
       const last = v.lastStep.get(window.run) ?? null;
       if (last !== null && window.step <= last) continue;
       if (!this.catchUp(v, window.run)) continue;
-      text ??= encodeJson({ v: 1, type: 'window', window } satisfies LiveMessage);
+      const text = v.lean.has(window.run)
+        ? (lean ??= encodeJson({ v: 1, type: 'window', window: withoutVariables(window) } satisfies LiveMessage))
+        : (full ??= encodeJson({ v: 1, type: 'window', window } satisfies LiveMessage));
       if (this.send(v, text)) v.lastStep.set(window.run, window.step);
       else v.behind.set(window.run, v.lastStep.get(window.run) ?? null);
     }

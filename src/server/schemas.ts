@@ -40,6 +40,7 @@ export function viewerSchema(ajv: Ajv): ValidateFunction<ViewerMessage> {
           run: id,
           points: { type: 'integer', minimum: 2, maximum: 100_000 },
           after: { type: 'number' },
+          variables: { type: 'boolean' },
         },
         required: ['v', 'type', 'run'],
         additionalProperties: false,

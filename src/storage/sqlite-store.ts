@@ -998,7 +998,7 @@ export class SqliteStore implements Store {
   }
 
   windows(runId: string, query: WindowQuery = {}): WindowRecord[] {
-    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, from, to, points }', query);
+    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, from, to, points, variables }', query);
     for (const key of ['after', 'from', 'to'] as const) {
       const v = query[key];
       if (v !== undefined && (typeof v !== 'number' || Number.isNaN(v))) throw invalidOption('windows', key, 'a step number', v);
@@ -1006,6 +1006,7 @@ export class SqliteStore implements Store {
     const after = query.after ?? null;
     const points = query.points ?? null;
     if (points !== null && (!Number.isInteger(points) || points < 2)) throw invalidOption('windows', 'points', 'an integer ≥ 2', points);
+    if (query.variables !== undefined && typeof query.variables !== 'boolean') throw invalidOption('windows', 'variables', 'true or false', query.variables);
     const ranged = after !== null || query.from !== undefined || query.to !== undefined;
     // `after` is exclusive and `from` inclusive; both bound from below, so the larger one holds.
     const lo = Math.max(query.from ?? -Infinity, after === null ? -Infinity : nextAbove(after));
@@ -1049,7 +1050,9 @@ export class SqliteStore implements Store {
         return w;
       });
       // Series come in creation order, which is the key order of the first window that had them.
-      const series = this.stmt('seriesOf').all(runId) as SeriesDbRow[];
+      const all = this.stmt('seriesOf').all(runId) as SeriesDbRow[];
+      // Without the per-variable statistics a wide model's windows are read and sent at a third of the cost.
+      const series = query.variables === false ? all.filter((s) => s.scope !== 'variable') : all;
       const values = new Map<number, Map<number, number>>();
       const pointsAll = this.stmt('pointsAll');
       const pointsAt = this.stmt('pointsAt');

@@ -14,6 +14,8 @@ export interface WindowQuery {
   to?: number;
   /** At most this many windows (an integer ≥ 2), spread evenly over those selected, the first and last kept. Default: all. */
   points?: number;
+  /** false: leave out each layer's per-variable statistics (`layers[name].variables`). Default true. */
+  variables?: boolean;
 }
 
 /** A run as the store lists it: the row of the runs list viewers see, plus what the store keeps about it. */

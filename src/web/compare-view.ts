@@ -27,9 +27,6 @@ import { LineChart, StepZoom, drawPhaseStrip, fewPoints, stepChart, stepRangeFor
 import { RunFeed } from './run-feed.js';
 import { keepRangeInUrl, refusal } from './run-view.js';
 
-/** Windows per run in the backfill: six runs together stay as light as one run's view. */
-const COMPARE_POINTS = 800;
-
 const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
 
 export function compareView(root: HTMLElement, live: Live, ids: readonly string[], initial: StepRange | null = null): View {
@@ -212,7 +209,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
     const feed: RunFeed = new RunFeed(
       live,
       id,
-      COMPARE_POINTS,
+      ids.length,
       (change) => {
         if (change === 'backfill' && zoom.range !== null) fetchDetail(zoom.range, [feed]);
         draw();

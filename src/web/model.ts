@@ -451,3 +451,15 @@ export function compareLabels(runs: readonly { id: string; name: string; tags: R
     return `${r.name} (${r.id.slice(0, 8)})`;
   });
 }
+
+/** Layer-windows a first load carries at most: about 2,000 windows of a 10-layer model, 10 MB of JSON. */
+export const LAYER_WINDOW_BUDGET = 25_000;
+
+/**
+ * How many windows to ask for: 2,000 for a narrow model (smooth lines at any screen width), fewer for a wide
+ * one, since every window carries every layer (a 50-layer model's 2,000 windows were 38 MB and 2.5 s to read),
+ * and a share of that for each of `runs` runs on one page; never under 200.
+ */
+export function windowBudget(layers: number, runs = 1): number {
+  return Math.max(200, Math.min(2000, Math.round(LAYER_WINDOW_BUDGET / (Math.max(layers, 0) + 1) / Math.max(runs, 1))));
+}

@@ -6,14 +6,14 @@
 import type { BackfillMessage, LiveMessage } from '../protocol/messages.js';
 import { markerKey, type Marker, type WindowRecord } from '../protocol/records.js';
 import { getJson, type Live } from './connection.js';
-import { mergeWindows, windowsIn, type StepRange } from './model.js';
+import { mergeWindows, windowBudget, windowsIn, type StepRange } from './model.js';
 
 export type FeedChange = 'backfill' | 'window' | 'marker' | 'detail';
 
 /** A zoomed range holding fewer windows than this is fetched in detail. */
 export const DETAIL_ENOUGH = 400;
-/** Windows asked for when a zoomed range is fetched. */
-export const DETAIL_POINTS = 1500;
+/** Assumed until the run's layers are known. */
+const DEFAULT_LAYERS = 3;
 
 export class RunFeed {
   info: BackfillMessage['run'] | null = null;
@@ -25,18 +25,33 @@ export class RunFeed {
   private readonly keys = new Set<string>();
   private readonly fetched: StepRange[] = [];
   private readonly stopListening: () => void;
-  private readonly stopOpen: () => void;
+
+  /** Windows asked for in the backfill and in a zoomed range; set from the run's width before subscribing. */
+  private points = windowBudget(DEFAULT_LAYERS, 1);
+  private stopOpen: () => void = () => {};
+  private disposed = false;
 
   constructor(
     private readonly live: Live,
     /** The id, id prefix or name the view asked for. */
     readonly id: string,
-    private readonly points: number,
+    /** How many runs share the page (the compare view): each gets that share of the window budget. */
+    private readonly share: number,
     private readonly onChange: (change: FeedChange) => void,
     private readonly onError: (code: string, message: string) => void,
   ) {
     this.stopListening = live.listen((m) => this.receive(m));
-    this.stopOpen = live.whenOpen(() => this.subscribe());
+    // The run's layer count first: a wide model gets fewer windows, so its first load stays light. A run the
+    // server does not know is left to the subscription, whose error message the view shows.
+    getJson(`api/runs/${encodeURIComponent(id)}`)
+      .then((run) => {
+        const layers = (run as { layers?: unknown[] }).layers?.length;
+        if (typeof layers === 'number') this.points = windowBudget(layers, share);
+      })
+      .catch(() => {})
+      .finally(() => {
+        if (!this.disposed) this.stopOpen = live.whenOpen(() => this.subscribe());
+      });
   }
 
   lastStep(): number | null {
@@ -46,7 +61,8 @@ export class RunFeed {
   private subscribe(): void {
     if (this.failed) return;
     const after = this.lastStep();
-    this.live.send(after === null ? { v: 1, type: 'subscribe', run: this.id, points: this.points } : { v: 1, type: 'subscribe', run: this.id, after });
+    // The page draws layers, never single variables: it asks for windows without them (a third of the bytes).
+    this.live.send(after === null ? { v: 1, type: 'subscribe', run: this.id, points: this.points, variables: false } : { v: 1, type: 'subscribe', run: this.id, after, variables: false });
   }
 
   private addMarkers(list: readonly Marker[]): void {
@@ -93,7 +109,7 @@ export class RunFeed {
     if (this.fetched.some((r) => r.min <= range.min && r.max >= range.max)) return false;
     const from = Math.floor(range.min);
     const to = Math.ceil(range.max);
-    const ws = (await getJson(`api/runs/${encodeURIComponent(this.info.id)}/windows?from=${from}&to=${to}&points=${DETAIL_POINTS}`)) as WindowRecord[];
+    const ws = (await getJson(`api/runs/${encodeURIComponent(this.info.id)}/windows?from=${from}&to=${to}&points=${this.points}&variables=false`)) as WindowRecord[];
     this.fetched.push({ min: from, max: to });
     const before = this.windows.length;
     this.windows = mergeWindows(this.windows, ws);
@@ -103,6 +119,7 @@ export class RunFeed {
   }
 
   dispose(): void {
+    this.disposed = true;
     this.stopListening();
     this.stopOpen();
     if (this.info !== null) this.live.send({ v: 1, type: 'unsubscribe', run: this.info.id });

@@ -27,9 +27,6 @@ import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
 import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, phaseLegend, stepChart, stepRangeForm, zeroDbLine } from './charts.js';
 import { RunFeed, type FeedChange } from './run-feed.js';
 
-/** Windows in the first backfill of a run: enough for a smooth line at any screen width. */
-export const BACKFILL_POINTS = 2000;
-
 /** The zoomed range goes into the URL (replacing, so Back still leaves the view), and a link reopens it. */
 export function keepRangeInUrl(range: StepRange | null): void {
   const hash = withRange(location.hash, range);
@@ -330,7 +327,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       }
     });
   };
-  feed = new RunFeed(live, id, BACKFILL_POINTS, onChange, (code, message) => {
+  feed = new RunFeed(live, id, 1, onChange, (code, message) => {
     main.replaceChildren(back, el('h2', {}, 'Run not available'), el('p', { class: 'error', 'data-testid': 'run-error' }, refusal(id, code, message)));
   });
 

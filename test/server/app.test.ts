@@ -10,6 +10,7 @@ import type { IngestReply, LiveMessage as ViewerBound } from '../../src/protocol
 type LiveMessage = ViewerBound | IngestReply;
 import type { SinkRecord, WindowRecord } from '../../src/protocol/records.js';
 import { buildServer, type ServerOptions, type TidemarkServer } from '../../src/server/app.js';
+import { withoutVariables } from '../../src/protocol/records.js';
 import { exportRun } from '../../src/storage/export.js';
 import { decodeJson, encodeJson } from '../../src/storage/sink.js';
 import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
@@ -94,6 +95,8 @@ describe('HTTP API', () => {
     // A zoomed chart's request: an inclusive range, thinned within it.
     const zoomed = await server.app.inject(`/api/runs/${run.id}/windows?from=${ws[2]!.step}&to=${ws[6]!.step}&points=3`);
     expect(decodeJson(zoomed.body)).toEqual([ws[2], ws[4], ws[6]]);
+    const lean = await server.app.inject(`/api/runs/${run.id}/windows?from=${ws[2]!.step}&to=${ws[3]!.step}&variables=false`);
+    expect(decodeJson(lean.body)).toEqual([ws[2], ws[3]].map((w) => withoutVariables(w!)));
     const bad = await server.app.inject(`/api/runs/${run.id}/windows?from=abc`);
     expect(bad.statusCode).toBe(400);
   });
@@ -277,6 +280,27 @@ describe('live stream', () => {
     expect(ws.length).toBe(6);
     viewer.ws.close();
     writer.ws.close();
+  });
+
+  it('sends windows without per-variable statistics to a viewer that asks so, and whole ones to the others', async () => {
+    const { ws: base, store } = await serve();
+    const { run, ws } = seed(store, 'lean-0001', 4);
+    const lean = await client(`${base}/live`);
+    const whole = await client(`${base}/live`);
+    lean.ws.send(encodeJson({ v: 1, type: 'subscribe', run: run.id, variables: false }));
+    whole.ws.send(encodeJson({ v: 1, type: 'subscribe', run: run.id }));
+    const back = (await lean.next((m) => m.type === 'backfill')) as Extract<ViewerBound, { type: 'backfill' }>;
+    expect(back.windows).toEqual(ws.map(withoutVariables));
+    await whole.next((m) => m.type === 'backfill');
+    const next = fakeWindows(run, 5)[4]!;
+    store.append([{ type: 'window', window: next }]);
+    const a = (await lean.next((m) => m.type === 'window')) as Extract<ViewerBound, { type: 'window' }>;
+    const b = (await whole.next((m) => m.type === 'window')) as Extract<ViewerBound, { type: 'window' }>;
+    expect(a.window).toEqual(withoutVariables(next));
+    expect(b.window).toEqual(next);
+    expect(Object.keys(b.window.layers[run.layers[0]!.name]!.variables!)).toHaveLength(2);
+    lean.ws.close();
+    whole.ws.close();
   });
 
   it('sends the runs list, then each new run and status change', async () => {

@@ -7,6 +7,7 @@ import { afterAll, afterEach, describe, expect, it } from 'vitest';
 import { lttb } from '../../src/analysis/lttb.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../../src/errors.js';
 import type { RunInfo, SinkRecord, WindowRecord } from '../../src/protocol/records.js';
+import { withoutVariables } from '../../src/protocol/records.js';
 import { APPLICATION_ID, migrate, MIGRATIONS, SCHEMA_VERSION } from '../../src/storage/schema.js';
 import { encodeRecord } from '../../src/storage/sink.js';
 import { openStore, type SqliteStore, type StoreOptions } from '../../src/storage/sqlite-store.js';
@@ -604,8 +605,17 @@ describe('SQLite store: parts of a run', () => {
     expect(s.windows(run.id, { from: ws[7]!.step, to: ws[3]!.step })).toEqual([]);
   });
 
+  it('leaves out the per-variable statistics when asked, and nothing else', () => {
+    const { s, run, ws } = seeded(freshPath(), 12);
+    const lean = s.windows(run.id, { variables: false, points: 4 });
+    expect(lean).toEqual([ws[0], ws[4], ws[7], ws[11]].map((w) => withoutVariables(w!)));
+    expect(Object.values(lean[1]!.layers).every((l) => l.variables === undefined)).toBe(true);
+    expect(s.windows(run.id, { variables: false, after: ws[9]!.step })).toEqual(ws.slice(10).map(withoutVariables));
+  });
+
   it('refuses a bad query', () => {
     const { s, run } = seeded(freshPath(), 2);
+    expectCoded(() => s.windows(run.id, { variables: 'no' as unknown as boolean }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /variables/);
     expectCoded(() => s.windows(run.id, { points: 1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /points/);
     expectCoded(() => s.windows(run.id, { after: Number.NaN }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /after/);
     expectCoded(() => s.windows(run.id, { to: 'x' as unknown as number }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'to'|to/);

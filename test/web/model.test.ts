@@ -8,6 +8,7 @@ import {
   currentPhase,
   mergeWindows,
   overlayColumns,
+  windowBudget,
   windowsIn,
   withRange,
   decodeJson,
@@ -260,5 +261,14 @@ describe('page model', () => {
     ];
     expect(compareLabels(runs)).toEqual(['gearbox (lr=0.01)', 'gearbox (lr=0.05)', 'other']);
     expect(compareLabels([runs[2]!, { ...runs[2]!, id: 'dddddddd-4' }])).toEqual(['other (cccccccc)', 'other (dddddddd)']);
+  });
+
+  it('gives a wide model and a shared page fewer windows, within 200 to 2,000', () => {
+    expect(windowBudget(1)).toBe(2000);
+    expect(windowBudget(10)).toBe(2000); // 25,000 / 11 = 2,273, capped
+    expect(windowBudget(50)).toBe(490); // 25,000 / 51
+    expect(windowBudget(4, 2)).toBe(2000); // 25,000 / 5 / 2 = 2,500, capped
+    expect(windowBudget(50, 6)).toBe(200); // floor
+    expect(windowBudget(20, 3)).toBe(397); // 25,000 / 21 / 3
   });
 });
