@@ -6,14 +6,14 @@
  */
 import type { RunSummary } from '../protocol/messages.js';
 import type { RunRow, Store } from '../storage/store.js';
-import { markerKey } from '../protocol/records.js';
 import type { LiveHub } from './live.js';
 
 interface Seen {
   row: RunSummary;
   /** Step of the last window published. */
   lastStep: number | null;
-  markerKeys: Set<string> | null;
+  /** Where the last read of the run's markers ended (Store.markersSince); null while nobody follows the run. */
+  markerCursor: number | null;
 }
 
 export function summaryOf(r: RunRow): RunSummary {
@@ -65,24 +65,22 @@ export class StoreWatcher {
       for (const r of rows) {
         const row = summaryOf(r);
         let s = this.seen.get(r.id);
-        let changed: boolean;
         if (s === undefined) {
           // A run first seen now: its past is the backfill's business, not the live stream's. But a viewer may
           // have subscribed (and had its backfill) before this poll: it is owed what came after its backfill.
-          s = { row, lastStep: r.last_step, markerKeys: null };
+          s = { row, lastStep: r.last_step, markerCursor: null };
           this.seen.set(r.id, s);
           this.hub.publishRun(row);
           if (!followed.has(r.id)) continue;
           s.lastStep = this.hub.earliestStep(r.id);
-          changed = true;
         } else {
-          changed = s.row.status !== row.status || s.row.windows !== row.windows || s.row.last_step !== row.last_step || s.row.ended_at !== row.ended_at;
+          const changed = s.row.status !== row.status || s.row.windows !== row.windows || s.row.last_step !== row.last_step || s.row.ended_at !== row.ended_at;
           s.row = row;
           if (changed) this.hub.publishRun(row);
         }
         if (!followed.has(r.id)) {
           s.lastStep = r.last_step;
-          s.markerKeys = null;
+          s.markerCursor = null;
           continue;
         }
         if (r.last_step !== null && (s.lastStep === null || r.last_step > s.lastStep)) {
@@ -90,24 +88,22 @@ export class StoreWatcher {
           for (const w of windows) this.hub.publishWindow(w);
           s.lastStep = r.last_step;
         }
-        if (changed || s.markerKeys === null) this.publishMarkers(r.id, s);
+        this.publishMarkers(r.id, s);
       }
     } catch (e) {
       this.onError(e);
     }
   }
 
+  /**
+   * Offers the run's markers stored since the last poll (a marker may come without a window: `tidemark analyze
+   * --write`, the end of a run). A run followed since the last poll starts from the first marker, since some
+   * may have been stored after a viewer's backfill; the hub sends each viewer only those it does not have.
+   */
   private publishMarkers(runId: string, s: Seen): void {
-    const markers = this.store.markers(runId);
-    // A run followed since the last poll: its markers may include some stored after a viewer's backfill, so
-    // all are offered; the hub sends each viewer only those its backfill did not hold.
-    s.markerKeys ??= new Set();
-    for (const m of markers) {
-      const key = markerKey(m);
-      if (s.markerKeys.has(key)) continue;
-      s.markerKeys.add(key);
-      this.hub.publishMarker(m);
-    }
+    const { markers, cursor } = this.store.markersSince(runId, s.markerCursor ?? 0);
+    s.markerCursor = cursor;
+    for (const m of markers) this.hub.publishMarker(m);
   }
 
   stop(): void {

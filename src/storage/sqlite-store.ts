@@ -410,6 +410,8 @@ export class SqliteStore implements Store {
       FROM windows WHERE run_id = ? AND step IN (SELECT value FROM json_each(?)) ORDER BY step`);
     p('markersOf', `SELECT layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = ?
       ORDER BY step, detected_step, id`);
+    p('markersSince', `SELECT id, layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = ? AND id > ?
+      ORDER BY id`);
     p('warningsOf', 'SELECT code, message, step, time FROM warnings WHERE run_id = ? ORDER BY time, id');
     p('deletePoints', 'DELETE FROM points WHERE series_id IN (SELECT id FROM series WHERE run_id = ?)');
     p('deleteRun', 'DELETE FROM runs WHERE id = ?');
@@ -976,17 +978,16 @@ export class SqliteStore implements Store {
   markers(runId: string): Marker[] {
     return this.read('markers', () => {
       this.requireRun(runId);
-      return (this.stmt('markersOf').all(runId) as MarkerDbRow[]).map(
-        (m): Marker => ({
-          run: runId,
-          layer: m.layer,
-          kind: m.kind,
-          step: num(m.step),
-          detected_step: num(m.detected_step),
-          confidence: num(m.confidence),
-          details: fromJson(m.details),
-        }),
-      );
+      return (this.stmt('markersOf').all(runId) as MarkerDbRow[]).map((m) => markerOf(runId, m));
+    });
+  }
+
+  markersSince(runId: string, cursor: number): { markers: Marker[]; cursor: number } {
+    if (!Number.isSafeInteger(cursor) || cursor < 0) throw invalidOption('markersSince', 'cursor', 'an integer ≥ 0 (0 for all)', cursor);
+    return this.read('markersSince', () => {
+      this.requireRun(runId);
+      const rows = this.stmt('markersSince').all(runId, cursor) as (MarkerDbRow & { id: number })[];
+      return { markers: rows.map((m) => markerOf(runId, m)), cursor: rows.at(-1)?.id ?? cursor };
     });
   }
 
@@ -1100,6 +1101,18 @@ export class SqliteStore implements Store {
       return records;
     });
   }
+}
+
+function markerOf(runId: string, m: MarkerDbRow): Marker {
+  return {
+    run: runId,
+    layer: m.layer,
+    kind: m.kind,
+    step: num(m.step),
+    detected_step: num(m.detected_step),
+    confidence: num(m.confidence),
+    details: fromJson(m.details),
+  };
 }
 
 /** The smallest step greater than `v` (steps are integers). */

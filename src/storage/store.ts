@@ -113,6 +113,11 @@ export interface Store {
   series(runId: string, metric: string, query?: SeriesQuery): SeriesPoint[];
   /** In step order. */
   markers(runId: string): Marker[];
+  /**
+   * The markers stored after `cursor`, in the order they were stored, and the cursor to pass next time (0 reads
+   * them all). For followers that poll: each call reads only what is new.
+   */
+  markersSince(runId: string, cursor: number): { markers: Marker[]; cursor: number };
   /** In time order. */
   warnings(runId: string): StoredWarning[];
   /**

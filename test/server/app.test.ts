@@ -282,6 +282,21 @@ describe('live stream', () => {
     writer.ws.close();
   });
 
+  it('delivers a marker stored without any window (an offline analysis writing its markers)', async () => {
+    const { ws: base, store } = await serve();
+    const { run } = seed(store, 'alone-0001', 4);
+    const viewer = await client(`${base}/live`);
+    viewer.ws.send(encodeJson({ v: 1, type: 'subscribe', run: run.id }));
+    await viewer.next((m) => m.type === 'backfill');
+    const marker = { run: run.id, layer: null, kind: 'diffusion-start' as const, step: 16, detected_step: 32, confidence: 0.9, details: { source: 'offline' } };
+    store.append([{ type: 'marker', marker }]);
+    const got = (await viewer.next((m) => m.type === 'marker')) as Extract<ViewerBound, { type: 'marker' }>;
+    expect(got.marker).toEqual(marker);
+    // The backfill's markers are not sent again.
+    expect(viewer.got.filter((m) => m.type === 'marker')).toHaveLength(1);
+    viewer.ws.close();
+  });
+
   it('sends windows without per-variable statistics to a viewer that asks so, and whole ones to the others', async () => {
     const { ws: base, store } = await serve();
     const { run, ws } = seed(store, 'lean-0001', 4);

@@ -6,8 +6,7 @@ import Database from 'better-sqlite3';
 import { afterAll, afterEach, describe, expect, it } from 'vitest';
 import { lttb } from '../../src/analysis/lttb.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../../src/errors.js';
-import type { RunInfo, SinkRecord, WindowRecord } from '../../src/protocol/records.js';
-import { withoutVariables } from '../../src/protocol/records.js';
+import { markerKey, withoutVariables, type Marker, type RunInfo, type SinkRecord, type WindowRecord } from '../../src/protocol/records.js';
 import { APPLICATION_ID, migrate, MIGRATIONS, SCHEMA_VERSION } from '../../src/storage/schema.js';
 import { encodeRecord } from '../../src/storage/sink.js';
 import { openStore, type SqliteStore, type StoreOptions } from '../../src/storage/sqlite-store.js';
@@ -603,6 +602,26 @@ describe('SQLite store: parts of a run', () => {
     // `after` and `from` together: the tighter lower bound holds.
     expect(s.windows(run.id, { after: ws[4]!.step, from: ws[2]!.step, to: ws[6]!.step })).toEqual(ws.slice(5, 7));
     expect(s.windows(run.id, { from: ws[7]!.step, to: ws[3]!.step })).toEqual([]);
+  });
+
+  it('reads the markers stored since a cursor, in the order stored, so a poller reads only what is new', () => {
+    const { s, run } = seeded(freshPath(), 4);
+    s.append(fakeMarkers(run).map((marker): SinkRecord => ({ type: 'marker', marker })));
+    const stored = s.markers(run.id);
+    const first = s.markersSince(run.id, 0);
+    expect(stored.length).toBeGreaterThan(0);
+    expect(first.markers).toHaveLength(stored.length);
+    expect(new Set(first.markers.map(markerKey))).toEqual(new Set(stored.map(markerKey)));
+    expect(s.markersSince(run.id, first.cursor)).toEqual({ markers: [], cursor: first.cursor });
+    const late: Marker = { run: run.id, layer: null, kind: 'advice', step: 8, detected_step: 32, confidence: 1, details: { verdict: 'may-stop' } };
+    s.append([{ type: 'marker', marker: late }]);
+    // A marker stored again is the same marker: it does not come back.
+    s.append([{ type: 'marker', marker: late }]);
+    const next = s.markersSince(run.id, first.cursor);
+    expect(next.markers).toEqual([late]);
+    expect(next.cursor).toBeGreaterThan(first.cursor);
+    expect(s.markersSince(run.id, next.cursor).markers).toEqual([]);
+    expectCoded(() => s.markersSince(run.id, -1), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /cursor/);
   });
 
   it('leaves out the per-variable statistics when asked, and nothing else', () => {
