@@ -73,7 +73,7 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
     }
     for (const l of detail.layers) {
       for (const [metric] of PROBE_GAUGES) {
-        const p = store.series(r.id, metric, { layer: l.name }).at(-1);
+        const p = store.series(r.id, metric, { layer: l.name, last: 1 })[0];
         if (p !== undefined) gauges.get(metric)!.push({ labels: { ...base, layer: l.name }, value: p.value });
       }
     }

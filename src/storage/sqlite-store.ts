@@ -260,7 +260,7 @@ const RUN_COLUMNS =
 /** The stored status, or `interrupted` for a running run whose writer stopped heartbeating. */
 const STATUS_EXPR = "CASE WHEN status = 'running' AND heartbeat_at < @cutoff THEN 'interrupted' ELSE status END";
 
-const SERIES_QUERY_KEYS = ['layer', 'from', 'to', 'points'] as const;
+const SERIES_QUERY_KEYS = ['layer', 'from', 'to', 'points', 'last'] as const;
 const FILTER_KEYS = ['name', 'group', 'tags', 'status', 'limit'] as const;
 
 type Stmt = Database.Statement<unknown[], unknown>;
@@ -395,6 +395,7 @@ export class SqliteStore implements Store {
     p('stepsRange', 'SELECT step FROM points WHERE series_id = ? AND step >= ? AND step <= ? ORDER BY step');
     p('valuesRange', 'SELECT value FROM points WHERE series_id = ? AND step >= ? AND step <= ? ORDER BY step');
     p('pointsAll', 'SELECT step, value FROM points WHERE series_id = ?');
+    p('lastRange', 'SELECT step, value FROM points WHERE series_id = ? AND step >= ? AND step <= ? ORDER BY step DESC LIMIT ?');
     p('pointsAt', 'SELECT step, value FROM points WHERE series_id = ? AND step IN (SELECT value FROM json_each(?))');
     for (const col of WINDOW_SERIES) {
       // Column names come from the constant list above, never from input.
@@ -421,7 +422,7 @@ export class SqliteStore implements Store {
     p('pruneCandidates', `SELECT id FROM runs WHERE created_at < ?
       AND NOT (status = 'running' AND heartbeat_at >= ?) ORDER BY created_at`);
     // Series reads return [step, value] arrays: a million small objects would cost more than the read.
-    for (const name of ['pointsAll', 'pointsAt', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
+    for (const name of ['pointsAll', 'pointsAt', 'lastRange', ...WINDOW_SERIES.map((c) => `window_${c}`)]) this.st[name]!.raw(true);
     for (const name of ['stepsRange', 'valuesRange', 'windowStepsRange']) this.st[name]!.pluck(true);
   }
 
@@ -941,10 +942,12 @@ export class SqliteStore implements Store {
     if (limit !== undefined && (!Number.isInteger(limit) || limit < 2)) {
       throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `series: option 'points' must be an integer of at least 2; received ${show(limit)}.`);
     }
+    const last = query.last;
+    if (last !== undefined && (!Number.isInteger(last) || last < 1)) throw invalidOption('series', 'last', 'an integer ≥ 1', last);
     return this.read('series', () => {
       const read = this.seriesReader(runId, metric, layer);
       if (read === null) return [];
-      const [steps, values] = read(from, to);
+      const [steps, values] = read(from, to, last);
       return downsample(steps, values, limit);
     });
   }
@@ -953,22 +956,27 @@ export class SqliteStore implements Store {
    * The statement (taking arg, from, to) that reads one series, or null when the run has no such series.
    * With no layer: the network's metric, else the run-level one (a log, or a window field).
    */
-  private seriesReader(runId: string, metric: string, layer: string | null): ((from: number, to: number) => [number[], (number | null)[]]) | null {
+  private seriesReader(runId: string, metric: string, layer: string | null): ((from: number, to: number, last?: number) => [number[], (number | null)[]]) | null {
     const rows = this.stmt('seriesFor').all(runId, metric) as SeriesDbRow[];
     const pick =
       layer === null
         ? (rows.find((r) => r.scope === 'network') ?? rows.find((r) => r.scope === 'run'))
         : (rows.find((r) => r.scope === 'layer' && r.layer === layer) ?? rows.find((r) => r.scope === 'variable' && r.variable === layer));
     if (pick !== undefined) {
-      return (from, to) => [
-        this.stmt('stepsRange').all(pick.id, from, to) as number[],
-        this.stmt('valuesRange').all(pick.id, from, to) as (number | null)[],
-      ];
+      return (from, to, last) => {
+        if (last !== undefined) {
+          // The newest points only, from the end of the key: a scrape of the latest value reads one row.
+          const rows = (this.stmt('lastRange').all(pick.id, from, to, last) as [number, number | null][]).reverse();
+          return [rows.map((r) => r[0]), rows.map((r) => r[1])];
+        }
+        return [this.stmt('stepsRange').all(pick.id, from, to) as number[], this.stmt('valuesRange').all(pick.id, from, to) as (number | null)[]];
+      };
     }
     this.requireRun(runId);
     if (layer === null && (WINDOW_SERIES as readonly string[]).includes(metric)) {
-      return (from, to) => {
-        const rows = this.stmt(`window_${metric as WindowSeries}`).all(runId, from, to) as [number, number | null][];
+      return (from, to, last) => {
+        const all = this.stmt(`window_${metric as WindowSeries}`).all(runId, from, to) as [number, number | null][];
+        const rows = last === undefined ? all : all.slice(-last);
         return [rows.map((r) => r[0]), rows.map((r) => r[1])];
       };
     }

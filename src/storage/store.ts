@@ -53,6 +53,8 @@ export interface SeriesQuery {
   to?: number;
   /** At most this many points (an integer ≥ 2), downsampled with Largest-Triangle-Three-Buckets (Steinarsson 2013). */
   points?: number;
+  /** Only the newest this many points of the range (an integer ≥ 1), still in step order. Default: all. */
+  last?: number;
 }
 
 export interface SeriesPoint {

@@ -262,6 +262,12 @@ describe('SQLite store: queries', () => {
     expect(down[199]).toEqual(full[2999]);
     // A short range is returned whole.
     expect(s.series(run.id, 'grad_snr', { from: 80, to: 800, points: 200 })).toEqual(full.slice(9, 100));
+    // The newest points only: the tail of the series, of a range, of a window field.
+    expect(s.series(run.id, 'grad_snr', { last: 3 })).toEqual(full.slice(-3));
+    expect(s.series(run.id, 'grad_snr', { to: 800, last: 2 })).toEqual(full.slice(98, 100));
+    expect(s.series(run.id, 'grad_snr', { last: 5000 })).toEqual(full);
+    expect(s.series(run.id, 'batch_size', { last: 1 })).toEqual([{ step: ws[2999]!.step, value: 32 }]);
+    expectCoded(() => s.series(run.id, 'grad_snr', { last: 0 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'last'/);
     expectCoded(() => s.series(run.id, 'grad_snr', { points: 1 }), TidemarkRangeError, 'TIDEMARK_ERR_OPTION_INVALID', /'points' must be an integer of at least 2; received 1/);
     expectCoded(() => s.series(run.id, 'grad_snr', { point: 5 } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /unknown option 'point'. Did you mean 'points'\?/);
   });
