@@ -37,6 +37,15 @@ export interface StripAxis {
   max: number;
 }
 
+/** The strip's placement under a chart: its step range and plotting area in CSS pixels; null before it has a range. */
+export function stripAxisOf(u: uPlot): StripAxis | null {
+  const min = u.scales.x?.min;
+  const max = u.scales.x?.max;
+  if (min === undefined || max === undefined || min === null || max === null || !(min > 0) || !(max > min)) return null;
+  const ratio = uPlot.pxRatio;
+  return { width: u.width, left: u.bbox.left / ratio, plotWidth: u.bbox.width / ratio, min, max };
+}
+
 const ROW = 18;
 const GAP = 3;
 

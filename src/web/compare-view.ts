@@ -3,7 +3,7 @@
  * SNR, weight travel, loss and noise scale), with one line of facts per run. One colour per run, in the
  * order of the URL; the runs list links back to each run's own view.
  */
-import uPlot from 'uplot';
+import type uPlot from 'uplot';
 import type { WindowRecord } from '../protocol/records.js';
 import type { Live } from './connection.js';
 import { el, type View } from './dom.js';
@@ -18,16 +18,17 @@ import {
   latestAdvice,
   overlayColumns,
   phaseRows,
+  positive,
   runHash,
   travelColumns,
   type StepRange,
 } from './model.js';
 import { layerStyle } from './palette.js';
-import { LineChart, StepZoom, drawPhaseStrip, fewPoints, stepChart, stepRangeForm, zeroDbLine } from './charts.js';
+import { LineChart, drawPhaseStrip, fewPoints, stepChart, stripAxisOf, zeroDbLine } from './charts.js';
 import { RunFeed } from './run-feed.js';
-import { keepRangeInUrl, refusal } from './run-view.js';
+import { refusal } from './run-view.js';
+import { viewZoom } from './view-zoom.js';
 
-const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
 
 export function compareView(root: HTMLElement, live: Live, ids: readonly string[], initial: StepRange | null = null): View {
   const back = el('a', { href: `${location.pathname}${location.search}#/` }, '← all runs');
@@ -58,25 +59,9 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
   const travelBox = el('div', { class: 'chart', 'data-testid': 'compare-travel' });
   const lossBox = el('div', { class: 'chart small', 'data-testid': 'compare-loss' });
   const noiseBox = el('div', { class: 'chart small', 'data-testid': 'compare-noise' });
-  const detailNote = el('p', { class: 'note', 'aria-live': 'polite' });
 
   const feeds: RunFeed[] = [];
-  const fetchDetail = (range: StepRange, from: readonly RunFeed[]): void => {
-    Promise.all(from.map((f) => f.detail(range).catch(() => false))).then(
-      (got) => {
-        if (got.some((g) => g)) detailNote.textContent = `Showing steps ${formatNumber(Math.round(range.min))} to ${formatNumber(Math.round(range.max))} in full detail.`;
-      },
-      () => {},
-    );
-  };
-  const zoom = new StepZoom((range) => {
-    rangeForm.show(range);
-    keepRangeInUrl(range);
-    if (range !== null) fetchDetail(range, feeds);
-  });
-  const rangeForm = stepRangeForm(zoom);
-  zoom.range = initial;
-  rangeForm.show(initial);
+  const { zoom, controls, fetchDetail } = viewZoom(initial, () => feeds);
 
   root.append(
     el(
@@ -88,8 +73,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
       el('div', { class: 'scroll' }, factsTable),
       errors,
       el('p', { class: 'caution' }, CAUTION),
-      rangeForm.form,
-      detailNote,
+      ...controls,
       el('h3', {}, 'Network phase per run (estimated)'),
       stripBox,
       el('h3', {}, 'Gradient SNR (dB), network'),
@@ -144,15 +128,11 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
   };
 
   const drawStrip = (u: uPlot): void => {
-    const min = u.scales.x?.min;
-    const max = u.scales.x?.max;
-    if (min === undefined || max === undefined || min === null || max === null || !(min > 0) || !(max > min)) return;
-    const rows = feeds.map((f, i) => {
-      const row = phaseRows([], f.markers, min, max)[0]!;
-      return { ...row, label: names()[i] ?? NETWORK_LABEL };
-    });
-    const ratio = uPlot.pxRatio;
-    drawPhaseStrip(stripBox, rows, { width: u.width, left: u.bbox.left / ratio, plotWidth: u.bbox.width / ratio, min, max });
+    const axis = stripAxisOf(u);
+    if (axis === null) return;
+    const labels = names();
+    const rows = feeds.map((f, i) => ({ ...phaseRows([], f.markers, axis.min, axis.max)[0]!, label: labels[i] ?? NETWORK_LABEL }));
+    drawPhaseStrip(stripBox, rows, axis);
   };
 
   const drawCharts = (): void => {
@@ -172,11 +152,12 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
       ],
       hooks: { draw: [drawStrip, zeroDbLine] },
     }), key);
-    const travelCols = overlayColumns(ws, (w) => positive(w.network.weight_travel));
-    travel.update([travelCols.steps, ...travelCols.series], () => ({
-      ...stepChart('weight travel ‖w − w₀‖ (log scale)', 70),
-      series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
-    }), key);
+    // One line per run of a positive network value, on log axes.
+    const overlayLog = (chart: LineChart, value: (w: WindowRecord) => number | null | undefined, yLabel: string, axisWidth: number): void => {
+      const cols = overlayColumns(ws, (w) => positive(value(w)));
+      chart.update([cols.steps, ...cols.series], () => ({ ...stepChart(yLabel, axisWidth), series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))] }), key);
+    };
+    overlayLog(travel, (w) => w.network.weight_travel, 'weight travel ‖w − w₀‖ (log scale)', 70);
     const lossCols = overlayColumns(ws, (w) => w.logs.loss);
     const valCols = overlayColumns(ws, (w) => w.logs.val_loss);
     // val_loss exists at epoch ends only: its missing values are joined, not gaps.
@@ -189,11 +170,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
         ...n.map((name, i) => runSeries(`${name} val_loss`, i, { width: 1.5, dash: [6, 3], points: { show: true, size: 6, fill: layerStyle(i).stroke } })),
       ],
     }), key);
-    const noiseCols = overlayColumns(ws, (w) => positive(w.network.noise_scale));
-    noise.update([noiseCols.steps, ...noiseCols.series], () => ({
-      ...stepChart('examples (log scale)', 60),
-      series: [{ label: 'step' }, ...n.map((name, i) => runSeries(name, i))],
-    }), key);
+    overlayLog(noise, (w) => w.network.noise_scale, 'examples (log scale)', 60);
   };
 
   // Drawn once per animation frame, however many runs' windows arrived in it.
@@ -211,7 +188,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
       id,
       ids.length,
       (change) => {
-        if (change === 'backfill' && zoom.range !== null) fetchDetail(zoom.range, [feed]);
+        if (change === 'backfill') fetchDetail([feed]);
         draw();
       },
       (code, message) => {

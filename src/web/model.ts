@@ -239,7 +239,8 @@ export function phaseRows(layerNames: readonly string[], markers: readonly Marke
   });
 }
 
-const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
+/** The value when it can sit on a log axis (finite and above 0), else null. */
+export const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
 
 export interface TravelColumns {
   /** Layers then NETWORK_LABEL. */

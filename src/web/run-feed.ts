@@ -31,22 +31,28 @@ export class RunFeed {
   private stopOpen: () => void = () => {};
   private disposed = false;
 
+  /** What the subscription names: the run's full id once the server has resolved `id`, else `id` itself. */
+  private ref: string;
+
   constructor(
     private readonly live: Live,
     /** The id, id prefix or name the view asked for. */
     readonly id: string,
     /** How many runs share the page (the compare view): each gets that share of the window budget. */
-    private readonly share: number,
+    share: number,
     private readonly onChange: (change: FeedChange) => void,
     private readonly onError: (code: string, message: string) => void,
   ) {
+    this.ref = id;
     this.stopListening = live.listen((m) => this.receive(m));
-    // The run's layer count first: a wide model gets fewer windows, so its first load stays light. A run the
-    // server does not know is left to the subscription, whose error message the view shows.
+    // The run first: its full id, so the backfill is known for certain (two compared runs' ids can share a
+    // prefix), and its layer count, so a wide model gets fewer windows and its first load stays light. A run
+    // the server does not know is left to the subscription, whose error message the view shows.
     getJson(`api/runs/${encodeURIComponent(id)}`)
       .then((run) => {
-        const layers = (run as { layers?: unknown[] }).layers?.length;
-        if (typeof layers === 'number') this.points = windowBudget(layers, share);
+        const r = run as { id?: unknown; layers?: unknown[] };
+        if (typeof r.id === 'string') this.ref = r.id;
+        if (Array.isArray(r.layers)) this.points = windowBudget(r.layers.length, share);
       })
       .catch(() => {})
       .finally(() => {
@@ -62,7 +68,7 @@ export class RunFeed {
     if (this.failed) return;
     const after = this.lastStep();
     // The page draws layers, never single variables: it asks for windows without them (a third of the bytes).
-    this.live.send(after === null ? { v: 1, type: 'subscribe', run: this.id, points: this.points, variables: false } : { v: 1, type: 'subscribe', run: this.id, after, variables: false });
+    this.live.send(after === null ? { v: 1, type: 'subscribe', run: this.ref, points: this.points, variables: false } : { v: 1, type: 'subscribe', run: this.ref, after, variables: false });
   }
 
   private addMarkers(list: readonly Marker[]): void {
@@ -76,8 +82,11 @@ export class RunFeed {
 
   private receive(m: LiveMessage): void {
     if (this.failed) return;
-    if (m.type === 'backfill' && (m.run.id === this.id || m.run.name === this.id || (this.info === null && m.run.id.startsWith(this.id)) || m.run.id === this.info?.id)) {
+    // Unresolved (the HTTP read failed), the name or an id prefix is all there is to match the backfill by.
+    const ours = (id: string, name: string): boolean => id === this.ref || (this.info === null && (name === this.ref || id.startsWith(this.ref)));
+    if (m.type === 'backfill' && ours(m.run.id, m.run.name)) {
       this.info = m.run;
+      this.ref = m.run.id;
       this.windows = mergeWindows(this.windows, m.windows);
       this.total = Math.max(m.total_windows, this.windows.length);
       this.addMarkers(m.markers);
@@ -86,14 +95,13 @@ export class RunFeed {
       const before = this.windows.length;
       this.windows = mergeWindows(this.windows, [m.window]);
       if (this.windows.length > before) this.total++;
-      this.info = { ...this.info, last_step: Math.max(this.info.last_step ?? 0, m.window.step) };
       this.onChange('window');
     } else if (m.type === 'marker' && this.info !== null && m.marker.run === this.info.id) {
       this.addMarkers([m.marker]);
       this.onChange('marker');
     } else if (m.type === 'gap' && this.info !== null && m.run === this.info.id) {
       this.subscribe();
-    } else if (m.type === 'error' && m.run === this.id) {
+    } else if (m.type === 'error' && m.run === this.ref) {
       this.failed = true;
       this.onError(m.code, m.message);
     }

@@ -3,7 +3,7 @@
  * layer against step, weight travel, loss, noise scale, the information plane when a probe ran, and the
  * markers. All charts share one step range; zooming into a thinned part fetches it in full detail.
  */
-import uPlot from 'uplot';
+import type uPlot from 'uplot';
 import type { Live } from './connection.js';
 import { el, type View } from './dom.js';
 import {
@@ -20,18 +20,12 @@ import {
   phaseRows,
   snrColumns,
   travelColumns,
-  withRange,
   type StepRange,
 } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
-import { LineChart, StepZoom, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, phaseLegend, stepChart, stepRangeForm, zeroDbLine } from './charts.js';
+import { LineChart, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, phaseLegend, stepChart, stripAxisOf, zeroDbLine } from './charts.js';
 import { RunFeed, type FeedChange } from './run-feed.js';
-
-/** The zoomed range goes into the URL (replacing, so Back still leaves the view), and a link reopens it. */
-export function keepRangeInUrl(range: StepRange | null): void {
-  const hash = withRange(location.hash, range);
-  if (hash !== location.hash) history.replaceState(null, '', `${location.pathname}${location.search}${hash}`);
-}
+import { viewZoom } from './view-zoom.js';
 
 /** A message for a run the server refused. */
 export function refusal(ref: string, code: string, message: string): string {
@@ -86,7 +80,6 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const infoSection = el('section', { class: 'info', 'data-testid': 'info-section', hidden: '' });
   const infoBox = el('div', { class: 'plane', 'data-testid': 'info-chart' });
   const infoLegendBox = el('div');
-  const detailNote = el('p', { class: 'note', 'data-testid': 'detail-note', 'aria-live': 'polite' });
   infoSection.append(
     el('h3', {}, 'Information plane (probe windows)'),
     el(
@@ -100,27 +93,8 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   );
 
   let feed: RunFeed | null = null;
-  const fetchDetail = (range: StepRange): void => {
-    if (feed === null) return;
-    detailNote.textContent = '';
-    feed
-      .detail(range)
-      .then((more) => {
-        if (more) detailNote.textContent = `Showing steps ${formatNumber(Math.round(range.min))} to ${formatNumber(Math.round(range.max))} in full detail.`;
-      })
-      .catch((e: unknown) => {
-        detailNote.textContent = `Could not fetch the detail of this range: ${(e as Error).message}`;
-      });
-  };
-  const zoom = new StepZoom((range) => {
-    rangeForm.show(range);
-    keepRangeInUrl(range);
-    if (range !== null) fetchDetail(range);
-  });
-  const rangeForm = stepRangeForm(zoom);
   // A link with a step range opens zoomed; its detail is fetched once the run is known.
-  zoom.range = initial;
-  rangeForm.show(initial);
+  const { zoom, controls, fetchDetail } = viewZoom(initial, () => (feed === null ? [] : [feed]));
 
   const main = el(
     'section',
@@ -130,8 +104,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     facts,
     advice,
     caution,
-    rangeForm.form,
-    detailNote,
+    ...controls,
     el('h3', {}, 'Phase per layer (estimated)'),
     phaseLegend(),
     stripBox,
@@ -209,11 +182,8 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       stripBox.replaceChildren(el('p', { class: 'note' }, 'No windows yet.'));
       return;
     }
-    const min = u.scales.x?.min;
-    const max = u.scales.x?.max;
-    if (min === undefined || max === undefined || min === null || max === null || !(min > 0) || !(max > min)) return;
-    const ratio = uPlot.pxRatio;
-    drawPhaseStrip(stripBox, phaseRows(layerNames(), markers(), min, max), { width: u.width, left: u.bbox.left / ratio, plotWidth: u.bbox.width / ratio, min, max });
+    const axis = stripAxisOf(u);
+    if (axis !== null) drawPhaseStrip(stripBox, phaseRows(layerNames(), markers(), axis.min, axis.max), axis);
   };
 
   const drawSnr = (): void => {
@@ -314,7 +284,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const onChange = (change: FeedChange): void => {
     if (change !== 'marker') pending.series = true;
     if (change !== 'window' && change !== 'detail') pending.markers = true;
-    if (change === 'backfill' && zoom.range !== null) fetchDetail(zoom.range);
+    if (change === 'backfill' && feed !== null) fetchDetail([feed]);
     frame ??= requestAnimationFrame(() => {
       frame = null;
       const todo = pending;
