@@ -344,6 +344,9 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     socket.end(`HTTP/1.1 ${status} ${status === 401 ? 'Unauthorized' : status === 403 ? 'Forbidden' : 'Not Found'}\r\ncontent-type: application/json\r\ncontent-length: ${Buffer.byteLength(body)}\r\nconnection: close\r\n\r\n${body}`);
   };
   app.server.on('upgrade', (req: IncomingMessage, socket: Duplex, head: Buffer) => {
+    // Node hands an upgrading socket over without its own error handler: a client that resets the connection
+    // (while a refusal is sent, or before ws takes the socket) would otherwise crash the server.
+    socket.on('error', () => socket.destroy());
     const path = (req.url ?? '').split('?')[0];
     if (path !== '/live' && path !== '/ingest') return refuseUpgrade(socket, 404, 'TIDEMARK_ERR_NOT_FOUND');
     if (token !== null && !tokenMatches(token, tokenOf(req))) return refuseUpgrade(socket, 401, 'TIDEMARK_ERR_UNAUTHORIZED');

@@ -2,7 +2,7 @@
  * The server in-process: HTTP routes through fastify's inject, WebSocket ingest and live stream through
  * the ws package's own client (an independent implementation of RFC 6455) on a loopback port.
  */
-import type { AddressInfo } from 'node:net';
+import { connect, type AddressInfo } from 'node:net';
 import { afterEach, describe, expect, it } from 'vitest';
 import WebSocket from 'ws';
 import type { IngestReply, LiveMessage as ViewerBound } from '../../src/protocol/messages.js';
@@ -260,6 +260,34 @@ describe('WebSocket ingest', () => {
     expect(await status(`${base}/ingest?token=tok`)).toBe(101);
     expect(await status(`${base}/live?token=tok`, { origin: 'http://evil.test' })).toBe(403);
     expect(await status(`${base}/elsewhere?token=tok`)).toBe(404);
+  });
+
+  it('survives a refused upgrade whose client resets the connection while the refusal is sent', async () => {
+    const { server, url } = await serve({ token: 'tok-12345678' });
+    const port = Number(new URL(url).port);
+    const errors: unknown[] = [];
+    const onUncaught = (e: unknown): void => void errors.push(e);
+    process.on('uncaughtException', onUncaught);
+    try {
+      for (let i = 0; i < 5; i++) {
+        await new Promise<void>((resolve) => {
+          const socket = connect(port, '127.0.0.1', () => {
+            socket.write('GET /ingest HTTP/1.1\r\nHost: x\r\nUpgrade: websocket\r\nConnection: Upgrade\r\nSec-WebSocket-Key: dGhlIHNhbXBsZSBub25jZQ==\r\nSec-WebSocket-Version: 13\r\n\r\n');
+          });
+          // On the first bytes of the 401, a reset (RST) instead of a close.
+          socket.once('data', () => {
+            socket.resetAndDestroy();
+            resolve();
+          });
+          socket.on('error', () => {});
+        });
+      }
+      await new Promise((r) => setTimeout(r, 100));
+      expect(errors).toEqual([]);
+      expect((await server.app.inject('/healthz')).statusCode).toBe(200);
+    } finally {
+      process.off('uncaughtException', onUncaught);
+    }
   });
 });
 

@@ -62,6 +62,8 @@ class FakeIngest {
     const http = createServer();
     const wss = new WebSocketServer({ noServer: true, maxPayload: MAX_FRAME_BYTES });
     http.on('upgrade', (req, socket, head) => {
+      // As the real server does: a client's reset during a refusal must not become an unhandled error here.
+      socket.on('error', () => socket.destroy());
       const token = new URL(req.url ?? '/', 'http://localhost').searchParams.get('token');
       if (this.token !== null && token !== this.token) {
         socket.end('HTTP/1.1 401 Unauthorized\r\nContent-Length: 0\r\nConnection: close\r\n\r\n');
