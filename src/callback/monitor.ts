@@ -30,6 +30,7 @@ import { startServer, type RunningServer } from '../server/serve.js';
 import type { Accumulator, RawVariableWindow } from './accumulator.js';
 import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
+import { NoiseMeter, type NoiseResult } from './noise-meter.js';
 import { installTap, type GradientPair } from './optimizer-tap.js';
 import { resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
 import { Probe, probeFailure, type ProbeResult } from './probe.js';
@@ -87,6 +88,8 @@ export interface Monitor {
   readonly url: string | null;
   /** With `probe`: how many probes ran during training and the time they took (ms); otherwise null. */
   probeCost(): { calls: number; ms: number } | null;
+  /** How many noise measurements ran and the time they took (ms); null with `noise: false`. */
+  noiseCost(): { calls: number; ms: number } | null;
   /** Closes the last partial window (when it has ≥ 2 minibatches), restores the optimizer, closes the store. */
   close(): Promise<void>;
 }
@@ -148,6 +151,7 @@ class MonitorSession implements Monitor {
   private lastAdvice: Advice | null = null;
   private readonly model: { stopTraining: boolean };
   private readonly probe: Probe | null;
+  private readonly meter: NoiseMeter | null;
   private served: RunningServer | null = null;
   private readonly compression = new CompressionDetector();
   /** performance.now() at the first step: the probe's time budget is a share of the time since. */
@@ -156,10 +160,19 @@ class MonitorSession implements Monitor {
   private passBatches: number[] = [];
   private passOpen = false;
 
-  constructor(opts: ResolvedOptions, view: ModelView, runId: string, model: { stopTraining: boolean }, probe: Probe | null) {
+  constructor(
+    opts: ResolvedOptions,
+    view: ModelView,
+    runId: string,
+    model: { stopTraining: boolean },
+    probe: Probe | null,
+    meter: NoiseMeter | null,
+  ) {
     this.opts = opts;
     this.model = model;
     this.probe = probe;
+    this.meter = meter;
+    meter?.rows.install();
     this.detector = new PhaseDetector(opts.phases);
     this.advisor = new StopAdvisor(opts.advice);
     this.view = view;
@@ -237,6 +250,10 @@ class MonitorSession implements Monitor {
     return this.probe === null ? null : { ...this.probe.cost };
   }
 
+  noiseCost(): { calls: number; ms: number } | null {
+    return this.meter === null ? null : { ...this.meter.cost };
+  }
+
   get url(): string | null {
     return this.served?.url ?? null;
   }
@@ -302,17 +319,42 @@ class MonitorSession implements Monitor {
     return logs;
   }
 
+  /**
+   * Runs a noise measurement when one is due, synchronously, so the weights cannot move under it (in a
+   * custom loop the window closes inside the optimizer call). Never throws unless strict.
+   */
+  private measureNoise(index: number, batchSize: number | null): NoiseResult | null {
+    const meter = this.meter;
+    if (meter === null) return null;
+    const trainingMs = this.trainingStart === null ? 0 : performance.now() - this.trainingStart;
+    if (!meter.due(index, trainingMs)) return null;
+    // Between two fit calls (a window left for close()) there are no rows to draw, by design.
+    if (meter.rows.current() === null && meter.rows.seenFit && !this.inFit) return null;
+    try {
+      const result = meter.measure(batchSize, meter.allowance(trainingMs));
+      const s = result.sample;
+      if (s.status === 'unavailable' || s.status === 'failed') this.report('TIDEMARK_ERR_NOISE', `No noise measurement: ${s.reason ?? s.status}. noise_scale stays null.`);
+      return result;
+    } catch (e) {
+      this.fail('TIDEMARK_ERR_NOISE', e, 'noise_scale stays null in this window.');
+      return null;
+    }
+  }
+
   private closeWindow(): Promise<void> {
     const batches = this.acc.pending;
+    const batchSize = this.sizeCount > 0 ? this.sizeSum / this.sizeCount : this.opts.batchSize;
+    const noise = this.measureNoise(this.windowIndex, batchSize);
     const meta = {
       index: this.windowIndex++,
       first_step: this.windowFirstStep,
       step: this.step,
       epoch: this.inFit ? this.epoch : null,
       batches,
-      batch_size: this.sizeCount > 0 ? this.sizeSum / this.sizeCount : this.opts.batchSize,
+      batch_size: batchSize,
       batches_per_epoch: this.inFit ? this.batchesPerEpoch : null,
       pass_batches: this.passBatches,
+      noise: noise?.sample ?? null,
       logs: this.takeLogs(),
     };
     this.passBatches = [];
@@ -331,7 +373,7 @@ class MonitorSession implements Monitor {
       const values = await raw;
       const trainingMs = this.trainingStart === null ? 0 : performance.now() - this.trainingStart;
       const probed = this.probe !== null && this.probe.due(meta.index, trainingMs) ? await this.runProbe() : null;
-      this.finishWindow(values, meta, probed);
+      this.finishWindow(values, meta, probed, noise);
     });
     // The chain itself never rejects, so one failed window does not block the next.
     this.chain = done.catch((e) => {
@@ -344,19 +386,22 @@ class MonitorSession implements Monitor {
     raw: RawVariableWindow[],
     meta: Omit<WindowRecord, 'run' | 'snr_floor' | 'time' | 'layers' | 'network'>,
     probed: ProbeResult | null,
+    noise: NoiseResult | null,
   ): void {
     const ctx: WindowContext = {
       batchSize: meta.batch_size,
       batchesPerEpoch: meta.batches_per_epoch,
       passBatches: meta.pass_batches,
+      noise: noise?.grams ?? null,
+      maxError: this.meter?.options.maxError ?? 0,
     };
     const layers: Record<string, LayerStats> = {};
-    const all: { raw: RawVariableWindow; params: number }[] = [];
+    const all: { raw: RawVariableWindow; params: number; index: number }[] = [];
     for (const layer of this.view.layers) {
-      const parts = layer.variables.map((v) => ({ raw: raw[v.index]!, params: v.size }));
+      const parts = layer.variables.map((v) => ({ raw: raw[v.index]!, params: v.size, index: v.index }));
       all.push(...parts);
       const variables: Record<string, VariableStats> = {};
-      for (const v of layer.variables) variables[v.name] = variableStats(raw[v.index]!, v.size, ctx);
+      for (const v of layer.variables) variables[v.name] = variableStats(raw[v.index]!, v.size, v.index, ctx);
       const stats = pooledStats(parts, ctx);
       layers[layer.name] = {
         ...stats,
@@ -585,6 +630,7 @@ class MonitorSession implements Monitor {
     this.write({ type: 'end', run: this.runId, status, step: this.step, time: Date.now() });
     this.acc.dispose();
     this.probe?.dispose();
+    this.meter?.dispose();
     const served = this.served;
     this.served = null;
     const sink = this.sink;
@@ -626,7 +672,14 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
       throw e;
     }
   }
-  const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean }, probe);
+  let meter: NoiseMeter | null = null;
+  try {
+    meter = opts.noise === null ? null : new NoiseMeter(model, view, opts.noise);
+  } catch (e) {
+    probe?.dispose();
+    throw e;
+  }
+  const session = new MonitorSession(opts, view, runId, model as unknown as { stopTraining: boolean }, probe, meter);
   const run: RunInfo = {
     id: runId,
     name: opts.run,
@@ -639,6 +692,7 @@ export async function monitor(model: tf.LayersModel, options: MonitorOptions = {
       accumulator: session.accumulator,
       backend: tf.getBackend(),
       probe: probe?.describe() ?? null,
+      noise: opts.noise === null ? null : { ...opts.noise, rows: opts.noise.rows === null ? 'fit' : 'option' },
     },
     layers: layerInfo(view),
   };

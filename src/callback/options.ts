@@ -7,6 +7,7 @@ import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../e
 import { ADVICE_DEFAULTS, type AdviceOptions } from '../analysis/stop-advice.js';
 import { PHASE_DEFAULTS, type PhaseOptions } from '../analysis/phase-detector.js';
 import type { Sink } from '../storage/sink.js';
+import { resolveNoiseOptions, type NoiseOptions, type ResolvedNoiseOptions } from './noise-meter.js';
 import { resolveProbeOptions, type ProbeOptions, type ResolvedProbeOptions } from './probe.js';
 
 export type WindowSetting = 'auto' | 'epoch' | number;
@@ -53,6 +54,13 @@ export interface MonitorOptions {
    */
   probe?: ProbeOptions;
   /**
+   * Noise measurements: the fixed-weight gradient noise scale from gradients of disjoint groups of
+   * training rows at the current weights, within `budget` (default 1.5 %) of the training time. On by
+   * default, with fit's own x and y; pass `{ x, y }` for fitDataset or custom loops; `false` turns it off.
+   * See {@link NoiseOptions}.
+   */
+  noise?: NoiseOptions | false;
+  /**
    * Serve this run live on 127.0.0.1 at this port (0: any free port), in-process, until `close()`:
    * the API, the live stream and /metrics (`mon.url`). Needs a SQLite store. Default: off.
    */
@@ -72,6 +80,7 @@ export interface ResolvedOptions {
   readonly advice: Readonly<AdviceOptions & { act: boolean }>;
   readonly phases: Readonly<PhaseOptions>;
   readonly probe: ResolvedProbeOptions | null;
+  readonly noise: ResolvedNoiseOptions | null;
   readonly serve: number | null;
 }
 
@@ -88,6 +97,7 @@ const KNOWN = [
   'advice',
   'phases',
   'probe',
+  'noise',
   'serve',
 ] as const;
 
@@ -220,6 +230,7 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const advice = nestedOptions('advice', o.advice, { act: 'boolean', watch: 'string', ...numeric(ADVICE_DEFAULTS) });
   const phases = nestedOptions('phases', o.phases, numeric(PHASE_DEFAULTS));
   const probe = resolveProbeOptions(o.probe);
+  const noise = resolveNoiseOptions(o.noise);
 
   let serve: number | null = null;
   if (o.serve !== undefined && o.serve !== false) {
@@ -240,6 +251,7 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
     advice: Object.freeze({ act: false, ...advice }) as ResolvedOptions['advice'],
     phases: Object.freeze(phases) as PhaseOptions,
     probe,
+    noise,
     serve,
     run,
     store: store as string | Sink,

@@ -2,14 +2,20 @@
  * Turns an accumulator's raw sums into the per-variable, per-layer and network statistics of a
  * window record. The formulas live in src/analysis; this file only pools and names.
  */
+import { addGrams, batchSnrDb, noiseFromGram } from '../analysis/fixed-weight-noise.js';
 import { gradientStats, poolMoments, type GradientMoments } from '../analysis/gradient-stats.js';
 import type { LayerStats, VariableStats } from '../protocol/records.js';
 import type { RawVariableWindow } from './accumulator.js';
+import type { NoiseGrams } from './noise-meter.js';
 
 export interface WindowContext {
   batchSize: number | null;
   batchesPerEpoch: number | null;
   passBatches: readonly number[];
+  /** The noise measurement at the window's end, or null: then noise_scale is null. */
+  noise: NoiseGrams | null;
+  /** Its accepted relative standard error of |G|². */
+  maxError: number;
 }
 
 interface Pooled {
@@ -48,14 +54,25 @@ function pool(parts: { raw: RawVariableWindow; params: number }[]): Pooled {
   return { moments, weightSq, travelSq, updateSq, updateWeightSq, nonfinite, params };
 }
 
-function toStats(p: Pooled, ctx: WindowContext): VariableStats {
+/** The fixed-weight noise values of the variables at these indices, pooled (their Grams add). */
+function noiseOf(indices: readonly number[], ctx: WindowContext): Pick<VariableStats, 'noise_scale' | 'noise_scale_rse' | 'batch_snr_db'> {
+  const n = ctx.noise;
+  if (n === null) return { noise_scale: null };
+  const k = n.design.groups;
+  const est = noiseFromGram(addGrams(indices.map((i) => n.grams[i]!), k), n.design, ctx.maxError);
+  const snr = ctx.batchSize === null ? null : batchSnrDb(ctx.batchSize, est.noise_scale);
+  return { noise_scale: est.noise_scale, noise_scale_rse: est.noise_scale_rse, ...(snr === null ? {} : { batch_snr_db: snr }) };
+}
+
+function toStats(p: Pooled, ctx: WindowContext, indices: readonly number[]): VariableStats {
+  // The window's own statistics, at moving weights: mean and spread of its minibatch gradients.
   const g = gradientStats(p.moments, ctx);
   return {
     grad_mean_norm: g.grad_mean_norm,
     grad_std_norm: g.grad_std_norm,
     grad_snr: g.grad_snr,
     grad_snr_db: g.grad_snr_db,
-    noise_scale: g.noise_scale,
+    ...noiseOf(indices, ctx),
     weight_norm: Math.sqrt(p.weightSq),
     weight_travel: Math.sqrt(p.travelSq),
     update_ratio:
@@ -66,13 +83,13 @@ function toStats(p: Pooled, ctx: WindowContext): VariableStats {
   };
 }
 
-export function variableStats(raw: RawVariableWindow, params: number, ctx: WindowContext): VariableStats {
-  return toStats(pool([{ raw, params }]), ctx);
+export function variableStats(raw: RawVariableWindow, params: number, index: number, ctx: WindowContext): VariableStats {
+  return toStats(pool([{ raw, params }]), ctx, [index]);
 }
 
 /** Pools variables (a layer) or layers' variables (the network): norms add in squares. */
-export function pooledStats(parts: { raw: RawVariableWindow; params: number }[], ctx: WindowContext): VariableStats {
-  return toStats(pool(parts), ctx);
+export function pooledStats(parts: { raw: RawVariableWindow; params: number; index: number }[], ctx: WindowContext): VariableStats {
+  return toStats(pool(parts), ctx, parts.map((p) => p.index));
 }
 
 export type { LayerStats };

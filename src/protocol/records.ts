@@ -13,8 +13,19 @@ export interface VariableStats {
   grad_snr: number;
   /** 20·log10(grad_snr). */
   grad_snr_db: number;
-  /** Simple gradient noise scale B·Σs²/|G|²_est (McCandlish et al. 2018); null when |G|²_est ≤ 0 or B unknown. */
+  /**
+   * Simple gradient noise scale tr Σ/|G|² (McCandlish et al. 2018) at the weights of the window's end, from
+   * a noise measurement (gradients of disjoint row groups at fixed weights; see the window's `noise`). Null
+   * in windows without a measurement and where |G|² was not resolved from noise.
+   */
   noise_scale: number | null;
+  /** Jackknife standard error of ln(noise_scale), ≈ its relative error; present where a measurement ran. */
+  noise_scale_rse?: number;
+  /**
+   * SNR of one training minibatch at fixed weights, |G|/sqrt(tr Σ/B) = sqrt(B/noise_scale), as
+   * 10·log10(B/noise_scale) dB; present where noise_scale is. 0 dB where the batch equals the noise scale.
+   */
+  batch_snr_db?: number;
   /** ||w|| at the window's end. */
   weight_norm: number;
   /** ||w − w₀||, the distance from the weights at monitor() time. */
@@ -61,6 +72,28 @@ export interface LayerStats extends VariableStats {
   probe_rows?: number;
 }
 
+/** The noise measurement taken at a window's end (between two steps, at fixed weights). */
+export interface NoiseSample {
+  /**
+   * `measured`: the network's noise scale was resolved (layers that were not say so in `reason`);
+   * `unresolved`: |G|² of the network was not resolved from noise within the measurement's groups;
+   * `unavailable`: no training rows (or too few); `failed`: the gradients were not finite.
+   */
+  status: 'measured' | 'unresolved' | 'unavailable' | 'failed';
+  /** Why values are missing, in a sentence; null when every layer was resolved. */
+  reason: string | null;
+  /** K, groups of rows whose gradients were taken. */
+  groups: number;
+  /** Rows per group. */
+  group_rows: number;
+  /** K × group_rows, rows used (drawn without replacement). */
+  rows: number;
+  /** Rows of the training set drawn from (the finite-population correction uses it); null for a sample of unknown size. */
+  population: number | null;
+  /** Wall time of the measurement, ms. */
+  ms: number;
+}
+
 /** One window of minibatches. */
 export interface WindowRecord {
   /** Run id (UUID). */
@@ -90,6 +123,8 @@ export interface WindowRecord {
   time: number;
   layers: Record<string, LayerStats>;
   network: LayerStats;
+  /** The noise measurement at the window's end; absent or null when none was due. */
+  noise?: NoiseSample | null;
   /** Means over the window of the numbers fit logged per batch, and val_* of an epoch that ended in it. */
   logs: Record<string, number>;
 }

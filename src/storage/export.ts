@@ -45,6 +45,7 @@ export const CSV_WINDOW_COLUMNS = [
   'pass_batches',
   'snr_floor',
   'time',
+  'noise',
   'scope',
   'layer',
   'variable',
@@ -107,6 +108,7 @@ export function* csvLines(store: Store, runId: string): Generator<string> {
       JSON.stringify(w.pass_batches),
       w.snr_floor,
       w.time,
+      w.noise == null ? null : JSON.stringify(w.noise),
     ];
     const tail = logs.map((key) => w.logs[key] ?? null);
     const row = (scope: string, layer: string | null, variable: string | null, stats: object): string => {

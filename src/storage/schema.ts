@@ -25,7 +25,7 @@
 import type Database from 'better-sqlite3';
 
 /** The schema version this code writes and reads. */
-export const SCHEMA_VERSION = 2;
+export const SCHEMA_VERSION = 3;
 
 /** `PRAGMA application_id` of a tidemark store: the bytes "TDMK". */
 export const APPLICATION_ID = 0x54444d4b;
@@ -93,6 +93,7 @@ CREATE TABLE windows (
   batch_size         REAL,
   batches_per_epoch  INTEGER,
   pass_batches       TEXT NOT NULL,        -- JSON array of numbers
+                                           -- (version 3 adds noise TEXT: JSON of WindowRecord.noise, or NULL)
   snr_floor          REAL,                 -- NULL is NaN
   time               REAL NOT NULL,
   PRIMARY KEY (run_id, idx)
@@ -140,10 +141,19 @@ CREATE TABLE ingest_batches (
 ) WITHOUT ROWID;
 `;
 
+/**
+ * Version 3: each window's noise measurement (WindowRecord.noise: how the fixed-weight noise scale was
+ * measured, or why it is missing), as JSON; NULL where none was due and in windows stored before.
+ */
+const V3 = `
+ALTER TABLE windows ADD COLUMN noise TEXT;
+`;
+
 /** Every migration, in order; the last one's `to` is {@link SCHEMA_VERSION}. */
 export const MIGRATIONS: readonly Migration[] = [
   { to: 1, up: (db) => db.exec(V1) },
   { to: 2, up: (db) => db.exec(V2) },
+  { to: 3, up: (db) => db.exec(V3) },
 ];
 
 export interface SchemaState {

@@ -222,6 +222,7 @@ interface WindowDbRow {
   pass_batches: string;
   snr_floor: number | null;
   time: number;
+  noise: string | null;
 }
 
 interface SeriesDbRow {
@@ -364,7 +365,7 @@ export class SqliteStore implements Store {
       status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = ?`);
     p('insertLayer', 'INSERT INTO layers (run_id, position, name, class_name, params, variables) VALUES (?, ?, ?, ?, ?, ?)');
     p('insertWindow', `INSERT INTO windows (run_id, idx, first_step, step, epoch, batches, batch_size, batches_per_epoch,
-      pass_batches, snr_floor, time) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (run_id, idx) DO NOTHING`);
+      pass_batches, snr_floor, time, noise) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) ON CONFLICT (run_id, idx) DO NOTHING`);
     p('countWindows', `UPDATE runs SET window_count = window_count + ?, last_step = max(ifnull(last_step, ?), ?),
       heartbeat_at = max(heartbeat_at, ?),
       status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = ?`);
@@ -402,12 +403,12 @@ export class SqliteStore implements Store {
       p(`window_${col}`, `SELECT step, ${col} AS value FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step`);
     }
     p('hasWindows', 'SELECT 1 FROM windows WHERE run_id = ? LIMIT 1');
-    p('windowsOf', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+    p('windowsOf', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise
       FROM windows WHERE run_id = ? ORDER BY step`);
-    p('windowsRange', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+    p('windowsRange', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise
       FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step`);
     p('windowStepsRange', 'SELECT step FROM windows WHERE run_id = ? AND step >= ? AND step <= ? ORDER BY step');
-    p('windowsAt', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time
+    p('windowsAt', `SELECT idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise
       FROM windows WHERE run_id = ? AND step IN (SELECT value FROM json_each(?)) ORDER BY step`);
     p('markersOf', `SELECT layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = ?
       ORDER BY step, detected_step, id`);
@@ -605,6 +606,9 @@ export class SqliteStore implements Store {
     if (!Array.isArray(w.pass_batches) || !w.pass_batches.every((k) => typeof k === 'number')) {
       throw badRecord(`record ${i}: window.pass_batches must be an array of numbers.`);
     }
+    if (w.noise != null && (!isObject(w.noise) || typeof (w.noise as { status?: unknown }).status !== 'string')) {
+      throw badRecord(`record ${i}: window.noise must be null or an object with a status.`);
+    }
     if (!isObject(w.layers) || !isObject(w.network) || !isObject(w.logs)) {
       throw badRecord(`record ${i}: window ${index} of run ${show(runId)} needs 'layers', 'network' and 'logs' objects.`);
     }
@@ -622,6 +626,7 @@ export class SqliteStore implements Store {
         JSON.stringify(w.pass_batches),
         real(requireNumber(`record ${i}: window.snr_floor`, w.snr_floor)),
         requireFinite(`record ${i}: window.time`, w.time),
+        w.noise == null ? null : toJson(w.noise),
       );
     } catch (e) {
       const code = sqliteCode(e);
@@ -1052,6 +1057,7 @@ export class SqliteStore implements Store {
           pass_batches: JSON.parse(r.pass_batches) as number[],
           snr_floor: num(r.snr_floor),
           time: r.time,
+          noise: r.noise === null ? null : (fromJson(r.noise) as WindowRecord['noise']),
           layers: {},
           network: {} as LayerStats,
           logs: {},

@@ -89,7 +89,7 @@ describe('monitor statistics', () => {
       tf.dispose([xb, yb, value, ...Object.values(grads)]);
     }
 
-    const mon = await monitor(model, { window: K });
+    const mon = await monitor(model, { window: K, noise: false });
     const windows: WindowRecord[] = [];
     mon.onWindow((w) => windows.push(w));
     const xs = tf.tensor2d(x);
@@ -129,11 +129,9 @@ describe('monitor statistics', () => {
       expect(rel(s.grad_std_norm, Math.sqrt(varTrace))).toBeLessThan(1e-4);
       expect(rel(s.grad_snr, Math.sqrt(meanSq / varTrace))).toBeLessThan(1e-4);
       expect(s.grad_snr_db).toBeCloseTo(20 * Math.log10(Math.sqrt(meanSq / varTrace)), 3);
-      // Noise scale, McCandlish et al. (2018) B_simple with the 1/K bias correction (methods.md §1.4);
-      // M is unknown while the first epoch runs, so the independent-draw form applies.
-      const expectedNoise = (B * varTrace) / (meanSq - varTrace / K);
-      if (expectedNoise > 0) expect(rel(s.noise_scale!, expectedNoise)).toBeLessThan(1e-3);
-      else expect(s.noise_scale).toBeNull();
+      // The noise scale comes from fixed-weight measurements only (noise-meter.test.ts, noise-real.test.ts),
+      // never from these moving-weight window gradients: off here, so it is missing.
+      expect(s.noise_scale).toBeNull();
       expect(rel(s.weight_travel, Math.sqrt(travelSq))).toBeLessThan(1e-4);
       expect(rel(s.weight_norm, Math.sqrt(weightSq))).toBeLessThan(1e-4);
       expect(rel(s.update_ratio, Math.sqrt(d2) / Math.sqrt(w2))).toBeLessThan(1e-3);
