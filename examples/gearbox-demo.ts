@@ -14,6 +14,7 @@ import * as tf from '@tensorflow/tfjs';
 import cliProgress from 'cli-progress';
 import {
   DEFAULT_PORT,
+  analysis,
   TidemarkError,
   defaultStore,
   monitor,
@@ -257,8 +258,8 @@ const TABLE_LEGEND = [
   'Columns, per layer and per window of K minibatches:',
   '  SNR dB       mean gradient against its minibatch-to-minibatch spread; above 0 the minibatches',
   '               agree (drift), below 0 they mostly cancel (diffusion)',
-  '  noise scale  batch size at which gradient noise would equal the signal; "-" when the signal',
-  '               estimate is not positive',
+  '  noise scale  batch size at which gradient noise would equal the signal, measured at the window\'s',
+  '               end with the weights held still; "-" where no measurement ran or it was unresolved',
   '  travel       distance of the weights from where they started',
   '  exponent     local slope of log travel against log step: near 1 while drifting, 1/2 for a',
   '               random walk, lower when the wandering is confined',
@@ -556,8 +557,12 @@ for (const name of model.layers.map((l) => l.name)) {
   summary.push(`${r.text}   step ${p.window.step}`);
 }
 if (marked) summary.push(SAT_LEGEND);
+const measured = mon.windows().filter((w) => w.noise?.status === 'measured').length;
 summary.push(
   `   probe ran in ${probeWindows} of ${windowsSeen} windows, on ${PROBE_ROWS} held-out measurements`,
+  '',
+  `Batch size: ${analysis.batchSizeAdvice(mon.windows().map((w) => w.network.noise_scale), BATCH_SIZE)}`,
+  `   (noise measured in ${measured} of ${windowsSeen} windows, taking ${((mon.noiseCost()?.ms ?? 0) / 1000).toFixed(1)} s of training time)`,
   '',
   `Stored ${mon.windows().length} windows of run ${mon.runId} in ${outPath}`,
   outPath.endsWith('.jsonl')

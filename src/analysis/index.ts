@@ -2,6 +2,8 @@
 export * from './moments.js';
 export * from './decibel.js';
 export * from './gradient-stats.js';
+export * from './fixed-weight-noise.js';
+export * from './batch-size-advice.js';
 export * from './power-law.js';
 export { studentTCdf, regularizedBeta } from './student-t.js';
 export * from './travel-exponent.js';

@@ -3,6 +3,7 @@
  * non-finite numbers, filtering the runs list, turning windows into chart columns, the route in the URL
  * fragment and the stop advice sentence.
  */
+import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 
@@ -319,31 +320,10 @@ export function noiseColumns(windows: readonly WindowRecord[]): NoiseColumns {
   return { steps: ws.map((w) => w.step), noise: ws.map((w) => positive(w.network.noise_scale)), batch: ws.map((w) => positive(w.batch_size)) };
 }
 
-/** How many of the latest windows the noise-scale sentence takes the median of. */
-export const NOISE_RECENT = 5;
-
-/**
- * One sentence on what the recent gradient noise scale implies for the batch size: B_noise estimates the
- * batch size beyond which larger batches give diminishing returns (McCandlish et al. 2018).
- */
+/** One sentence on what the recent fixed-weight noise scale implies for the batch size (analysis/batch-size-advice.ts). */
 export function noiseSentence(cols: NoiseColumns): string {
-  const recent = cols.noise.filter((v): v is number => v !== null).slice(-NOISE_RECENT);
-  const lead = 'The gradient noise scale B_noise estimates the batch size beyond which larger batches give diminishing returns (McCandlish et al. 2018).';
-  if (recent.length === 0) return `${lead} No estimate yet: it needs a known batch size and a positive estimate of the squared mean gradient.`;
-  const sorted = [...recent].sort((a, b) => a - b);
-  const mid = sorted.length >> 1;
-  const median = sorted.length % 2 === 1 ? sorted[mid]! : (sorted[mid - 1]! + sorted[mid]!) / 2;
   const batch = [...cols.batch].reverse().find((b) => b !== null) ?? null;
-  const est = `Median of the last ${recent.length} window${recent.length === 1 ? '' : 's'}: about ${formatNumber(median)} examples`;
-  if (batch === null) return `${lead} ${est}; the run's batch size is unknown, so there is nothing to compare it with. It is an estimate from minibatches.`;
-  const ratio = median / batch;
-  const verdict =
-    ratio > 2
-      ? `above the batch size of ${formatNumber(batch)}, so larger batches would likely still pay off`
-      : ratio < 0.5
-        ? `below the batch size of ${formatNumber(batch)}, so the batch is likely already past the point of full returns`
-        : `close to the batch size of ${formatNumber(batch)}`;
-  return `${lead} ${est}, ${verdict}. This is a noisy estimate; confirm any change of batch size on held-out data.`;
+  return batchSizeAdvice(cols.noise, batch);
 }
 
 export interface InfoPoint {
