@@ -145,6 +145,12 @@ export class NoiseMeter {
   private lastEstimate: number | null = null;
   private lastUnresolvedRows: number | null = null;
   readonly cost = { calls: 0, ms: 0 };
+  /**
+   * Time charged to the budget: the cost less the first group of the first measurement, which pays once
+   * for kernel set-up (several times a later group's time); charged, it would hold back every later
+   * measurement of a short run.
+   */
+  private charged = 0;
 
   constructor(model: unknown, view: ModelView, options: ResolvedNoiseOptions) {
     // A tf.Sequential compiles an inner LayersModel, which holds the loss functions.
@@ -163,13 +169,13 @@ export class NoiseMeter {
     const every = this.options.every;
     if (every !== 'auto') return windowIndex % every === 0;
     if (this.cost.calls === 0) return true;
-    const next = this.cost.ms / this.cost.calls;
-    return this.cost.ms + next <= this.options.budget * trainingMs;
+    const next = this.charged / this.cost.calls;
+    return this.charged + next <= this.options.budget * trainingMs;
   }
 
   /** What a measurement may still spend now, ms (at least its minimum groups always run). */
   allowance(trainingMs: number): number {
-    return this.options.every === 'auto' ? Math.max(0, this.options.budget * trainingMs - this.cost.ms) : Number.POSITIVE_INFINITY;
+    return this.options.every === 'auto' ? Math.max(0, this.options.budget * trainingMs - this.charged) : Number.POSITIVE_INFINITY;
   }
 
   /**
@@ -199,10 +205,13 @@ export class NoiseMeter {
     let k = 0;
     let estimates: FixedWeightNoise[] = [];
     const restore = this.saveState();
+    let setUpMs = 0;
     try {
       for (; k < maxGroups; k++) {
         const idx = order.subarray(k * groupRows, (k + 1) * groupRows);
+        const groupStart = performance.now();
         const grads = this.groupGradients(rows, idx);
+        if (this.cost.calls === 0 && k === 0) setUpMs = performance.now() - groupStart;
         for (let v = 0; v < vars.length; v++) {
           const g = grads[v]!;
           for (let i = 0; i < g.length; i++) {
@@ -229,7 +238,7 @@ export class NoiseMeter {
           k++;
           break;
         }
-        if (performance.now() - started > allowanceMs) {
+        if (performance.now() - started - setUpMs > allowanceMs) {
           k++;
           break;
         }
@@ -242,6 +251,7 @@ export class NoiseMeter {
     const ms = performance.now() - started;
     this.cost.calls++;
     this.cost.ms += ms;
+    this.charged += ms - setUpMs;
     const design: NoiseDesign = { groups, groupRows, population: rows.population };
     const net = estimates[estimates.length - 1]!;
     if (net.resolved && net.noise_scale !== null) {
