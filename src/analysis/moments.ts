@@ -80,6 +80,11 @@ export class ShiftedMoments {
   private readonly ref: Float64Array;
   private readonly s1: Float64Array;
   private readonly s2: Float64Array;
+  /** Σ‖v_{k+1} − v_k‖² over consecutive vectors pushed in the same block, and how many such pairs. */
+  private diffSq = 0;
+  private pairs = 0;
+  /** The squared differences of the block addBlock last went through. */
+  private blockDiffSq = 0;
 
   constructor(size: number) {
     if (!Number.isInteger(size) || size < 0) throw new RangeError(`size must be a non-negative integer, got ${size}`);
@@ -138,7 +143,24 @@ export class ShiftedMoments {
       return false;
     }
     this.n += m;
+    this.diffSq += this.blockDiffSq;
+    this.pairs += m - 1;
     return true;
+  }
+
+  /**
+   * Half the mean squared difference of consecutive vectors (von Neumann et al. 1941, "Distribution of the
+   * ratio of the mean square successive difference to the variance", Ann. Math. Statist. 12, from memory),
+   * summed over coordinates: for independent draws around a slowly moving mean it estimates the trace of
+   * their covariance without the mean's drift. Pairs are taken within each block; NaN without pairs.
+   */
+  successiveDiffTrace(): number {
+    return this.pairs > 0 ? this.diffSq / (2 * this.pairs) : Number.NaN;
+  }
+
+  /** Consecutive pairs behind {@link successiveDiffTrace}. */
+  get diffPairs(): number {
+    return this.pairs;
   }
 
   /** Takes back a block added by {@link pushBlock} (up to float64 rounding of the sums). */
@@ -147,9 +169,14 @@ export class ShiftedMoments {
     if (m === 0) return;
     if (m > this.n) throw new RangeError(`cannot remove ${m} vectors from ${this.n}`);
     this.n -= m;
+    // The block was this instance's last pushBlock, so blockDiffSq is what it added to the pairs.
+    this.diffSq -= this.blockDiffSq;
+    this.pairs -= m - 1;
     if (this.n === 0) {
       this.s1.fill(0);
       this.s2.fill(0);
+      this.diffSq = 0;
+      this.pairs = 0;
     } else this.addBlock(block, -1, this.size);
   }
 
@@ -159,6 +186,7 @@ export class ShiftedMoments {
    */
   private addBlock(block: readonly ArrayLike<number>[], sign: 1 | -1, end: number): number {
     const { ref, s1, s2 } = this;
+    let q = 0;
     if (block.length === 4) {
       const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
       for (let j = 0; j < end; j++) {
@@ -172,7 +200,12 @@ export class ShiftedMoments {
         if (x - x !== 0) return j;
         s1[j] = s1[j]! + sign * x;
         s2[j] = s2[j]! + sign * (d1 * d1 + d2 * d2 + d3 * d3 + d4 * d4);
+        const u = d2 - d1;
+        const v = d3 - d2;
+        const w = d4 - d3;
+        q += u * u + v * v + w * w;
       }
+      this.blockDiffSq = q;
       return end;
     }
     const m = block.length;
@@ -180,15 +213,19 @@ export class ShiftedMoments {
       const r = ref[j]!;
       let x = 0;
       let y = 0;
+      let prev = 0;
       for (let k = 0; k < m; k++) {
         const d = block[k]![j]! - r;
         x += d;
         y += d * d;
+        if (k > 0) q += (d - prev) * (d - prev);
+        prev = d;
       }
       if (x - x !== 0) return j;
       s1[j] = s1[j]! + sign * x;
       s2[j] = s2[j]! + sign * y;
     }
+    this.blockDiffSq = q;
     return end;
   }
 
@@ -196,6 +233,8 @@ export class ShiftedMoments {
     this.n = 0;
     this.s1.fill(0);
     this.s2.fill(0);
+    this.diffSq = 0;
+    this.pairs = 0;
   }
 
   mean(): Float64Array {

@@ -1,10 +1,18 @@
 /**
  * Online drift/diffusion detection per layer and for the network.
  *
- * A layer drifts while its minibatch gradients agree: the population SNR at the training batch size,
- * SNR(B) = sqrt(B/B_simple), is above 1. Its estimate from a window is the raw SNR with the pure-noise
- * floor removed, SNR_corr² = SNR_raw² − floor² (methods.md §1.4); the boundary 0 dB is where the batch
- * size equals the noise scale (McCandlish et al. 2018), the common rule of thumb of SNR ≈ 1.
+ * A layer drifts while, over the window, its weights moved more along the mean gradient than by minibatch
+ * noise. Over a window of K steps the summed gradients are K·m; their signal part has squared norm
+ * ≈ K²‖Ḡ‖² (Ḡ the gradient averaged along the path) and their noise part K·tr Σ/B (methods.md §10.3). The
+ * level is the ratio of the two, the displacement ratio
+ *   R = K·(‖m‖²/σ² − floor²) = K·‖m‖²/σ² − f,
+ * with σ² = grad_diff_norm², half the mean squared difference of consecutive minibatch gradients (an estimate
+ * of tr Σ/B that leaves out the gradient's slow change along the window; checked against the fixed-weight
+ * measurement on real data) and floor² = f/K (the window's finite-population factor). Unlike a per-minibatch
+ * SNR (≈ B/B_simple, a comparison of the batch with the noise scale), R does not depend on the batch size when
+ * the learning rate scales with it: K·B is the window's examples, and a gradient that turns or oscillates along
+ * the path shrinks Ḡ. Boundary 0 dB: R = 1. Windows without grad_diff_norm (stored by older versions) fall
+ * back to the window's per-minibatch SNR, SNR_raw² − floor², which depends on the batch size; markers say which.
  *
  * Each layer's corrected SNR level in dB goes through a two-sided tabular CUSUM (Page 1954) around the
  * boundary, standardised by a robust running estimate of its window-to-window noise and clipped
@@ -41,9 +49,11 @@ export interface PhaseOptions {
   /** Travel exponents above this corroborate drift, below it diffusion (confidence only). Default 0.75. */
   exponentSplit?: number;
   /**
-   * The network is in diffusion once layers holding at least this share of the trainable parameters
-   * are, and in drift while layers holding more than the rest drift. Default 1: the network diffuses
-   * when every layer does and drifts while any layer drifts (0.5 gives a parameter-weighted majority).
+   * By default the network's phase follows its own level (all weights pooled). Set a share in (0, 1] to
+   * follow layers instead: the network is in diffusion once layers holding at least this share of the
+   * trainable parameters are, and in drift while layers holding more than the rest drift (1: it diffuses when
+   * every layer does; 0.5: a parameter-weighted majority). Windows without a network entry always use the
+   * share rule, with share 1 when unset.
    */
   networkShare?: number;
 }
@@ -58,7 +68,7 @@ export const PHASE_DEFAULTS: Readonly<Required<PhaseOptions>> = Object.freeze({
   minNoiseDb: 0.5,
   floorClampDb: -15,
   exponentSplit: 0.75,
-  networkShare: 1,
+  networkShare: 0,
 });
 
 /** The per-layer numbers the detector reads from a window. */
@@ -67,6 +77,10 @@ export interface PhaseInputLayer {
   batches: number;
   travel_exponent: number | null;
   params: number;
+  /** ‖m‖, the window's mean gradient norm (with grad_diff_norm, the displacement ratio). */
+  grad_mean_norm?: number;
+  /** The minibatch noise from consecutive differences, sqrt(tr Σ/B) estimated within the window. */
+  grad_diff_norm?: number;
 }
 
 /** The window fields the detector reads (a WindowRecord has them all). */
@@ -76,7 +90,19 @@ export interface PhaseInput {
   batches: number;
   snr_floor: number;
   layers: Record<string, PhaseInputLayer>;
+  /** All layers pooled: the network's own level (absent: the network follows the layers). */
+  network?: PhaseInputLayer;
 }
+
+/** The displacement ratio R in dB, clamped below; NaN when the inputs say nothing. */
+export function displacementDb(meanNorm: number, noiseNorm: number, batches: number, floor: number, clampDb: number): number {
+  if (!Number.isFinite(meanNorm) || !(noiseNorm > 0) || !(batches > 0)) return Number.NaN;
+  const r = batches * ((meanNorm * meanNorm) / (noiseNorm * noiseNorm) - floor * floor);
+  return 10 * Math.log10(Math.max(r, 10 ** (clampDb / 10)));
+}
+
+const METHOD_DISPLACEMENT = 'tabular CUSUM (Page 1954) on the displacement ratio K·‖m‖²/σ² − f in dB (σ² from consecutive minibatch differences)';
+const METHOD_WINDOW = 'tabular CUSUM (Page 1954) on the floor-corrected window SNR in dB (no grad_diff_norm in the window: depends on the batch size)';
 
 export interface PhaseChange {
   /** Layer name, or null for the network. */
@@ -130,9 +156,13 @@ export function correctedSnrDb(snr: number, floor: number, clampDb: number, lowe
   return 10 * Math.log10(Math.max(c2, lowest));
 }
 
+const NETWORK = '\u0000network';
+
 export class PhaseDetector {
   private readonly o: Required<PhaseOptions>;
   private readonly tracks = new Map<string, LayerTrack>();
+  /** The network's own track, when windows carry a network entry and no networkShare is set. */
+  private readonly networkTracks = new Map<string, LayerTrack>();
   private network: PhaseName = 'undetermined';
   private networkSince: number | null = null;
   /** Floor-corrected squared SNR below which levels are clamped: 10^(floorClampDb/10). */
@@ -160,9 +190,13 @@ export class PhaseDetector {
     const fOverK = w.snr_floor * w.snr_floor;
     const center = (w.first_step + w.step) / 2;
     const cap = this.cap;
-    for (const name of Object.keys(w.layers)) {
-      const l = w.layers[name]!;
-      let t = this.tracks.get(name);
+    const entries: [string | null, PhaseInputLayer][] = Object.entries(w.layers);
+    const ownNetwork = w.network !== undefined && !(o.networkShare > 0);
+    if (ownNetwork) entries.push([null, w.network!]);
+    for (const [key, l] of entries) {
+      const name = key ?? NETWORK;
+      const tracks = key === null ? this.networkTracks : this.tracks;
+      let t = tracks.get(name);
       if (t === undefined) {
         t = {
           cusum: new Cusum({ k: o.k, h: o.h }),
@@ -177,10 +211,13 @@ export class PhaseDetector {
           changedAt: -1,
           params: l.params,
         };
-        this.tracks.set(name, t);
+        tracks.set(name, t);
       }
       const floor = l.batches > 0 ? Math.sqrt((fOverK * w.batches) / l.batches) : Number.NaN;
-      const level = correctedSnrDb(l.grad_snr, floor, o.floorClampDb, this.lowestSq);
+      const displaced = l.grad_diff_norm !== undefined && l.grad_diff_norm > 0 && l.grad_mean_norm !== undefined;
+      const level = displaced
+        ? displacementDb(l.grad_mean_norm!, l.grad_diff_norm!, l.batches, floor, o.floorClampDb)
+        : correctedSnrDb(l.grad_snr, floor, o.floorClampDb, this.lowestSq);
       if (!Number.isFinite(level)) continue; // a window with no clean minibatches says nothing
       const i = t.n++;
       const slot = i % cap;
@@ -207,13 +244,13 @@ export class PhaseDetector {
       const excess = Math.max(s.upper, s.lower) / o.h;
       const confidence = Math.min(1, 0.55 + 0.15 * Math.min(1, excess - 1) + (corroborated === true ? 0.3 : corroborated === null ? 0.1 : 0));
       changes.push({
-        layer: name,
+        layer: key,
         kind,
         step,
         detected_step: w.step,
         confidence,
         details: {
-          method: 'tabular CUSUM (Page 1954) on the floor-corrected SNR in dB',
+          method: displaced ? METHOD_DISPLACEMENT : METHOD_WINDOW,
           level_db: level,
           noise_db: noise,
           boundary_db: o.boundaryDb,
@@ -225,6 +262,17 @@ export class PhaseDetector {
       t.since = step;
       t.changedAt = i;
       t.cusum.reset();
+    }
+    if (ownNetwork) {
+      const t = this.networkTracks.get(NETWORK);
+      if (t !== undefined) {
+        this.network = t.phase;
+        this.networkSince = t.since;
+      }
+      // The network's change goes last, after the layers'.
+      const i = changes.findIndex((c) => c.layer === null);
+      if (i >= 0) changes.push(...changes.splice(i, 1));
+      return changes;
     }
     const net = this.networkChange(w, changes);
     if (net !== null) changes.push(net);
@@ -289,7 +337,7 @@ export class PhaseDetector {
       weight[t.phase] += t.params;
     }
     if (total === 0) return null;
-    const share = this.o.networkShare;
+    const share = this.o.networkShare > 0 ? this.o.networkShare : 1;
     // Diffusion needs `share` of the parameters; drift needs more than what is left over.
     const enough = (phase: PhaseName, w: number): boolean =>
       phase === 'diffusion' ? w / total >= share - 1e-12 : w / total > 1 - share + 1e-12;

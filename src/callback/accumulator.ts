@@ -9,6 +9,8 @@ export interface RawVariableWindow {
   count: number;
   meanSquaredNorm: number;
   varianceTrace: number;
+  /** Half the mean squared difference of consecutive minibatch gradients (summed over coordinates); NaN without pairs. */
+  diffTrace: number;
   nonfinite: number;
   /** ||w||² at the window's end. */
   weightSq: number;

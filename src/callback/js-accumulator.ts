@@ -152,6 +152,7 @@ export class JsAccumulator implements Accumulator {
         count: m.count,
         meanSquaredNorm: m.meanSquaredNorm(),
         varianceTrace: m.varianceTrace(),
+        diffTrace: m.successiveDiffTrace(),
         nonfinite: this.nonfinite[v.index]!,
         weightSq: sumSq(w),
         travelSq: diffSq(w, this.initial[v.index]!),

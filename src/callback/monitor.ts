@@ -354,7 +354,7 @@ class MonitorSession implements Monitor {
       batch_size: batchSize,
       batches_per_epoch: this.inFit ? this.batchesPerEpoch : null,
       pass_batches: this.passBatches,
-      noise: noise?.sample ?? null,
+      ...(noise === null ? {} : { noise: noise.sample }),
       logs: this.takeLogs(),
     };
     this.passBatches = [];

@@ -13,6 +13,10 @@ interface Slot {
   s1: tf.Tensor | null;
   s2: tf.Tensor | null;
   count: number;
+  /** The previous minibatch gradient (non-finite entries replaced), and Σ‖g_{k+1} − g_k‖² so far. */
+  prev: tf.Tensor | null;
+  diffSq: tf.Scalar | null;
+  pairs: number;
   nonfinite: tf.Scalar | null;
   before: tf.Tensor | null;
   updateSq: tf.Scalar | null;
@@ -39,6 +43,9 @@ export class TensorAccumulator implements Accumulator {
       s1: null,
       s2: null,
       count: 0,
+      prev: null,
+      diffSq: null,
+      pairs: 0,
       nonfinite: null,
       before: null,
       updateSq: null,
@@ -67,10 +74,16 @@ export class TensorAccumulator implements Accumulator {
           slot.ref = replace(null, tf.where(finite, g, tf.zerosLike(g)));
           slot.s1 = replace(null, tf.zerosLike(g));
           slot.s2 = replace(null, tf.zerosLike(g));
+          slot.prev = replace(slot.prev, tf.clone(slot.ref));
         } else {
-          const d = tf.sub(tf.where(finite, g, slot.ref), slot.ref);
+          const clean = tf.where(finite, g, slot.ref);
+          const d = tf.sub(clean, slot.ref);
           slot.s1 = replace(slot.s1, tf.add(slot.s1!, d));
           slot.s2 = replace(slot.s2, tf.add(slot.s2!, tf.square(d)));
+          const q = tf.sum(tf.squaredDifference(clean, slot.prev!)) as tf.Scalar;
+          slot.diffSq = replace(slot.diffSq, slot.diffSq === null ? q : (tf.add(slot.diffSq, q) as tf.Scalar));
+          slot.pairs++;
+          slot.prev = replace(slot.prev, clean);
         }
         slot.count++;
       });
@@ -101,7 +114,7 @@ export class TensorAccumulator implements Accumulator {
   }
 
   async close(): Promise<RawVariableWindow[]> {
-    const FIELDS = 7;
+    const FIELDS = 8;
     const nanScalar = (): tf.Scalar => tf.scalar(Number.NaN);
     const packed = tf.tidy(() => {
       const parts: tf.Tensor[] = [];
@@ -126,6 +139,7 @@ export class TensorAccumulator implements Accumulator {
           tf.sum(tf.squaredDifference(v.variable, this.initial[v.index]!)),
           s.updateSq ?? nanScalar(),
           s.updateWeightSq ?? nanScalar(),
+          s.diffSq !== null && s.pairs > 0 ? tf.div(s.diffSq, 2 * s.pairs) : nanScalar(),
         );
       }
       return tf.stack(parts);
@@ -146,17 +160,19 @@ export class TensorAccumulator implements Accumulator {
         travelSq: values[o + 4]!,
         updateSq: Number.isNaN(upd) ? null : upd,
         updateWeightSq: Number.isNaN(upd) ? null : values[o + 6]!,
+        diffTrace: values[o + 7]!,
       };
     });
   }
 
   private reset(): void {
     for (const s of this.slots) {
-      for (const key of ['ref', 's1', 's2', 'nonfinite', 'updateSq', 'updateWeightSq'] as const) {
+      for (const key of ['ref', 's1', 's2', 'prev', 'diffSq', 'nonfinite', 'updateSq', 'updateWeightSq'] as const) {
         s[key]?.dispose();
         s[key] = null;
       }
       s.count = 0;
+      s.pairs = 0;
     }
     this.steps = 0;
   }

@@ -20,6 +20,7 @@ export interface WindowContext {
 
 interface Pooled {
   moments: GradientMoments;
+  diffTrace: number;
   weightSq: number;
   travelSq: number;
   updateSq: number | null;
@@ -38,7 +39,9 @@ function pool(parts: { raw: RawVariableWindow; params: number }[]): Pooled {
   let updateWeightSq: number | null = 0;
   let nonfinite = 0;
   let params = 0;
+  let diffTrace = 0;
   for (const { raw, params: p } of parts) {
+    diffTrace += raw.diffTrace;
     weightSq += raw.weightSq;
     travelSq += raw.travelSq;
     nonfinite += raw.nonfinite;
@@ -51,17 +54,28 @@ function pool(parts: { raw: RawVariableWindow; params: number }[]): Pooled {
       updateWeightSq += raw.updateWeightSq;
     }
   }
-  return { moments, weightSq, travelSq, updateSq, updateWeightSq, nonfinite, params };
+  return { moments, diffTrace, weightSq, travelSq, updateSq, updateWeightSq, nonfinite, params };
 }
 
 /** The fixed-weight noise values of the variables at these indices, pooled (their Grams add). */
-function noiseOf(indices: readonly number[], ctx: WindowContext): Pick<VariableStats, 'noise_scale' | 'noise_scale_rse' | 'batch_snr_db'> {
+function noiseOf(
+  indices: readonly number[],
+  ctx: WindowContext,
+): Pick<VariableStats, 'noise_scale' | 'noise_scale_rse' | 'batch_snr_db' | 'grad_noise_norm'> {
   const n = ctx.noise;
   if (n === null) return { noise_scale: null };
   const k = n.design.groups;
   const est = noiseFromGram(addGrams(indices.map((i) => n.grams[i]!), k), n.design, ctx.maxError);
-  const snr = ctx.batchSize === null ? null : batchSnrDb(ctx.batchSize, est.noise_scale);
-  return { noise_scale: est.noise_scale, noise_scale_rse: est.noise_scale_rse, ...(snr === null ? {} : { batch_snr_db: snr }) };
+  const b = ctx.batchSize;
+  const snr = b === null ? null : batchSnrDb(b, est.noise_scale);
+  // tr Σ is well estimated even where |G|² is not resolved: the phase detector's noise yardstick.
+  const noiseNorm = b !== null && b > 0 && est.trace > 0 ? Math.sqrt(est.trace / b) : null;
+  return {
+    noise_scale: est.noise_scale,
+    noise_scale_rse: est.noise_scale_rse,
+    ...(snr === null ? {} : { batch_snr_db: snr }),
+    ...(noiseNorm === null ? {} : { grad_noise_norm: noiseNorm }),
+  };
 }
 
 function toStats(p: Pooled, ctx: WindowContext, indices: readonly number[]): VariableStats {
@@ -72,6 +86,7 @@ function toStats(p: Pooled, ctx: WindowContext, indices: readonly number[]): Var
     grad_std_norm: g.grad_std_norm,
     grad_snr: g.grad_snr,
     grad_snr_db: g.grad_snr_db,
+    grad_diff_norm: Math.sqrt(p.diffTrace),
     ...noiseOf(indices, ctx),
     weight_norm: Math.sqrt(p.weightSq),
     weight_travel: Math.sqrt(p.travelSq),

@@ -14,6 +14,13 @@ export interface VariableStats {
   /** 20·log10(grad_snr). */
   grad_snr_db: number;
   /**
+   * sqrt(Σ‖g_{k+1} − g_k‖² / (2·pairs)) over consecutive minibatch gradients of the window: the minibatch
+   * noise sqrt(tr Σ/B), plus the gradient's change in one step, without the window's slow drift (the mean
+   * square successive difference of von Neumann et al. 1941). The phase detector's noise yardstick. NaN when
+   * the window had no consecutive pair.
+   */
+  grad_diff_norm?: number;
+  /**
    * Simple gradient noise scale tr Σ/|G|² (McCandlish et al. 2018) at the weights of the window's end, from
    * a noise measurement (gradients of disjoint row groups at fixed weights; see the window's `noise`). Null
    * in windows without a measurement and where |G|² was not resolved from noise.
@@ -26,6 +33,12 @@ export interface VariableStats {
    * 10·log10(B/noise_scale) dB; present where noise_scale is. 0 dB where the batch equals the noise scale.
    */
   batch_snr_db?: number;
+  /**
+   * sqrt(tr Σ / B): the spread of one training minibatch's gradient around G at fixed weights, from the
+   * same measurement (present where tr Σ was estimated). Compare with `grad_std_norm`, the spread over the
+   * window at moving weights, which also holds the gradient's change along the path.
+   */
+  grad_noise_norm?: number;
   /** ||w|| at the window's end. */
   weight_norm: number;
   /** ||w − w₀||, the distance from the weights at monitor() time. */
@@ -123,8 +136,8 @@ export interface WindowRecord {
   time: number;
   layers: Record<string, LayerStats>;
   network: LayerStats;
-  /** The noise measurement at the window's end; absent or null when none was due. */
-  noise?: NoiseSample | null;
+  /** The noise measurement at the window's end; absent when none was due. */
+  noise?: NoiseSample;
   /** Means over the window of the numbers fit logged per batch, and val_* of an epoch that ended in it. */
   logs: Record<string, number>;
 }

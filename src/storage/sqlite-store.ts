@@ -1057,7 +1057,7 @@ export class SqliteStore implements Store {
           pass_batches: JSON.parse(r.pass_batches) as number[],
           snr_floor: num(r.snr_floor),
           time: r.time,
-          noise: r.noise === null ? null : (fromJson(r.noise) as WindowRecord['noise']),
+          ...(r.noise === null ? {} : { noise: fromJson<NonNullable<WindowRecord['noise']>>(r.noise) }),
           layers: {},
           network: {} as LayerStats,
           logs: {},

@@ -307,3 +307,36 @@ describe('ShiftedMoments.pushBlock', () => {
     expect(m.varianceTrace() / ref.vt).toBeCloseTo(1, 9);
   });
 });
+
+describe('ShiftedMoments successive differences', () => {
+  it('give half the mean squared consecutive difference within blocks (von Neumann et al. 1941, from memory)', () => {
+    // Two blocks of 4 one-coordinate values: pairs (1,3),(3,2),(2,6) and (5,5),(5,7),(7,4):
+    // squared differences 4, 1, 16, 0, 4, 9 → sum 34 over 6 pairs → 34/12 [computed by hand].
+    const m = new ShiftedMoments(1);
+    expect(m.pushBlock([[1], [3], [2], [6]])).toBe(true);
+    expect(m.pushBlock([[5], [5], [7], [4]])).toBe(true);
+    expect(m.diffPairs).toBe(6);
+    expect(m.successiveDiffTrace()).toBeCloseTo(34 / 12, 12);
+    // A block taken back removes its pairs; a short block (3 values) adds 2 pairs.
+    m.unpushBlock([[5], [5], [7], [4]]);
+    expect(m.successiveDiffTrace()).toBeCloseTo(21 / 6, 12);
+    expect(m.pushBlock([[0], [2], [2]])).toBe(true);
+    expect(m.successiveDiffTrace()).toBeCloseTo((21 + 4) / 10, 12);
+    m.reset();
+    expect(m.successiveDiffTrace()).toBeNaN();
+  });
+
+  it('estimate the variance trace of independent draws whose mean drifts, where the plain variance does not', () => {
+    // 400 draws of 3 coordinates, unit variance each (trace 3), around a mean that moves by 0.05 a draw:
+    // the sample variance holds the drift (≈ 0.05²·400²/12 per coordinate on top), the successive
+    // differences only 0.05²/2 of it.
+    const rng = mulberry32(8);
+    const m = new ShiftedMoments(3);
+    for (let b = 0; b < 100; b++) {
+      m.pushBlock(Array.from({ length: 4 }, (_, k) => [0, 1, 2].map(() => 0.05 * (4 * b + k) + gaussian(rng))));
+    }
+    expect(Math.abs(m.successiveDiffTrace() / 3 - 1)).toBeLessThan(0.12);
+    expect(m.varianceTrace() / 3).toBeGreaterThan(30); // 1 + (0.05·400)²/12 = 34.3 per coordinate
+  });
+});
+

