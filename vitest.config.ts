@@ -8,6 +8,7 @@ export default defineConfig({
     testTimeout: 60_000,
     // Monitors left on the default store write to an in-memory SQLite database, not into the checkout.
     env: { TIDEMARK_DB: ':memory:' },
-    hookTimeout: 60_000,
+    // Real-data runs train in beforeAll; on a loaded 2-core machine that can take minutes.
+    hookTimeout: 240_000,
   },
 });

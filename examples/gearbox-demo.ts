@@ -117,22 +117,29 @@ function compact(value: number | null): string {
   return abs >= 100 ? value.toFixed(0) : value.toPrecision(3);
 }
 
+/** The level the phase detector follows: the displacement ratio of the window, dB (README, Phases). */
+function levelDb(w: WindowRecord, s: LayerStats): number {
+  const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
+  return analysis.displacementDb(s.grad_mean_norm, s.grad_diff_norm ?? Number.NaN, s.batches, floor, analysis.PHASE_DEFAULTS.floorClampDb);
+}
+
 function floorDb(w: WindowRecord): number {
   return w.snr_floor > 0 ? 20 * Math.log10(w.snr_floor) : -Infinity;
 }
 
 const COLUMNS = { layer: 14, snr: 8, noise: 12, travel: 9, exponent: 9 };
 
-function row(name: string, s: LayerStats, floor: number, phase: string): string {
+function row(w: WindowRecord, name: string, s: LayerStats, floor: number, phase: string): string {
   const nearFloor = Number.isFinite(floor) && s.grad_snr_db <= floor + NEAR_FLOOR_DB;
   return (
     `   ${name.padEnd(COLUMNS.layer)}` +
+    signedDb(levelDb(w, s)).padStart(COLUMNS.snr) +
     signedDb(s.grad_snr_db).padStart(COLUMNS.snr) +
     compact(s.noise_scale).padStart(COLUMNS.noise) +
     s.weight_travel.toFixed(3).padStart(COLUMNS.travel) +
     (s.travel_exponent === null ? '-' : s.travel_exponent.toFixed(2)).padStart(COLUMNS.exponent) +
     `  ${phase.padEnd(12)}` +
-    (nearFloor ? ' near floor' : '')
+    (nearFloor ? ' SNR near floor' : '')
   );
 }
 
@@ -173,23 +180,18 @@ function windowTable(w: WindowRecord, epochs: number, phases: Record<string, str
   const lines = [
     `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  K ${w.batches}${m}  ${describeLogs(w.logs)}`,
     `   ${floorText}`,
-    `   ${'layer'.padEnd(COLUMNS.layer)}${'SNR dB'.padStart(COLUMNS.snr)}${'noise scale'.padStart(COLUMNS.noise)}` +
+    `   ${'layer'.padEnd(COLUMNS.layer)}${'level dB'.padStart(COLUMNS.snr)}${'SNR dB'.padStart(COLUMNS.snr)}${'noise scale'.padStart(COLUMNS.noise)}` +
       `${'travel'.padStart(COLUMNS.travel)}${'exponent'.padStart(COLUMNS.exponent)}  phase`,
   ];
-  for (const [name, stats] of Object.entries(w.layers)) lines.push(row(name, stats, floor, phases[name] ?? 'undetermined'));
-  lines.push(row('(network)', w.network, floor, network));
+  for (const [name, stats] of Object.entries(w.layers)) lines.push(row(w, name, stats, floor, phases[name] ?? 'undetermined'));
+  lines.push(row(w, '(network)', w.network, floor, network));
   return lines.join('\n');
 }
 
 /** One line per window when the full tables are off: the page carries every layer's numbers. */
 function windowLine(w: WindowRecord, epochs: number, network: string): string {
-  const floor = floorDb(w);
-  const nearFloor = Number.isFinite(floor) && w.network.grad_snr_db <= floor + NEAR_FLOOR_DB;
   const epoch = w.epoch === null ? '' : `  epoch ${w.epoch + 1}/${epochs}`;
-  return (
-    `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  ${describeLogs(w.logs)}` +
-    `  network ${signedDb(w.network.grad_snr_db)} dB ${network}${nearFloor ? ' (near floor)' : ''}`
-  );
+  return `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  ${describeLogs(w.logs)}  network level ${signedDb(levelDb(w, w.network))} dB ${network}`;
 }
 
 // ---- probe block -------------------------------------------------------------------------------------
@@ -256,23 +258,24 @@ function probeBlock(w: WindowRecord): string[] {
 /** The columns of the full tables (--tables). */
 const TABLE_LEGEND = [
   'Columns, per layer and per window of K minibatches:',
-  '  SNR dB       mean gradient against its minibatch-to-minibatch spread; above 0 the minibatches',
-  '               agree (drift), below 0 they mostly cancel (diffusion)',
+  '  level dB     how far the weights moved along the mean gradient against how far minibatch noise',
+  '               moved them over the window; above 0 drift, below 0 diffusion (what the phase follows)',
+  '  SNR dB       the classic ratio of the mean gradient to its minibatch-to-minibatch spread; it',
+  '               compares the batch with the noise scale, so it depends on the batch size',
   '  noise scale  batch size at which gradient noise would equal the signal, measured at the window\'s',
   '               end with the weights held still; "-" where no measurement ran or it was unresolved',
   '  travel       distance of the weights from where they started',
   '  exponent     local slope of log travel against log step: near 1 while drifting, 1/2 for a',
   '               random walk, lower when the wandering is confined',
   '  phase        drift or diffusion as the detector currently judges it (a statistical estimate)',
-  '  near floor   within 3 dB of what pure noise would read for this window',
+  '  SNR near floor  the SNR is within 3 dB of what pure noise would read for this window',
 ];
 /** The one-line windows (default). */
 const LINE_LEGEND = [
-  'One line per window of minibatches: the logs at its end, then the whole network\'s gradient SNR',
-  '(mean gradient against its minibatch-to-minibatch spread; above 0 dB the minibatches agree, drift,',
-  'below 0 dB they mostly cancel, diffusion) and its phase as the detector currently judges it (a',
-  'statistical estimate); "near floor" is within 3 dB of what pure noise would read. The page shows',
-  'every layer; --tables prints every layer here too.',
+  'One line per window of minibatches: the logs at its end, then the whole network\'s phase level (how',
+  'far the weights moved along the mean gradient against how far minibatch noise moved them over the',
+  'window; above 0 dB drift, below 0 dB diffusion) and its phase as the detector currently judges it (a',
+  'statistical estimate). The page shows every layer; --tables prints every layer here too.',
 ];
 const PROBE_LEGEND = [
   `In the windows where tidemark ran its activation probe, a probe block follows: ${PROBE_ROWS} held-out`,
@@ -452,7 +455,7 @@ mon.onWindow((w) => {
   // The full tables read better with a blank line between windows; the one-liners without.
   say(args.tables ? `${lines.join('\n')}\n` : lines.join('\n'));
   for (const [name, s] of [...Object.entries(w.layers), ['(network)', w.network] as const]) {
-    if (s.grad_snr_db >= 0) belowZeroSince.set(name, null);
+    if (levelDb(w, s) >= 0) belowZeroSince.set(name, null);
     else if (!belowZeroSince.get(name)) belowZeroSince.set(name, w);
   }
 });
@@ -522,7 +525,7 @@ const summary = [
   `  held out    loss ${last('val_loss')}  acc ${last('val_acc')} against the recorded labels, ` +
     `${heldOut.truth.toFixed(3)} against the true conditions`,
   '',
-  'Below 0 dB in every window since:',
+  'Phase level below 0 dB (diffusing) in every window since:',
 ];
 for (const name of [...model.layers.map((l) => l.name), '(network)']) {
   const w = belowZeroSince.get(name);

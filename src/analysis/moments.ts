@@ -79,7 +79,11 @@ export class ShiftedMoments {
   private n = 0;
   private readonly ref: Float64Array;
   private readonly s1: Float64Array;
-  private readonly s2: Float64Array;
+  /**
+   * Σ over coordinates and vectors of the squared deviations: one number, not one per coordinate, since only
+   * the trace of the variance is ever read; this saves a read and a write per coordinate in the hot loop.
+   */
+  private sq = 0;
   /** Σ‖v_{k+1} − v_k‖² over consecutive vectors pushed in the same block, and how many such pairs. */
   private diffSq = 0;
   private pairs = 0;
@@ -91,7 +95,6 @@ export class ShiftedMoments {
     this.size = size;
     this.ref = new Float64Array(size);
     this.s1 = new Float64Array(size);
-    this.s2 = new Float64Array(size);
   }
 
   get count(): number {
@@ -105,15 +108,16 @@ export class ShiftedMoments {
     if (this.n === 0) {
       for (let j = 0; j < len; j++) ref[j] = values[j]!;
       this.n = 1;
-      return; // deviations of the reference from itself are zero: s1, s2 stay 0
+      return; // deviations of the reference from itself are zero: s1, sq stay 0
     }
     const s1 = this.s1;
-    const s2 = this.s2;
+    let y = 0;
     for (let j = 0; j < len; j++) {
       const d = values[j]! - ref[j]!;
       s1[j] = s1[j]! + d;
-      s2[j] = s2[j]! + d * d;
+      y += d * d;
     }
+    this.sq += y;
     this.n += 1;
   }
 
@@ -138,7 +142,7 @@ export class ShiftedMoments {
     if (stop < len) {
       if (fresh) {
         this.s1.fill(0);
-        this.s2.fill(0);
+        this.sq = 0;
       } else this.addBlock(block, -1, stop);
       return false;
     }
@@ -174,19 +178,20 @@ export class ShiftedMoments {
     this.pairs -= m - 1;
     if (this.n === 0) {
       this.s1.fill(0);
-      this.s2.fill(0);
+      this.sq = 0;
       this.diffSq = 0;
       this.pairs = 0;
     } else this.addBlock(block, -1, this.size);
   }
 
   /**
-   * s1 += sign·Σ d, s2 += sign·Σ d² over coordinates [0, end); stops before the first coordinate
-   * whose contribution is not finite and returns its index (`end` when all were finite).
+   * s1 += sign·Σ d over coordinates [0, end) and sq += sign·Σ d² over the same; stops before the first
+   * coordinate whose contribution is not finite and returns its index (`end` when all were finite).
    */
   private addBlock(block: readonly ArrayLike<number>[], sign: 1 | -1, end: number): number {
-    const { ref, s1, s2 } = this;
+    const { ref, s1 } = this;
     let q = 0;
+    let y = 0;
     if (block.length === 4) {
       const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
       for (let j = 0; j < end; j++) {
@@ -197,14 +202,18 @@ export class ShiftedMoments {
         const d4 = e[j]! - r;
         const x = d1 + d2 + d3 + d4;
         // x − x is 0 for finite x and NaN for NaN or ±Infinity; any bad d makes x bad.
-        if (x - x !== 0) return j;
+        if (x - x !== 0) {
+          this.sq += sign * y;
+          return j;
+        }
         s1[j] = s1[j]! + sign * x;
-        s2[j] = s2[j]! + sign * (d1 * d1 + d2 * d2 + d3 * d3 + d4 * d4);
+        y += d1 * d1 + d2 * d2 + d3 * d3 + d4 * d4;
         const u = d2 - d1;
         const v = d3 - d2;
         const w = d4 - d3;
         q += u * u + v * v + w * w;
       }
+      this.sq += sign * y;
       this.blockDiffSq = q;
       return end;
     }
@@ -212,19 +221,23 @@ export class ShiftedMoments {
     for (let j = 0; j < end; j++) {
       const r = ref[j]!;
       let x = 0;
-      let y = 0;
+      let yj = 0;
       let prev = 0;
       for (let k = 0; k < m; k++) {
         const d = block[k]![j]! - r;
         x += d;
-        y += d * d;
+        yj += d * d;
         if (k > 0) q += (d - prev) * (d - prev);
         prev = d;
       }
-      if (x - x !== 0) return j;
+      if (x - x !== 0) {
+        this.sq += sign * y;
+        return j;
+      }
       s1[j] = s1[j]! + sign * x;
-      s2[j] = s2[j]! + sign * y;
+      y += yj;
     }
+    this.sq += sign * y;
     this.blockDiffSq = q;
     return end;
   }
@@ -232,7 +245,7 @@ export class ShiftedMoments {
   reset(): void {
     this.n = 0;
     this.s1.fill(0);
-    this.s2.fill(0);
+    this.sq = 0;
     this.diffSq = 0;
     this.pairs = 0;
   }
@@ -260,14 +273,15 @@ export class ShiftedMoments {
   varianceTrace(): number {
     const n = this.n;
     if (n < 2) return Number.NaN;
-    let acc = 0;
+    let between = 0;
     for (let j = 0; j < this.size; j++) {
       const a = this.s1[j]!;
-      // Clamp tiny negative round-off; the shifted form keeps it at the level of float64 epsilon.
-      const m2 = this.s2[j]! - (a * a) / n;
-      if (m2 > 0) acc += m2;
-      else if (Number.isNaN(m2)) return Number.NaN;
+      between += a * a;
     }
-    return acc / (n - 1);
+    // Σ_j (s2_j − s1_j²/n): shifted sums keep both terms at the spread's scale, so round-off stays at the
+    // level of float64 epsilon; clamp what is left of it.
+    const m2 = this.sq - between / n;
+    if (Number.isNaN(m2)) return Number.NaN;
+    return Math.max(0, m2) / (n - 1);
   }
 }

@@ -312,16 +312,16 @@ export function buildProgram(io: Io): Command {
     .command('analyze')
     .description('recompute phases, markers and advice from the stored windows with other settings')
     .argument('<run>', 'run id, unique id prefix, or name')
-    .option('--boundary-db <dB>', 'drift/diffusion boundary of the floor-corrected SNR (default 0)', num('--boundary-db'))
+    .option('--boundary-db <dB>', 'drift/diffusion boundary of the displacement ratio (default 0)', num('--boundary-db'))
     .option('--k <sigma>', 'CUSUM allowance in noise units (default 0.5)', num('--k'))
     .option('--h <sigma>', 'CUSUM decision interval in noise units (default 4)', num('--h'))
     .option('--clip <sigma>', 'clip standardised inputs at ±clip (default 2.5)', num('--clip'))
-    .option('--noise-db <dB>', 'assumed SNR noise before an estimate exists (default 1.5)', num('--noise-db'))
-    .option('--network-share <share>', 'share of parameters in diffusion for the network to diffuse (default 1)', num('--network-share'))
-    .option('--patience <windows>', 'windows without improvement before may-stop (default 10)', num('--patience'))
-    .option('--min-improvement <relative>', 'relative improvement that counts (default 0.001)', num('--min-improvement'))
+    .option('--noise-db <dB>', 'assumed noise of the phase level before an estimate exists (default 1.5)', num('--noise-db'))
+    .option('--network-share <share>', 'follow the layers instead of the network\'s own level: share of parameters in diffusion for the network to diffuse (default: own level)', num('--network-share'))
+    .option('--patience <values>', 'values of the watched quantity in the trend test (default 10; stop uses twice)', num('--patience'))
+    .option('--min-gain <share>', 'smallest gain from doubling the training worth having, as a share of what is left (default 0.02)', num('--min-gain'))
     .option('--diffusion-ratio <ratio>', 'diffusion length, in drift lengths, before may-stop (default 1)', num('--diffusion-ratio'))
-    .option('--watch <metric>', 'logged quantity the advice watches (default val_loss, else loss)')
+    .option('--watch <metric>', 'logged quantity the advice watches (default the validation accuracy, else val_loss, else loss)')
     .option('--write', 'store the offline markers next to the online ones (marked as offline)')
     .option('--json', 'machine-readable output')
     .action((ref: string, o: Record<string, number | string | boolean | undefined>) => {
@@ -341,7 +341,7 @@ export function buildProgram(io: Io): Command {
         (
           [
             ['patience', o.patience],
-            ['minRelativeImprovement', o.minImprovement],
+            ['minGain', o.minGain],
             ['diffusionRatio', o.diffusionRatio],
             ['watch', o.watch],
           ] as const

@@ -4,6 +4,7 @@
  * fragment and the stop advice sentence.
  */
 import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
+import { displacementDb, PHASE_DEFAULTS } from '../analysis/phase-detector.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 
@@ -145,6 +146,30 @@ export function snrColumns(layerNames: readonly string[], windows: readonly Wind
     steps: sorted.map((w) => w.step),
     series: labels.map((l) => sorted.map((w) => finite(l === NETWORK_LABEL ? w.network.grad_snr_db : w.layers[l]?.grad_snr_db))),
     floor: sorted.map((w) => finite(20 * Math.log10(w.snr_floor))),
+  };
+}
+
+export interface LevelColumns {
+  labels: string[];
+  steps: number[];
+  /** The phase detector's level per label (the displacement ratio, dB); null where a window cannot give one. */
+  series: (number | null)[][];
+}
+
+/** The level the phase detector follows, per layer and for the network, as analysis/phase-detector.ts computes it. */
+export function levelColumns(layerNames: readonly string[], windows: readonly WindowRecord[]): LevelColumns {
+  const seen = new Set<number>();
+  const sorted = [...windows].filter((w) => w.step > 0 && !seen.has(w.step) && seen.add(w.step)).sort((a, b) => a.step - b.step);
+  const labels = [...layerNames, NETWORK_LABEL];
+  const level = (w: WindowRecord, s: LayerStats | undefined): number | null => {
+    if (s === undefined || s.grad_diff_norm === undefined) return null;
+    const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
+    return finite(displacementDb(s.grad_mean_norm, s.grad_diff_norm, s.batches, floor, PHASE_DEFAULTS.floorClampDb));
+  };
+  return {
+    labels,
+    steps: sorted.map((w) => w.step),
+    series: labels.map((l) => sorted.map((w) => level(w, l === NETWORK_LABEL ? w.network : w.layers[l]))),
   };
 }
 

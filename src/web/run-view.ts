@@ -15,6 +15,7 @@ import {
   infoTrajectories,
   latestAdvice,
   lossColumns,
+  levelColumns,
   noiseColumns,
   noiseSentence,
   phaseRows,
@@ -42,12 +43,21 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const facts = el('p', { class: 'facts', 'data-testid': 'run-facts' }, 'Loading…');
   const advice = el('p', { class: 'advice', 'data-testid': 'advice' });
   const caution = el('p', { class: 'caution', 'data-testid': 'caution' }, CAUTION);
+  const levelBox = el('div', { class: 'chart', 'data-testid': 'level-chart' });
+  const levelNote = el(
+    'p',
+    { class: 'note' },
+    'What the phases follow: per layer and window, how far the weights moved along the mean gradient against how far minibatch noise moved them, ' +
+      'K·|mean gradient|² / minibatch noise² (the displacement ratio), in dB against step on a log axis. Above 0 dB the layer drifts, below it diffuses. ' +
+      'The same at any batch size when the learning rate scales with it. An estimate from the window\'s minibatches.',
+  );
   const chartBox = el('div', { class: 'chart', 'data-testid': 'snr-chart' });
   const chartNote = el(
     'p',
     { class: 'note' },
-    'Gradient signal-to-noise per layer, in dB (20·log10 of |mean gradient| / gradient spread over a window), against step on a log axis. ' +
-      'Above 0 dB the mean gradient outweighs its noise; the dashed grey line is where pure noise would read.',
+    'The classic statistic: |mean gradient| / gradient spread over the window\'s minibatches, 20·log10, per layer. The gradients come from moving weights, ' +
+      'so the spread also holds the gradient\'s change along the path, and the ratio compares the batch with the noise scale: it depends on the batch size. ' +
+      'The dashed grey line is where pure noise would read.',
   );
   const markerBody = el('tbody');
   const markersNote = el('p', { class: 'note' });
@@ -109,7 +119,10 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     phaseLegend(),
     stripBox,
     stripNote,
-    el('h3', {}, 'Gradient SNR (dB) per layer'),
+    el('h3', {}, 'Phase level per layer (dB)'),
+    levelBox,
+    levelNote,
+    el('h3', {}, 'Window gradient SNR (dB) per layer'),
     chartBox,
     chartNote,
     el('h3', {}, 'Weight travel per layer'),
@@ -129,7 +142,8 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   );
   root.append(main);
 
-  const snr = new LineChart(chartBox, 360, zoom);
+  const level = new LineChart(levelBox, 360, zoom);
+  const snr = new LineChart(chartBox, 300, zoom);
   const travel = new LineChart(travelBox, 340, zoom);
   const loss = new LineChart(lossBox, 260, zoom);
   const noise = new LineChart(noiseBox, 260, zoom);
@@ -176,7 +190,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     );
   };
 
-  const drawStrip = (u: uPlot | null = snr.plot): void => {
+  const drawStrip = (u: uPlot | null = level.plot): void => {
     if (feed?.info === null || feed === null) return;
     if (u === null || windows().length === 0) {
       stripBox.replaceChildren(el('p', { class: 'note' }, 'No windows yet.'));
@@ -187,12 +201,18 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   };
 
   const drawSnr = (): void => {
-    const cols = snrColumns(layerNames(), windows());
-    snr.update([cols.steps, ...cols.series, cols.floor], () => ({
-      ...stepChart('gradient SNR (dB)'),
-      series: [{ label: 'step' }, ...cols.labels.map((l, i) => lineSeries(l, i)), { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 }],
+    const lv = levelColumns(layerNames(), windows());
+    level.update([lv.steps, ...lv.series], () => ({
+      ...stepChart('phase level (dB)'),
+      series: [{ label: 'step' }, ...lv.labels.map((l, i) => lineSeries(l, i))],
       // The phase strip follows this chart's step axis, so it is redrawn with it.
       hooks: { draw: [(u) => drawStrip(u), zeroDbLine] },
+    }));
+    const cols = snrColumns(layerNames(), windows());
+    snr.update([cols.steps, ...cols.series, cols.floor], () => ({
+      ...stepChart('window gradient SNR (dB)'),
+      series: [{ label: 'step' }, ...cols.labels.map((l, i) => lineSeries(l, i)), { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 }],
+      hooks: { draw: [zeroDbLine] },
     }));
   };
 
@@ -252,7 +272,14 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       ...stepChart('examples (log scale)', 60),
       series: [
         { label: 'step' },
-        { label: 'B_noise (network, estimate)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
+        // Measured now and then at fixed weights: dots joined across the windows between measurements.
+        {
+          label: 'B_simple (network, measured at fixed weights)',
+          stroke: NETWORK_STYLE.stroke,
+          width: 2,
+          spanGaps: true,
+          points: { show: true, size: 7, fill: NETWORK_STYLE.stroke },
+        },
         { label: 'batch size', stroke: REFERENCE_GREY, dash: [6, 4], width: 1.5 },
       ],
     }));
@@ -302,7 +329,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   });
 
   const onResize = (): void => {
-    for (const c of [snr, travel, loss, noise]) c.resize();
+    for (const c of [level, snr, travel, loss, noise]) c.resize();
     drawInfo();
   };
   window.addEventListener('resize', onResize);
@@ -311,7 +338,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       if (frame !== null) cancelAnimationFrame(frame);
       feed?.dispose();
       window.removeEventListener('resize', onResize);
-      for (const c of [snr, travel, loss, noise]) c.destroy();
+      for (const c of [level, snr, travel, loss, noise]) c.destroy();
     },
   };
 }

@@ -49,7 +49,7 @@ describe('window statistics on published check values', () => {
     // The row's noise scale (6.9189189189) belongs to gradients at fixed weights: it is checked on the
     // measurement's estimator (test/analysis/fixed-weight-noise.test.ts); a window never reports one.
     expect(s.noise_scale).toBeNull();
-    expect(w.noise).toBeNull();
+    expect(w.noise).toBeUndefined();
     expect(w.snr_floor).toBeCloseTo(0.5, 12); // 1/sqrt(K) with K = 4
     expect(s.update_ratio).toBe(0); // learning rate 0
   });

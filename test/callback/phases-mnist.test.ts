@@ -99,7 +99,7 @@ function describeRun(name: string, r: Run): string {
   return `${name}: ${marks.join('; ')}`;
 }
 
-describe('phases on MNIST digits', () => {
+describe('phases on MNIST digits', { timeout: 240_000 }, () => {
   let small: Run;
   let large: Run;
   beforeAll(async () => {

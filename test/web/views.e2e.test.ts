@@ -169,16 +169,17 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     // The range is in the URL; every chart shows it.
     expect(new URL(page.url()).hash).toBe(`#/run/${long.id}?steps=800-1600`);
     const shown = (): Promise<(string | null)[]> => page.$$eval('[data-testid$="-chart"][data-steps]', (boxes) => boxes.map((b) => b.getAttribute('data-steps')));
-    await page.waitForFunction(() => document.querySelectorAll('[data-testid$="-chart"][data-steps="800-1600"]').length === 4);
-    expect(await shown()).toEqual(['800-1600', '800-1600', '800-1600', '800-1600']);
+    // Phase level, window SNR, travel, loss and noise scale.
+    await page.waitForFunction(() => document.querySelectorAll('[data-testid$="-chart"][data-steps="800-1600"]').length === 5);
+    expect(await shown()).toEqual(['800-1600', '800-1600', '800-1600', '800-1600', '800-1600']);
 
     // "Whole run" goes back and takes the range out of the URL; the detail stays merged in.
     await page.click('[data-testid="range-whole"]');
     expect(await page.inputValue('[data-testid="range-from"]')).toBe('');
     expect(new URL(page.url()).hash).toBe(`#/run/${long.id}`);
 
-    // A drag across the SNR chart zooms every chart: the form and the URL take the dragged range.
-    const over = await page.locator('[data-testid="snr-chart"] .u-over').boundingBox();
+    // A drag across the phase-level chart (the first) zooms every chart: the form and the URL take the dragged range.
+    const over = await page.locator('[data-testid="level-chart"] .u-over').boundingBox();
     if (over === null) throw new Error('no plotting area');
     await page.mouse.move(over.x + over.width * 0.4, over.y + over.height / 2);
     await page.mouse.down();
@@ -191,11 +192,11 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     expect(to).toBeGreaterThan(from);
     expect(to).toBeLessThan(LONG * 8);
     await page.waitForFunction((r) => Array.from(document.querySelectorAll('[data-testid$="-chart"][data-steps]')).every((b) => b.getAttribute('data-steps') === r), `${from}-${to}`);
-    expect(await shown()).toEqual(Array(4).fill(`${from}-${to}`));
+    expect(await shown()).toEqual(Array(5).fill(`${from}-${to}`));
     // A double click goes back to the whole run.
     await page.mouse.dblclick(over.x + over.width / 2, over.y + over.height / 2);
     await page.waitForFunction(() => !location.hash.includes('steps='));
-    expect(await shown()).toEqual(Array(4).fill(`8-${LONG * 8}`));
+    expect(await shown()).toEqual(Array(5).fill(`8-${LONG * 8}`));
     expect(await page.inputValue('[data-testid="range-from"]')).toBe('');
 
     // A link with a range opens zoomed, and fetches that range's detail by itself.
