@@ -167,8 +167,14 @@ describe('HTTP API', () => {
     const { run, ws } = seed(store);
     // A probe window, then one without probe values: the probe gauges show the probe window's values.
     const [probed, plain] = fakeWindows(run, 14).slice(12);
-    const withProbe = { ...probed!, layers: { ...probed!.layers, dense_Dense2: { ...probed!.layers.dense_Dense2!, mi_input: 4.25, mi_label: 0.75, mi_saturated: 0 } } };
-    store.append([withProbe, plain!].map((window): SinkRecord => ({ type: 'window', window })));
+    // Likewise the noise scale, measured now and then: the probe window carries a measured value, the last none.
+    const withProbe = {
+      ...probed!,
+      network: { ...probed!.network, noise_scale: 321.5 },
+      layers: { ...probed!.layers, dense_Dense2: { ...probed!.layers.dense_Dense2!, mi_input: 4.25, mi_label: 0.75, mi_saturated: 0 } },
+    };
+    const unmeasured = { ...plain!, network: { ...plain!.network, noise_scale: null } };
+    store.append([withProbe, unmeasured].map((window): SinkRecord => ({ type: 'window', window })));
     store.heartbeat(run.id);
     const r = await server.app.inject('/metrics');
     expect(r.headers['content-type']).toBe('application/openmetrics-text; version=1.0.0; charset=utf-8');
@@ -180,6 +186,7 @@ describe('HTTP API', () => {
     expect(r.body).toContain(`tidemark_mi_label{run="${run.id}",run_name="${run.name}",layer="dense_Dense2"} 0.75\n`);
     expect(r.body).not.toContain(`tidemark_mi_input{run="${run.id}",run_name="${run.name}",layer="dense_Dense1"}`);
     expect(r.body).toContain(`tidemark_last_step{run="${run.id}",run_name="${run.name}"} ${last.step}`);
+    expect(r.body).toContain(`tidemark_noise_scale{run="${run.id}",run_name="${run.name}",layer="(network)"} 321.5\n`);
     // fakeMarkers: the network's last phase marker is a diffusion-start.
     expect(r.body).toContain(`tidemark_phase{run="${run.id}",run_name="${run.name}",layer="(network)",phase="diffusion"} 1`);
   });
