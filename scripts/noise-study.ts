@@ -16,7 +16,7 @@
  */
 import { parseArgs } from 'node:util';
 import { exactNoiseScale, type ExactNoiseScale } from '../test/helpers/exact-noise.js';
-import { MNIST_PIXELS, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
+import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { withSeededShuffle } from '../test/helpers/phase-runs.js';
 import { tf, useCpu } from '../test/helpers/tf.js';
 
@@ -41,14 +41,6 @@ const SPLIT_SEED = 1;
 const SHUFFLE_SEED = 3;
 const LAYERS = ['hidden1', 'hidden2', 'output'];
 
-function buildModel(lr: number): tf.Sequential {
-  const model = tf.sequential();
-  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: 11 }) }));
-  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: 12 }) }));
-  model.add(tf.layers.dense({ units: 10, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: 13 }) }));
-  model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy' });
-  return model;
-}
 
 interface Row {
   lr: number;
@@ -65,7 +57,7 @@ const epochs = Math.ceil(Math.max(...steps) / perEpoch);
 const rows: Row[] = [];
 
 for (const lr of rates) {
-  const model = buildModel(lr);
+  const model = mnistModel(lr);
   let step = 0;
   const started = performance.now();
   let paused = 0;

@@ -7,15 +7,12 @@
  *
  *   npx tsx scripts/phase-study.ts [--batch 32] [--lr 0.01] [--epochs 60] [--train 3000] [--every 1]
  */
-import { createRequire } from 'node:module';
-import { dirname, join } from 'node:path';
 import { parseArgs } from 'node:util';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { monitor } from '../src/index.js';
 import type { WindowRecord } from '../src/protocol/records.js';
-import { MNIST_PIXELS, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
+import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { phaseLevelDb, withSeededShuffle } from '../test/helpers/phase-runs.js';
-import { tf } from '../test/helpers/tf.js';
+import { useWasm } from '../test/helpers/tf.js';
 
 const { values } = parseArgs({
   options: {
@@ -27,10 +24,7 @@ const { values } = parseArgs({
     seed: { type: 'string', default: '1' },
   },
 });
-const require = createRequire(import.meta.url);
-setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
-await tf.setBackend('wasm');
-await tf.ready();
+await useWasm();
 
 const batch = Number(values.batch);
 const lr = Number(values.lr);
@@ -38,11 +32,7 @@ const seed = Number(values.seed);
 const split = mnistSplit({ train: Number(values.train), validation: 1000, seed: 1 });
 const { xs, ys } = mnistTensors(split.train);
 const val = mnistTensors(split.validation);
-const model = tf.sequential();
-model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 1 }) }));
-model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 2 }) }));
-model.add(tf.layers.dense({ units: 10, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 3 }) }));
-model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy', metrics: ['accuracy'] });
+const model = mnistModel(lr, { seed, metrics: ['accuracy'] });
 const every = values.every === 'auto' ? 'auto' : Number(values.every);
 const mon = await monitor(model, { store: 'memory', noise: { every } });
 const w0 = Math.ceil(Number(values.train) / batch);

@@ -10,22 +10,16 @@
  * methods.md §1.1 and §10.1). That reference has about 3.5 % sampling error itself (its partition is one
  * draw), far inside the factor 1.5 required of tidemark's value here.
  */
-import { createRequire } from 'node:module';
-import { dirname, join } from 'node:path';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
 import { monitor } from '../../src/index.js';
 import type { WindowRecord } from '../../src/protocol/records.js';
 import { exactNoiseScale } from '../helpers/exact-noise.js';
-import { MNIST_PIXELS, mnistSplit, mnistTensors } from '../helpers/mnist.js';
+import { mnistModel, mnistSplit, mnistTensors } from '../helpers/mnist.js';
 import { withSeededShuffle } from '../helpers/phase-runs.js';
-import { tf } from '../helpers/tf.js';
+import { tf, useWasm } from '../helpers/tf.js';
 
 beforeAll(async () => {
-  const require = createRequire(import.meta.url);
-  setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
-  expect(await tf.setBackend('wasm')).toBe(true);
-  await tf.ready();
+  expect(await useWasm()).toBe(true);
 });
 
 const report: string[] = [];
@@ -37,14 +31,6 @@ const TRAIN = 2000;
 const BATCH = 32;
 const LAYERS = ['hidden1', 'hidden2', 'output'] as const;
 
-function buildModel(lr: number): tf.Sequential {
-  const model = tf.sequential();
-  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: 11 }) }));
-  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: 12 }) }));
-  model.add(tf.layers.dense({ units: 10, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: 13 }) }));
-  model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy' });
-  return model;
-}
 
 interface Check {
   step: number;
@@ -70,7 +56,7 @@ function windowedEstimate(w: WindowRecord, s: { grad_mean_norm: number; grad_std
  */
 async function run(lr: number, epochs: number, at: number[]): Promise<Check[]> {
   const { xs, ys } = mnistTensors(mnistSplit({ train: TRAIN, seed: 1 }).train);
-  const model = buildModel(lr);
+  const model = mnistModel(lr);
   const mon = await monitor(model, { store: 'memory', noise: { every: 3 } });
   const checks: Check[] = [];
   const pending = [...at];

@@ -15,21 +15,15 @@
  *   [0, 1], the knee is the point farthest below the chord from the first to the last point of a decreasing
  *   convex curve.
  */
-import { createRequire } from 'node:module';
-import { dirname, join } from 'node:path';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
 import { monitor } from '../../src/index.js';
 import type { Marker, WindowRecord } from '../../src/protocol/records.js';
-import { MNIST_PIXELS, mnistSplit, mnistTensors } from '../helpers/mnist.js';
+import { mnistModel, mnistSplit, mnistTensors } from '../helpers/mnist.js';
 import { withSeededShuffle } from '../helpers/phase-runs.js';
-import { tf } from '../helpers/tf.js';
+import { tf, useWasm } from '../helpers/tf.js';
 
 beforeAll(async () => {
-  const require = createRequire(import.meta.url);
-  setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
-  expect(await tf.setBackend('wasm')).toBe(true);
-  await tf.ready();
+  expect(await useWasm()).toBe(true);
 });
 
 const report: string[] = [];
@@ -67,11 +61,7 @@ interface Run {
 
 async function train(batch: number, lr: number, epochs: number): Promise<Run> {
   const { xs, ys } = mnistTensors(mnistSplit({ train: TRAIN, seed: 1 }).train);
-  const model = tf.sequential();
-  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', kernelInitializer: tf.initializers.glorotUniform({ seed: 11 }) }));
-  model.add(tf.layers.dense({ units: 32, activation: 'relu', kernelInitializer: tf.initializers.glorotUniform({ seed: 12 }) }));
-  model.add(tf.layers.dense({ units: 10, activation: 'softmax', kernelInitializer: tf.initializers.glorotUniform({ seed: 13 }) }));
-  model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy' });
+  const model = mnistModel(lr);
   const mon = await monitor(model, { store: 'memory' });
   const epochLoss: number[] = [];
   const before = tf.memory().numTensors;

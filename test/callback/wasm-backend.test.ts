@@ -3,19 +3,13 @@
  * choice is the float64 JavaScript accumulator, training stays bit-identical, and the statistics
  * agree with the tensor-op path.
  */
-import { createRequire } from 'node:module';
-import { dirname, join } from 'node:path';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { beforeAll, describe, expect, it } from 'vitest';
 import { readValues } from '../../src/callback/host-read.js';
 import { monitor } from '../../src/index.js';
-import { blobTensors, denseModel, tf, weightsOf } from '../helpers/tf.js';
+import { blobTensors, denseModel, tf, useWasm, weightsOf } from '../helpers/tf.js';
 
 beforeAll(async () => {
-  const require = createRequire(import.meta.url);
-  setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
-  expect(await tf.setBackend('wasm')).toBe(true);
-  await tf.ready();
+  expect(await useWasm()).toBe(true);
 });
 
 describe('monitor on the wasm backend', () => {

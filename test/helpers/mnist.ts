@@ -151,3 +151,18 @@ export function mnistTensors(part: MnistPart): { xs: tf.Tensor2D; ys: tf.Tensor2
   const ys = tf.tidy(() => tf.oneHot(tf.tensor1d(part.labels, 'int32'), MNIST_CLASSES).toFloat() as tf.Tensor2D);
   return { xs, ys };
 }
+
+/**
+ * The dense 784→64→32→10 relu/softmax network of the real-data checks, plain SGD at `lr`, categorical
+ * cross-entropy; glorot-uniform kernels seeded 10·seed + 1..3 (seed 1 gives the seeds 11, 12, 13 of the checks).
+ */
+export function mnistModel(lr: number, options: { seed?: number; metrics?: string[] } = {}): tf.Sequential {
+  const seed = options.seed ?? 1;
+  const model = tf.sequential();
+  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 1 }) }));
+  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 2 }) }));
+  model.add(tf.layers.dense({ units: 10, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 3 }) }));
+  model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy', ...(options.metrics ? { metrics: options.metrics } : {}) });
+  return model;
+}
+

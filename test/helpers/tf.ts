@@ -1,5 +1,8 @@
-/** Shared tfjs set-up for tests: the cpu backend, small seeded models and data. */
+/** Shared tfjs set-up for tests: the cpu and wasm backends, small seeded models and data. */
+import { createRequire } from 'node:module';
+import { dirname, join } from 'node:path';
 import * as tf from '@tensorflow/tfjs';
+import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { gaussian, mulberry32 } from './random.js';
 
 export { tf };
@@ -7,6 +10,15 @@ export { tf };
 export async function useCpu(): Promise<void> {
   await tf.setBackend('cpu');
   await tf.ready();
+}
+
+/** The wasm backend, its binaries read from the installed package (no download). Resolves to whether it started. */
+export async function useWasm(): Promise<boolean> {
+  const require = createRequire(import.meta.url);
+  setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
+  const ok = await tf.setBackend('wasm');
+  await tf.ready();
+  return ok;
 }
 
 /** A seeded dense tanh network; equal seeds give equal initial weights. */
