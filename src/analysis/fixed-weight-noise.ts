@@ -32,6 +32,11 @@ export interface FixedWeightNoise {
   noise_scale: number | null;
   /** Jackknife standard error of |G|², relative to the estimate; Infinity when |G|² ≤ 0. */
   grad_sq_rse: number;
+  /**
+   * A lower bound on the noise scale, tr Σ / (max(|G|², 0) + 2·SE(|G|²)): what can be said when |G|² is not
+   * resolved (the mean gradient is lost in the noise, as near a minimum of the training loss).
+   */
+  noise_scale_low: number;
   /** Jackknife standard error of ln(noise scale) (≈ its relative error); Infinity when a leave-one-out |G|² ≤ 0. */
   noise_scale_rse: number;
   /** True when |G|² > 0 and its relative standard error is at most the accepted one. */
@@ -86,12 +91,14 @@ export function noiseFromGram(gram: ArrayLike<number>, design: NoiseDesign, maxE
   const gradSe = jackknifeSe(looG);
   const gradRse = gradSq > 0 ? gradSe / gradSq : Number.POSITIVE_INFINITY;
   const noiseRse = logsOk ? jackknifeSe(looB) : Number.POSITIVE_INFINITY;
+  const low = trace > 0 && Number.isFinite(gradSe) ? trace / (Math.max(gradSq, 0) + 2 * gradSe) : Number.NaN;
   const resolved = gradSq > 0 && trace > 0 && Number.isFinite(gradSq) && Number.isFinite(trace) && gradRse <= maxError;
   return {
     grad_sq: gradSq,
     trace,
     noise_scale: resolved ? trace / gradSq : null,
     grad_sq_rse: gradRse,
+    noise_scale_low: low,
     noise_scale_rse: noiseRse,
     resolved,
   };

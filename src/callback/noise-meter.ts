@@ -146,8 +146,8 @@ export class NoiseMeter {
   private lastUnresolvedRows: number | null = null;
   readonly cost = { calls: 0, ms: 0 };
   /**
-   * Time charged to the budget: the cost less the first group of the first measurement, which pays once
-   * for kernel set-up (several times a later group's time); charged, it would hold back every later
+   * Time charged to the budget: the cost less the first measurement, which pays once for set-up (kernels,
+   * compiled code: several times a later one's time, measured 150-400 ms on the demo); charged, it would hold back every later
    * measurement of a short run.
    */
   private charged = 0;
@@ -169,7 +169,9 @@ export class NoiseMeter {
     const every = this.options.every;
     if (every !== 'auto') return windowIndex % every === 0;
     if (this.cost.calls === 0) return true;
-    const next = this.charged / this.cost.calls;
+    // The next one is expected to cost what the charged ones did; the second runs at once, since the first
+    // (uncharged, with its set-up) says little about the cost of the rest.
+    const next = this.cost.calls > 1 ? this.charged / (this.cost.calls - 1) : 0;
     return this.charged + next <= this.options.budget * trainingMs;
   }
 
@@ -205,13 +207,13 @@ export class NoiseMeter {
     let k = 0;
     let estimates: FixedWeightNoise[] = [];
     const restore = this.saveState();
-    let setUpMs = 0;
+    const first = this.cost.calls === 0;
     try {
       for (; k < maxGroups; k++) {
         const idx = order.subarray(k * groupRows, (k + 1) * groupRows);
-        const groupStart = performance.now();
+        // The first measurement (auto) takes only its minimum groups: its set-up is slow and uncharged.
+        const stopAfter = first && this.options.every === 'auto' ? 0 : allowanceMs;
         const grads = this.groupGradients(rows, idx);
-        if (this.cost.calls === 0 && k === 0) setUpMs = performance.now() - groupStart;
         for (let v = 0; v < vars.length; v++) {
           const g = grads[v]!;
           for (let i = 0; i < g.length; i++) {
@@ -238,7 +240,7 @@ export class NoiseMeter {
           k++;
           break;
         }
-        if (performance.now() - started - setUpMs > allowanceMs) {
+        if (performance.now() - started > stopAfter) {
           k++;
           break;
         }
@@ -251,7 +253,7 @@ export class NoiseMeter {
     const ms = performance.now() - started;
     this.cost.calls++;
     this.cost.ms += ms;
-    this.charged += ms - setUpMs;
+    if (!first) this.charged += ms;
     const design: NoiseDesign = { groups, groupRows, population: rows.population };
     const net = estimates[estimates.length - 1]!;
     if (net.resolved && net.noise_scale !== null) {
@@ -268,7 +270,8 @@ export class NoiseMeter {
         ? layersUnresolved.length > 0
           ? `|G|² of ${layersUnresolved.join(', ')} not resolved from noise within ${groups} groups of ${groupRows} rows (their noise_scale is null)`
           : null
-        : `|G|² of the network not resolved from noise within ${groups} groups of ${groupRows} rows (relative error ${fmt(net.grad_sq_rse)}, needs ≤ ${this.options.maxError})`,
+        : `the mean gradient is lost in the minibatch noise (|G|² of the network not resolved within ${groups} groups of ${groupRows} rows: ` +
+          `relative error ${fmt(net.grad_sq_rse)}, needs ≤ ${this.options.maxError}); the noise scale is above about ${Number.isFinite(net.noise_scale_low) ? Math.round(net.noise_scale_low).toLocaleString('en-US') : '?'} examples`,
       groups,
       group_rows: groupRows,
       rows: groups * groupRows,

@@ -120,6 +120,11 @@ describe('noiseFromGram', () => {
     expect(r.resolved).toBe(false);
     expect(r.noise_scale).toBeNull();
     expect(r.grad_sq_rse).toBeGreaterThan(0.3);
+    // What can still be said: tr Σ / (max(|G|², 0) + 2·SE), a finite lower bound on a noise scale that is
+    // infinite here (G = 0).
+    expect(Number.isFinite(r.noise_scale_low)).toBe(true);
+    expect(r.noise_scale_low).toBeGreaterThan(0);
+    expect(r.noise_scale_low).toBeLessThan(r.trace / Math.max(r.grad_sq, 1e-300));
   });
 
   it('rejects fewer than 3 groups', () => {
