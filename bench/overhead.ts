@@ -6,6 +6,7 @@
  *   npm run bench                      # default precision, a few minutes
  *   npm run bench -- --quick           # fewer runs and repetitions
  *   npm run bench -- --runs 8 --epochs 3 --backends cpu
+ *   npm run bench -- --long-epochs 40  # Table 5's long runs (default 20 epochs; 5 with --quick)
  *
  * Run node with --expose-gc (NODE_OPTIONS=--expose-gc) to collect garbage between runs.
  */
@@ -30,8 +31,10 @@ import { normal, teacherData, xorshift32 } from './seeded-data.js';
 // Settings
 
 const STEPS_PER_EPOCH = SAMPLES / BATCH;
-/** The overhead target, as a fraction of an unmonitored step. */
+/** The target for the monitor's whole cost at default settings, as a fraction of the unmonitored training time. */
 const TARGET = 0.03;
+/** The targets for the tap alone, as a fraction of an unmonitored step, per backend. */
+const TAP_TARGET: Record<string, number> = { cpu: 0.01, wasm: 0.02 };
 /** Minibatch gradients the recompute design draws per window. */
 const K_RECOMPUTE = 20;
 /** Window lengths (steps) to amortise per-window costs over: the first 'auto' window, a middle one, an epoch. */
@@ -39,15 +42,17 @@ const WINDOW_LENGTHS = [8, 30, STEPS_PER_EPOCH] as const;
 /** Steps dropped from the start of every timed run (first-call allocations, JIT). */
 const SKIP_STEPS = 10;
 
-const USAGE = `usage: tsx bench/overhead.ts [--quick] [--runs N] [--epochs N] [--backends cpu,wasm]
-  --quick        3 rounds, fewer repetitions (well under a minute)
-  --runs N       interleaved rounds per backend (default 16; each round trains every variant once)
-  --epochs N     epochs per training run (default 1; ${STEPS_PER_EPOCH} steps each)
-  --backends L   comma-separated list from cpu,wasm (default both)`;
+const USAGE = `usage: tsx bench/overhead.ts [--quick] [--runs N] [--epochs N] [--long-epochs N] [--backends cpu,wasm]
+  --quick          3 rounds, fewer repetitions, 5-epoch long runs
+  --runs N         interleaved rounds per backend (default 16; each round trains every variant once)
+  --epochs N       epochs per training run of Tables 1–2b (default 1; ${STEPS_PER_EPOCH} steps each)
+  --long-epochs N  epochs of Table 5's long runs (default 20; 5 with --quick)
+  --backends L     comma-separated list from cpu,wasm (default both)`;
 
 interface Settings {
   runs: number;
   epochs: number;
+  longEpochs: number;
   backends: ('cpu' | 'wasm')[];
   tapReps: number;
   closeReps: number;
@@ -68,6 +73,7 @@ function readSettings(): Settings | null {
       quick: { type: 'boolean', default: false },
       runs: { type: 'string' },
       epochs: { type: 'string' },
+      'long-epochs': { type: 'string' },
       backends: { type: 'string' },
       help: { type: 'boolean', short: 'h', default: false },
     },
@@ -82,6 +88,7 @@ function readSettings(): Settings | null {
   return {
     runs: positiveInt('runs', values.runs, quick ? 3 : 16),
     epochs: positiveInt('epochs', values.epochs, 1),
+    longEpochs: positiveInt('long-epochs', values['long-epochs'], quick ? 5 : 20),
     backends: backends as ('cpu' | 'wasm')[],
     tapReps: quick ? 100 : 400,
     closeReps: quick ? 20 : 60,
@@ -129,9 +136,13 @@ function ratio(x: number): string {
   return Number.isFinite(x) ? x.toFixed(3) : '—';
 }
 
-function mark(fraction: number): string {
+function mark(fraction: number, target = TARGET): string {
   if (!Number.isFinite(fraction)) return '—';
-  return fraction <= TARGET ? 'PASS' : 'OVER';
+  return fraction <= target ? 'PASS' : 'OVER';
+}
+
+function seconds(x: number): string {
+  return Number.isFinite(x) ? `${(x / 1000).toFixed(2)} s` : '—';
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -215,9 +226,14 @@ interface RunResult {
   hooks: HookTimes;
   windowLengths: number[];
   warnings: number;
+  /** fit() wall time, ms. */
+  fitMs: number;
+  /** Noise measurements (mon.noiseCost()) and, per measurement, its own ms (null without a monitor). */
+  noise: { calls: number; ms: number; each: number[] } | null;
 }
 
-function timedHooks(mon: Monitor, times: HookTimes): MonitorCallback {
+/** Wraps the monitor's hooks with timers; `after` runs after each timed call, outside the timing. */
+function timedHooks(mon: Monitor, times: HookTimes, after?: () => void): MonitorCallback {
   let closes = 0;
   mon.onWindow(() => {
     closes++;
@@ -231,6 +247,7 @@ function timedHooks(mon: Monitor, times: HookTimes): MonitorCallback {
     if (closes > before) times.close.push(dt);
     else if (batchEnd) times.batchEnd.push(dt);
     else times.otherMs += dt;
+    after?.();
   };
   return {
     onTrainBegin: (logs) => timed(() => cb.onTrainBegin(logs), false),
@@ -241,7 +258,11 @@ function timedHooks(mon: Monitor, times: HookTimes): MonitorCallback {
   };
 }
 
-async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: number, skip = SKIP_STEPS): Promise<RunResult> {
+/**
+ * One training run of the reference model. `bareDefaults` passes the monitor nothing but `store: 'memory'`
+ * (Table 5); otherwise window 'auto' and the variant's accumulator are named (the same as the defaults for 'auto').
+ */
+async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: number, skip = SKIP_STEPS, bareDefaults = false): Promise<RunResult> {
   gc?.();
   const ref = buildModel(MODEL_SEED);
   const inner: number[] = [];
@@ -249,7 +270,10 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
   timeApplyGradients(ref.optimizer, inner);
   const fwdBwd: number[] = [];
   timeMethod(ref.optimizer, 'computeGradients', fwdBwd);
-  const mon = variant === 'none' ? null : await monitor(ref.model, { store: 'memory', window: 'auto', accumulator: variant });
+  const mon =
+    variant === 'none'
+      ? null
+      : await monitor(ref.model, bareDefaults && variant === 'auto' ? { store: 'memory' } : { store: 'memory', window: 'auto', accumulator: variant });
   timeApplyGradients(ref.optimizer, outer);
   // The first step of each window is 'sampled': the accumulator also reads the weights around it.
   const sampled = new Set<number>([0]);
@@ -272,7 +296,16 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
       last = t;
     },
   };
-  const callbacks: MonitorCallback[] = mon === null ? [clock] : [timedHooks(mon, hooks), clock];
+  // Each noise measurement's own time: the change of mon.noiseCost() across the hook call that ran it.
+  const noiseEach: number[] = [];
+  let noiseSeen = { calls: 0, ms: 0 };
+  const afterHook = (): void => {
+    const c = mon?.noiseCost() ?? null;
+    if (c === null || c.calls === noiseSeen.calls) return;
+    noiseEach.push(c.ms - noiseSeen.ms);
+    noiseSeen = c;
+  };
+  const callbacks: MonitorCallback[] = mon === null ? [clock] : [timedHooks(mon, hooks, afterHook), clock];
   const t0 = now();
   await ref.model.fit(x, y, { batchSize: BATCH, epochs, verbose: 0, callbacks });
   const fitMs = now() - t0;
@@ -292,6 +325,8 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
     hooks,
     windowLengths: mon === null ? [] : mon.windows().map((w) => w.batches),
     warnings: mon === null ? 0 : mon.warnings().length,
+    fitMs,
+    noise: mon === null ? null : { ...(mon.noiseCost() ?? { calls: 0, ms: 0 }), each: noiseEach },
   };
   await mon?.close();
   disposeModel(ref);
@@ -578,6 +613,8 @@ interface BackendResult {
   isolated: Record<'auto' | 'tensor', Isolated>;
   recomputeMs: number[];
   breakdown: [string, number][];
+  /** Table 5: one long run without the monitor, then one with it at default settings. */
+  long: { none: RunResult; auto: RunResult };
   precisionJs: number[];
   precisionTensor: number[];
   tensorCounts: [string, number][];
@@ -625,9 +662,28 @@ async function runBackend(backend: 'cpu' | 'wasm', s: Settings): Promise<Backend
   const recomputeMs = recompute(x, y, s);
   counts.push(['after recompute', tf.memory().numTensors]);
 
+  // Table 5: the whole cost over a long run, measured inside the monitored run; the unmonitored run of the same
+  // length only gives a (noisy) end-to-end ratio. No steps are dropped: the whole run counts.
+  const longSteps = s.longEpochs * STEPS_PER_EPOCH;
+  progress(`${backend}: long run without the monitor (${s.longEpochs} epochs, ${longSteps} steps)`);
+  const longNone = await trainRun('none', x, y, s.longEpochs, 0);
+  progress(`${backend}: long run with the monitor at default settings (${s.longEpochs} epochs, ${longSteps} steps)`);
+  const longAuto = await trainRun('auto', x, y, s.longEpochs, 0, true);
+  counts.push(['after long runs', tf.memory().numTensors]);
+
   tf.dispose([x, y]);
   counts.push(['end (data disposed)', tf.memory().numTensors]);
-  return { backend, runs, isolated: iso, recomputeMs, breakdown, precisionJs: [], precisionTensor: [], tensorCounts: counts };
+  return {
+    backend,
+    runs,
+    isolated: iso,
+    recomputeMs,
+    breakdown,
+    long: { none: longNone, auto: longAuto },
+    precisionJs: [],
+    precisionTensor: [],
+    tensorCounts: counts,
+  };
 }
 
 /**
@@ -655,6 +711,12 @@ interface Summary {
   control: number;
   tapPct: number;
   tapMedianPct: number;
+  /** Table 5: the whole monitor cost over the long run, and the same without the first noise measurement. */
+  whole: number;
+  wholeLessFirst: number;
+  /** Table 5: fit wall time monitored / unmonitored, and the forward+backward ratio of the same pair. */
+  longE2e: number;
+  longControl: number;
 }
 
 function report(results: BackendResult[], s: Settings): Summary[] {
@@ -687,7 +749,18 @@ function report(results: BackendResult[], s: Settings): Summary[] {
         v === 'auto' ? mark(e2e - 1) : v === 'tensor' ? `(${mark(e2e - 1).toLowerCase()})` : '',
       ]);
       if (v === 'auto') {
-        summaries.push({ backend: b.backend, baseStep, e2e, control: median(pairedFwdBwd), tapPct: Number.NaN, tapMedianPct: Number.NaN });
+        summaries.push({
+          backend: b.backend,
+          baseStep,
+          e2e,
+          control: median(pairedFwdBwd),
+          tapPct: Number.NaN,
+          tapMedianPct: Number.NaN,
+          whole: Number.NaN,
+          wholeLessFirst: Number.NaN,
+          longE2e: Number.NaN,
+          longControl: Number.NaN,
+        });
       }
     });
   }
@@ -712,6 +785,8 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       'fwd+bwd: median optimizer.computeGradients per step, which the monitor does not touch: its ratio shows how much',
       '  the machine itself sped up or slowed down between paired runs (1.000 on a quiet machine).',
       'End-to-end ratios swing by several % on this machine; Table 2 is the figure to trust.',
+      `The ≤${TARGET * 100}% mark here is for orientation: a ${s.epochs}-epoch run carries the run’s first noise measurement and`,
+      '  short windows; the 3 % target is checked over a long run in Table 5.',
     ],
   );
 
@@ -730,6 +805,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       const tapMean = mean(tap);
       const iso = b.isolated[kind];
       const frac = tapMean / sum.baseStep;
+      const tapTarget = TAP_TARGET[b.backend] ?? TARGET;
       if (kind === 'auto') {
         sum.tapPct = frac;
         sum.tapMedianPct = median(tap) / sum.baseStep;
@@ -744,7 +820,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
         ms(median(control), 4),
         pct(median(tap) / sum.baseStep),
         pct(frac),
-        kind === 'auto' ? mark(frac) : `(${mark(frac).toLowerCase()})`,
+        kind === 'auto' ? `${mark(frac, tapTarget)} ≤${tapTarget * 100}%` : `(${mark(frac, tapTarget).toLowerCase()})`,
       ]);
 
       const batchEnd = rs.flatMap((r) => r.hooks.batchEnd);
@@ -778,7 +854,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       'control',
       '% step (median)',
       '% step (mean)',
-      `≤${TARGET * 100}%`,
+      'tap target',
     ],
     rows2,
     [
@@ -788,6 +864,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       'isolated: same gradients applied again and again, tapped − untapped call, paired and alternated, median.',
       'control: the same two timers with no monitor installed (the measurement floor).',
       '% step: in-fit median or mean over all steps / median unmonitored step of Table 1; the mark uses the mean.',
+      `tap target: the tap alone, ≤${TAP_TARGET.cpu! * 100} % of a step on cpu and ≤${TAP_TARGET.wasm! * 100} % on wasm.`,
     ],
   );
   printTable(
@@ -796,7 +873,9 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     rows2b,
     [
       'onBatchEnd: the monitor’s batch-end hook when it closes no window (log averaging, schedule).',
-      'close: a hook call that closed a window: accumulator.close, read-back, statistics, travel fit, record, memory store.',
+      'close: a hook call that closed a window: accumulator.close, read-back, statistics, travel fit, record, memory store,',
+      '  and the noise measurement when one is due (measureNoise runs inside closeWindow, inside the hook); close: max is',
+      '  a close that ran one (a 1-epoch run has one measurement, at its first window).',
       'acc.close alone: JsAccumulator/TensorAccumulator.close() on its own after 8 minibatches (isolated);',
       '  close − acc.close ≈ building the record. windows/run × len: windows closed per run × mean window length (steps).',
       `all work/step: (Σ tap + Σ hook time) / steps over all runs, i.e. amortised over these ${s.epochs}-epoch runs, whose`,
@@ -895,12 +974,102 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     `  float32 emulation reproduces methods.md §4 rows 4–6 (naive 0 / 32 / 0, Welford 30): ${naiveOk && welfordOk ? 'yes' : 'NO'}`,
   );
 
+  longRunTable(results, s, summaries);
+
   // Tensors
   console.log('\nTensors (tf.memory().numTensors)');
   for (const b of results) console.log(`  ${b.backend}: ${b.tensorCounts.map(([k, n]) => `${k} ${n}`).join(', ')}`);
-  const warnings = results.flatMap((b) => b.runs.flatMap((round) => round.map((r) => r.warnings)));
+  const warnings = results.flatMap((b) => [...b.runs.flatMap((round) => round.map((r) => r.warnings)), b.long.auto.warnings]);
   console.log(`  monitor warnings during timed runs: ${warnings.reduce((a, w) => a + w, 0)}`);
   return summaries;
+}
+
+/** Table 5: the monitor's whole cost at default settings over one long run, measured inside that run. */
+function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[]): void {
+  const cols = results.map((b) => {
+    const r = b.long.auto;
+    const none = b.long.none;
+    const tap = sum0(r.tapMs); // no steps dropped in the long runs: every step's tap
+    const slow = r.tapMs.filter((t) => t > 1);
+    const closes = sum0(r.hooks.close);
+    const rest = sum0(r.hooks.batchEnd) + r.hooks.otherMs;
+    const hooks = closes + rest;
+    const noise = r.noise ?? { calls: 0, ms: 0, each: [] };
+    const first = noise.each[0] ?? 0;
+    const training = r.fitMs - tap - hooks;
+    const share = (x: number): string => pct(x / training);
+    const withShare = (x: number): string => `${ms(x, 1)} ms  ${share(x)}`;
+    const whole = (tap + hooks) / training;
+    const wholeLessFirst = (tap + hooks - first) / training;
+    const control = median(r.fwdBwdMs) / median(none.fwdBwdMs);
+    const sum = summaries.find((x) => x.backend === b.backend)!;
+    sum.whole = whole;
+    sum.wholeLessFirst = wholeLessFirst;
+    sum.longE2e = r.fitMs / none.fitMs;
+    sum.longControl = control;
+    return [
+      `${r.steps} (${s.longEpochs})`,
+      seconds(r.fitMs),
+      withShare(tap),
+      `${slow.length}, ${withShare(sum0(slow))}`,
+      withShare(hooks),
+      `${r.hooks.close.length}`,
+      withShare(closes),
+      `${noise.calls}`,
+      withShare(noise.ms),
+      withShare(first),
+      ms(median(noise.each.slice(1)), 1),
+      pct(noise.ms / r.fitMs),
+      withShare(closes - noise.ms),
+      withShare(sum0(r.hooks.batchEnd)),
+      withShare(r.hooks.otherMs),
+      seconds(training),
+      `${pct(whole)}  ${mark(whole)}`,
+      pct(wholeLessFirst),
+      seconds(none.fitMs),
+      ratio(r.fitMs / none.fitMs),
+      ratio(control),
+    ];
+  });
+  const labels = [
+    'steps (epochs)',
+    'fit wall time, monitored run',
+    'Σ tap (outer − inner applyGradients timer)',
+    '  steps whose tap took > 1 ms: count, Σ',
+    'Σ hooks (timedHooks)',
+    '  windows closed',
+    '  Σ hook calls that closed a window',
+    '    noise measurements (mon.noiseCost().calls)',
+    '    Σ noise measurements (mon.noiseCost().ms)',
+    '      the first one (at the first window)',
+    '      the later ones: median ms',
+    '      Σ noise / fit wall time (noise.budget 1.5 %)',
+    '    closes less the noise measurements',
+    '  batch-end hook calls that closed no window',
+    '  train/epoch begin/end hook calls that closed no window',
+    'training time = fit − Σ tap − Σ hooks',
+    `whole monitor cost: (Σ tap + Σ hooks) / training time, ≤${TARGET * 100}%`,
+    '  the same less the first noise measurement',
+    'unmonitored run, same length: fit wall time',
+    'end to end: fit monitored / unmonitored (noisy)',
+    'fwd+bwd ratio, same pair (machine drift)',
+  ];
+  printTable(
+    `Table 5. Whole cost over a long run: reference model, ${s.longEpochs} epochs (${s.longEpochs * STEPS_PER_EPOCH} steps), monitor at default settings`,
+    ['quantity', ...results.map((b) => b.backend)],
+    labels.map((label, i) => [label, ...cols.map((c) => c[i]!)]),
+    [
+      "One run per backend with monitor(model, { store: 'memory' }) and every other option at its default (window 'auto',",
+      "  accumulator 'auto' → js, noise measurements on with noise.budget 1.5 %), all figures from that run on one clock;",
+      '  no steps dropped. % = share of the training time, i.e. fit wall time less everything the monitor did in it.',
+      'Σ tap: Table 2’s two timers, summed over every step. Σ hooks: every call of the monitor’s fit hooks, timed around it;',
+      '  a close runs the noise measurement when one is due (inside closeWindow), so the closes contain them.',
+      'the first one: the run’s first measurement, at its first window (the meter counts its first group as one-time',
+      '  set-up and leaves it out of the budget); "less the first" shows how the rest amortises. mon.close() is not counted.',
+      'unmonitored run: one fit of the same length just before, with no monitor: its ratio holds the machine’s drift',
+      '  (several % on this shared machine; see the fwd+bwd ratio) and is not checked against the target.',
+    ],
+  );
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -923,11 +1092,21 @@ async function main(): Promise<void> {
   progress('precision');
   for (const b of results) await runPrecision(b);
   const summaries = report(results, s);
-  console.log(`\nSummary against the target (≤ ${TARGET * 100} % of a step, default settings)`);
+  console.log('\nSummary against the targets (default settings)');
   for (const x of summaries) {
+    const tapTarget = TAP_TARGET[x.backend] ?? TARGET;
+    const pad = ' '.repeat(x.backend.length);
     console.log(
-      `  ${x.backend.padEnd(5)} tap ${pct(x.tapPct)} (mean; median ${pct(x.tapMedianPct)}) of a ${ms(x.baseStep)} ms step: ` +
-        `${mark(x.tapPct)};  end-to-end ratio ${ratio(x.e2e)} (machine drift, fwd+bwd ratio ${ratio(x.control)}): ${mark(x.e2e - 1)}`,
+      `  ${x.backend}: whole monitor cost ${pct(x.whole)} of the training time over ${s.longEpochs} epochs ` +
+        `(Table 5; ${pct(x.wholeLessFirst)} less the first noise measurement): ${mark(x.whole)} (≤ ${TARGET * 100} %)`,
+    );
+    console.log(
+      `  ${pad}  tap ${pct(x.tapPct)} of a ${ms(x.baseStep)} ms step (Table 2, mean; median ${pct(x.tapMedianPct)}): ` +
+        `${mark(x.tapPct, tapTarget)} (≤ ${tapTarget * 100} %)`,
+    );
+    console.log(
+      `  ${pad}  end to end over ${s.longEpochs} epochs: fit ratio ${ratio(x.longE2e)} ` +
+        `(one pair, noisy; fwd+bwd ratio ${ratio(x.longControl)}), not checked`,
     );
   }
   console.log(`\nbench wall time ${((now() - t0) / 1000).toFixed(1)} s`);
