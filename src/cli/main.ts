@@ -10,6 +10,7 @@ import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
+import { displacementDb, PHASE_DEFAULTS } from '../analysis/phase-detector.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 import { latestProbe, renderProbe } from './probe.js';
@@ -71,11 +72,15 @@ function runsTable(rows: RunRow[]): string {
   return table(lines);
 }
 
-const SHOW_METRICS = ['grad_snr_db', 'noise_scale', 'weight_travel', 'travel_exponent', 'update_ratio', 'nonfinite'] as const;
+const SHOW_METRICS = ['grad_snr_db', 'weight_travel', 'travel_exponent', 'update_ratio', 'nonfinite'] as const;
 
 interface LatestRow {
   layer: string;
   values: Partial<Record<(typeof SHOW_METRICS)[number], number | null>>;
+  /** The phase detector's level in the last window, dB (null for windows stored without grad_diff_norm). */
+  level: number | null;
+  /** The latest measured noise scale and its step (measured now and then, not in every window). */
+  noise: { value: number; step: number } | null;
 }
 
 function latest(store: Store, run: RunDetail): { step: number | null; rows: LatestRow[]; logs: Record<string, number> } {
@@ -86,10 +91,19 @@ function latest(store: Store, run: RunDetail): { step: number | null; rows: Late
     return pts.length > 0 ? pts[pts.length - 1]!.value : null;
   };
   const layers = [...run.layers.map((l) => l.name), null];
-  const rows = layers.map((layer) => {
+  const last = store.windows(run.id, { after: step - 1 }).at(-1);
+  const rows = layers.map((layer): LatestRow => {
     const values: LatestRow['values'] = {};
     for (const m of SHOW_METRICS) values[m] = at(m, layer);
-    return { layer: layer ?? '(network)', values };
+    const stats = last === undefined ? undefined : layer === null ? last.network : last.layers[layer];
+    let level: number | null = null;
+    if (last !== undefined && stats?.grad_diff_norm !== undefined) {
+      const floor = stats.batches > 0 ? last.snr_floor * Math.sqrt(last.batches / stats.batches) : Number.NaN;
+      const db = displacementDb(stats.grad_mean_norm, stats.grad_diff_norm, stats.batches, floor, PHASE_DEFAULTS.floorClampDb);
+      level = Number.isFinite(db) ? db : null;
+    }
+    const n = store.series(run.id, 'noise_scale', { layer, last: 1 })[0];
+    return { layer: layer ?? '(network)', values, level, noise: n === undefined ? null : { value: n.value, step: n.step } };
   });
   const logs: Record<string, number> = {};
   const layerNames = new Set(run.layers.map((l) => l.name));
@@ -118,12 +132,13 @@ function renderShow(store: Store, run: RunDetail): string {
   if (logs.length > 0) out.push(`  logs     ${logs.map(([k, v]) => `${k} ${fmt(v, 4)}`).join(', ')}`);
   if (l.rows.length > 0) {
     out.push('');
-    const rows = [['layer', 'SNR dB', 'noise scale', 'travel', 'exponent', 'update', 'non-finite']];
+    const rows = [['layer', 'SNR dB', 'level dB', 'noise scale (at step)', 'travel', 'exponent', 'update', 'non-finite']];
     for (const r of l.rows) {
       rows.push([
         printable(r.layer, 40),
         fmtDb(r.values.grad_snr_db),
-        fmt(r.values.noise_scale, 1),
+        fmtDb(r.level),
+        r.noise === null ? '—' : `${fmt(r.noise.value, 1)} (${r.noise.step})`,
         fmt(r.values.weight_travel),
         fmt(r.values.travel_exponent, 2),
         fmt(r.values.update_ratio),
@@ -131,6 +146,11 @@ function renderShow(store: Store, run: RunDetail): string {
       ]);
     }
     out.push(table(rows, '  '));
+    out.push(
+      '  SNR dB: the last window\'s gradient SNR (mean over spread of its minibatches). level dB: what the phases follow,',
+      '  the weights\' movement along the mean gradient against the noise\'s (above 0 drift). The noise scale is measured',
+      '  now and then at fixed weights; "—" where none was resolved.',
+    );
   }
   const probe = latestProbe(store, run);
   if (probe !== null) out.push('', ...renderProbe(probe));

@@ -70,12 +70,16 @@ describe('tidemark show', () => {
     expect(r.out).toContain('windows  4, last at step 16');
     expect(r.out).toContain('(network)');
     expect(r.out).toContain('SNR dB');
+    expect(r.out).toContain('level dB');
     expect(r.out).toContain('confirm any decision to stop training on held-out data');
     // The table's SNR for the network equals the stored series value.
     const store = openStore(db, { readonly: true });
     const snr = store.series(runIds[1]!, 'grad_snr_db', { layer: null }).at(-1)!.value;
+    const noise = store.series(runIds[1]!, 'noise_scale', { layer: null, last: 1 })[0]!;
     store.close();
     expect(r.out).toMatch(new RegExp(`\\(network\\)\\s+${(snr >= 0 ? '\\+' : '') + snr.toFixed(1).replace('.', '\\.')}`));
+    // The noise scale column shows the latest measured value with its step, not the last window's.
+    expect(r.out).toContain(`${noise.value.toFixed(1)} (${noise.step})`);
   });
 
   it('finds a run by unique id prefix and says which runs match an ambiguous one', async () => {
