@@ -2,7 +2,6 @@
 import { createRequire } from 'node:module';
 import { dirname, join } from 'node:path';
 import * as tf from '@tensorflow/tfjs';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { gaussian, mulberry32 } from './random.js';
 
 export { tf };
@@ -12,8 +11,13 @@ export async function useCpu(): Promise<void> {
   await tf.ready();
 }
 
-/** The wasm backend, its binaries read from the installed package (no download). Resolves to whether it started. */
+/**
+ * The wasm backend, its binaries read from the installed package (no download). Resolves to whether it started.
+ * Imported here, not at the top: importing the package registers wasm as the preferred backend, which would make
+ * every test file that shares these helpers start on an uninitialised wasm.
+ */
 export async function useWasm(): Promise<boolean> {
+  const { setWasmPaths } = await import('@tensorflow/tfjs-backend-wasm');
   const require = createRequire(import.meta.url);
   setWasmPaths(join(dirname(require.resolve('@tensorflow/tfjs-backend-wasm')), '/'));
   const ok = await tf.setBackend('wasm');
