@@ -117,12 +117,6 @@ function compact(value: number | null): string {
   return abs >= 100 ? value.toFixed(0) : value.toPrecision(3);
 }
 
-/** The level the phase detector follows: the displacement ratio of the window, dB (README, Phases). */
-function levelDb(w: WindowRecord, s: LayerStats): number {
-  const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
-  return analysis.displacementDb(s.grad_mean_norm, s.grad_diff_norm ?? Number.NaN, s.batches, floor, analysis.PHASE_DEFAULTS.floorClampDb);
-}
-
 function floorDb(w: WindowRecord): number {
   return w.snr_floor > 0 ? 20 * Math.log10(w.snr_floor) : -Infinity;
 }
@@ -133,7 +127,7 @@ function row(w: WindowRecord, name: string, s: LayerStats, floor: number, phase:
   const nearFloor = Number.isFinite(floor) && s.grad_snr_db <= floor + NEAR_FLOOR_DB;
   return (
     `   ${name.padEnd(COLUMNS.layer)}` +
-    signedDb(levelDb(w, s)).padStart(COLUMNS.snr) +
+    signedDb(analysis.displacementLevelDb(w, s)).padStart(COLUMNS.snr) +
     signedDb(s.grad_snr_db).padStart(COLUMNS.snr) +
     compact(s.noise_scale).padStart(COLUMNS.noise) +
     s.weight_travel.toFixed(3).padStart(COLUMNS.travel) +
@@ -191,7 +185,7 @@ function windowTable(w: WindowRecord, epochs: number, phases: Record<string, str
 /** One line per window when the full tables are off: the page carries every layer's numbers. */
 function windowLine(w: WindowRecord, epochs: number, network: string): string {
   const epoch = w.epoch === null ? '' : `  epoch ${w.epoch + 1}/${epochs}`;
-  return `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  ${describeLogs(w.logs)}  network level ${signedDb(levelDb(w, w.network))} dB ${network}`;
+  return `── window ${w.index + 1}  steps ${w.first_step}-${w.step}${epoch}  ${describeLogs(w.logs)}  network level ${signedDb(analysis.displacementLevelDb(w, w.network))} dB ${network}`;
 }
 
 // ---- probe block -------------------------------------------------------------------------------------
@@ -455,7 +449,7 @@ mon.onWindow((w) => {
   // The full tables read better with a blank line between windows; the one-liners without.
   say(args.tables ? `${lines.join('\n')}\n` : lines.join('\n'));
   for (const [name, s] of [...Object.entries(w.layers), ['(network)', w.network] as const]) {
-    if (levelDb(w, s) >= 0) belowZeroSince.set(name, null);
+    if (analysis.displacementLevelDb(w, s) >= 0) belowZeroSince.set(name, null);
     else if (!belowZeroSince.get(name)) belowZeroSince.set(name, w);
   }
 });

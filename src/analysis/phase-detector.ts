@@ -101,6 +101,27 @@ export function displacementDb(meanNorm: number, noiseNorm: number, batches: num
   return 10 * Math.log10(Math.max(r, 10 ** (clampDb / 10)));
 }
 
+/**
+ * The pure-noise floor of one layer in a window: the window's sqrt(f/K), rescaled to the layer's own K
+ * (a layer that lost minibatches to non-finite gradients has fewer).
+ */
+function layerFloor(w: Pick<PhaseInput, 'snr_floor' | 'batches'>, l: Pick<PhaseInputLayer, 'batches'>): number {
+  return l.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / l.batches) : Number.NaN;
+}
+
+/**
+ * The displacement level of a layer (or the network) in a window, in dB: what the detector follows, for
+ * the page, the CLI and scripts to draw. NaN for windows stored without grad_diff_norm.
+ */
+export function displacementLevelDb(
+  w: Pick<PhaseInput, 'snr_floor' | 'batches'>,
+  l: Pick<PhaseInputLayer, 'batches' | 'grad_mean_norm' | 'grad_diff_norm'>,
+  clampDb: number = PHASE_DEFAULTS.floorClampDb,
+): number {
+  if (l.grad_diff_norm === undefined || l.grad_mean_norm === undefined) return Number.NaN;
+  return displacementDb(l.grad_mean_norm, l.grad_diff_norm, l.batches, layerFloor(w, l), clampDb);
+}
+
 const METHOD_DISPLACEMENT = 'tabular CUSUM (Page 1954) on the displacement ratio K·‖m‖²/σ² − f in dB (σ² from consecutive minibatch differences)';
 const METHOD_WINDOW = 'tabular CUSUM (Page 1954) on the floor-corrected window SNR in dB (no grad_diff_norm in the window: depends on the batch size)';
 
@@ -156,13 +177,11 @@ export function correctedSnrDb(snr: number, floor: number, clampDb: number, lowe
   return 10 * Math.log10(Math.max(c2, lowest));
 }
 
-const NETWORK = '\u0000network';
-
 export class PhaseDetector {
   private readonly o: Required<PhaseOptions>;
   private readonly tracks = new Map<string, LayerTrack>();
   /** The network's own track, when windows carry a network entry and no networkShare is set. */
-  private readonly networkTracks = new Map<string, LayerTrack>();
+  private networkTrack: LayerTrack | null = null;
   private network: PhaseName = 'undetermined';
   private networkSince: number | null = null;
   /** Floor-corrected squared SNR below which levels are clamped: 10^(floorClampDb/10). */
@@ -186,38 +205,23 @@ export class PhaseDetector {
   update(w: PhaseInput): PhaseChange[] {
     const o = this.o;
     const changes: PhaseChange[] = [];
-    // The window's floor is sqrt(f/K); a layer that lost minibatches to NaN has its own K.
-    const fOverK = w.snr_floor * w.snr_floor;
     const center = (w.first_step + w.step) / 2;
     const cap = this.cap;
+    // The network's own entry goes last, so its change follows the layers'.
     const entries: [string | null, PhaseInputLayer][] = Object.entries(w.layers);
     const ownNetwork = w.network !== undefined && !(o.networkShare > 0);
     if (ownNetwork) entries.push([null, w.network!]);
     for (const [key, l] of entries) {
-      const name = key ?? NETWORK;
-      const tracks = key === null ? this.networkTracks : this.tracks;
-      let t = tracks.get(name);
-      if (t === undefined) {
-        t = {
-          cusum: new Cusum({ k: o.k, h: o.h }),
-          phase: 'undetermined',
-          since: null,
-          firstSteps: new Float64Array(this.cap),
-          centers: new Float64Array(this.cap),
-          levels: new Float64Array(this.cap),
-          zs: new Float64Array(this.cap),
-          diffs: new RollingMedian(this.noiseWindows),
-          n: 0,
-          changedAt: -1,
-          params: l.params,
-        };
-        tracks.set(name, t);
+      let t = key === null ? this.networkTrack : this.tracks.get(key);
+      if (t == null) {
+        t = this.newTrack(l.params);
+        if (key === null) this.networkTrack = t;
+        else this.tracks.set(key, t);
       }
-      const floor = l.batches > 0 ? Math.sqrt((fOverK * w.batches) / l.batches) : Number.NaN;
       const displaced = l.grad_diff_norm !== undefined && l.grad_diff_norm > 0 && l.grad_mean_norm !== undefined;
       const level = displaced
-        ? displacementDb(l.grad_mean_norm!, l.grad_diff_norm!, l.batches, floor, o.floorClampDb)
-        : correctedSnrDb(l.grad_snr, floor, o.floorClampDb, this.lowestSq);
+        ? displacementLevelDb(w, l, o.floorClampDb)
+        : correctedSnrDb(l.grad_snr, layerFloor(w, l), o.floorClampDb, this.lowestSq);
       if (!Number.isFinite(level)) continue; // a window with no clean minibatches says nothing
       const i = t.n++;
       const slot = i % cap;
@@ -264,19 +268,31 @@ export class PhaseDetector {
       t.cusum.reset();
     }
     if (ownNetwork) {
-      const t = this.networkTracks.get(NETWORK);
-      if (t !== undefined) {
-        this.network = t.phase;
-        this.networkSince = t.since;
+      if (this.networkTrack !== null) {
+        this.network = this.networkTrack.phase;
+        this.networkSince = this.networkTrack.since;
       }
-      // The network's change goes last, after the layers'.
-      const i = changes.findIndex((c) => c.layer === null);
-      if (i >= 0) changes.push(...changes.splice(i, 1));
       return changes;
     }
     const net = this.networkChange(w, changes);
     if (net !== null) changes.push(net);
     return changes;
+  }
+
+  private newTrack(params: number): LayerTrack {
+    return {
+      cusum: new Cusum({ k: this.o.k, h: this.o.h }),
+      phase: 'undetermined',
+      since: null,
+      firstSteps: new Float64Array(this.cap),
+      centers: new Float64Array(this.cap),
+      levels: new Float64Array(this.cap),
+      zs: new Float64Array(this.cap),
+      diffs: new RollingMedian(this.noiseWindows),
+      n: 0,
+      changedAt: -1,
+      params,
+    };
   }
 
   /**

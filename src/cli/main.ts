@@ -10,7 +10,7 @@ import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
-import { displacementDb, PHASE_DEFAULTS } from '../analysis/phase-detector.js';
+import { displacementLevelDb } from '../analysis/phase-detector.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 import { latestProbe, renderProbe } from './probe.js';
@@ -96,12 +96,8 @@ function latest(store: Store, run: RunDetail): { step: number | null; rows: Late
     const values: LatestRow['values'] = {};
     for (const m of SHOW_METRICS) values[m] = at(m, layer);
     const stats = last === undefined ? undefined : layer === null ? last.network : last.layers[layer];
-    let level: number | null = null;
-    if (last !== undefined && stats?.grad_diff_norm !== undefined) {
-      const floor = stats.batches > 0 ? last.snr_floor * Math.sqrt(last.batches / stats.batches) : Number.NaN;
-      const db = displacementDb(stats.grad_mean_norm, stats.grad_diff_norm, stats.batches, floor, PHASE_DEFAULTS.floorClampDb);
-      level = Number.isFinite(db) ? db : null;
-    }
+    const db = last === undefined || stats === undefined ? Number.NaN : displacementLevelDb(last, stats);
+    const level = Number.isFinite(db) ? db : null;
     const n = store.series(run.id, 'noise_scale', { layer, last: 1 })[0];
     return { layer: layer ?? '(network)', values, level, noise: n === undefined ? null : { value: n.value, step: n.step } };
   });

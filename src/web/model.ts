@@ -4,7 +4,7 @@
  * fragment and the stop advice sentence.
  */
 import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
-import { displacementDb, PHASE_DEFAULTS } from '../analysis/phase-detector.js';
+import { displacementLevelDb } from '../analysis/phase-detector.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 
@@ -161,11 +161,7 @@ export function levelColumns(layerNames: readonly string[], windows: readonly Wi
   const seen = new Set<number>();
   const sorted = [...windows].filter((w) => w.step > 0 && !seen.has(w.step) && seen.add(w.step)).sort((a, b) => a.step - b.step);
   const labels = [...layerNames, NETWORK_LABEL];
-  const level = (w: WindowRecord, s: LayerStats | undefined): number | null => {
-    if (s === undefined || s.grad_diff_norm === undefined) return null;
-    const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
-    return finite(displacementDb(s.grad_mean_norm, s.grad_diff_norm, s.batches, floor, PHASE_DEFAULTS.floorClampDb));
-  };
+  const level = (w: WindowRecord, s: LayerStats | undefined): number | null => (s === undefined ? null : finite(displacementLevelDb(w, s)));
   return {
     labels,
     steps: sorted.map((w) => w.step),

