@@ -12,11 +12,9 @@ const LAYER_GAUGES: [metric: string, help: string][] = [
   ['grad_snr_db', 'Gradient signal-to-noise ratio over the latest window, dB (20·log10 of the amplitude ratio).'],
   ['travel_exponent', 'Local log-log slope of weight travel against step at the latest window.'],
 ];
-/** Values measured now and then: the latest one stored, not the latest window's (usually none). */
-const MEASURED_GAUGES: [metric: string, help: string][] = [
+/** Values measured now and then (noise measurements, probes): the latest one stored, not the latest window's. */
+const LATEST_GAUGES: [metric: string, help: string][] = [
   ['noise_scale', 'Gradient noise scale B_simple of the latest measurement at fixed weights (McCandlish et al. 2018), examples; an estimate.'],
-];
-const PROBE_GAUGES: [metric: string, help: string][] = [
   ['mi_input', 'Binned I(X;T) of the latest probe, bits; says nothing when tidemark_mi_saturated is 1.'],
   ['mi_label', 'Binned I(T;Y) of the latest probe, bits; says nothing when tidemark_mi_saturated is 1.'],
   ['mi_saturated', '1 when the latest binned estimate put every probe example in its own cell.'],
@@ -57,7 +55,7 @@ function verdictOf(markers: readonly Marker[]): string {
 
 export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
   const runs = shownRuns(store, ctx.now, ctx.recentMs);
-  const gauges = new Map<string, Sample[]>([...LAYER_GAUGES, ...MEASURED_GAUGES, ...PROBE_GAUGES].map(([m]) => [m, []]));
+  const gauges = new Map<string, Sample[]>([...LAYER_GAUGES, ...LATEST_GAUGES].map(([m]) => [m, []]));
   const phase: Sample[] = [];
   const advice: Sample[] = [];
   const step: Sample[] = [];
@@ -75,15 +73,9 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
       }
     }
     for (const layer of [NETWORK, ...detail.layers.map((l) => l.name)]) {
-      for (const [metric] of MEASURED_GAUGES) {
+      for (const [metric] of LATEST_GAUGES) {
         const p = store.series(r.id, metric, { layer: layer === NETWORK ? null : layer, last: 1 })[0];
         if (p !== undefined) gauges.get(metric)!.push({ labels: { ...base, layer }, value: p.value });
-      }
-    }
-    for (const l of detail.layers) {
-      for (const [metric] of PROBE_GAUGES) {
-        const p = store.series(r.id, metric, { layer: l.name, last: 1 })[0];
-        if (p !== undefined) gauges.get(metric)!.push({ labels: { ...base, layer: l.name }, value: p.value });
       }
     }
     const markers = store.markers(r.id);
@@ -96,7 +88,7 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
     for (const v of VERDICTS) advice.push({ labels: { ...base, verdict: v }, value: v === verdict ? 1 : 0 });
   }
   const families: Family[] = [];
-  for (const [metric, help] of [...LAYER_GAUGES, ...MEASURED_GAUGES, ...PROBE_GAUGES]) {
+  for (const [metric, help] of [...LAYER_GAUGES, ...LATEST_GAUGES]) {
     families.push({ name: `tidemark_${metric}`, type: 'gauge', help, samples: gauges.get(metric)! });
   }
   families.push(
