@@ -202,26 +202,24 @@ export class NoiseMeter {
     let k = 0;
     let estimates: FixedWeightNoise[] = [];
     const restore = this.saveState();
-    const first = this.cost.calls === 0;
+    // The first measurement (auto) takes only its minimum groups: its one-time set-up makes it slow.
+    const stopAfter = this.cost.calls === 0 && this.options.every === 'auto' ? 0 : allowanceMs;
     try {
       for (; k < maxGroups; k++) {
         const idx = order.subarray(k * groupRows, (k + 1) * groupRows);
-        // The first measurement (auto) takes only its minimum groups: its one-time set-up makes it slow.
-        const stopAfter = first && this.options.every === 'auto' ? 0 : allowanceMs;
         const grads = this.groupGradients(rows, idx);
         for (let v = 0; v < vars.length; v++) {
           const g = grads[v]!;
-          for (let i = 0; i < g.length; i++) {
-            if (!Number.isFinite(g[i]!)) {
-              return { sample: { ...skipped('failed', `non-finite gradient values in group ${k + 1}`), ms: performance.now() - started }, grams: null };
-            }
-          }
           const list = kept[v]!;
           const gram = grams[v]!;
-          for (let j = 0; j <= k; j++) {
+          // The group's own dot product first: it is finite exactly when every value of g is.
+          for (let j = k; j >= 0; j--) {
             const h = j === k ? g : list[j]!;
             let dot = 0;
             for (let i = 0; i < g.length; i++) dot += g[i]! * h[i]!;
+            if (j === k && !Number.isFinite(dot)) {
+              return { sample: { ...skipped('failed', `non-finite gradient values in group ${k + 1}`), ms: performance.now() - started }, grams: null };
+            }
             gram[k * maxGroups + j] = dot;
             gram[j * maxGroups + k] = dot;
           }

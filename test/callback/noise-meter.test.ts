@@ -5,7 +5,8 @@
 import { beforeAll, describe, expect, it } from 'vitest';
 import { monitor } from '../../src/index.js';
 import type { WindowRecord } from '../../src/protocol/records.js';
-import { resolveNoiseOptions } from '../../src/callback/noise-meter.js';
+import { NoiseMeter, resolveNoiseOptions } from '../../src/callback/noise-meter.js';
+import { viewModel } from '../../src/callback/model-layers.js';
 import { gaussian, mulberry32 } from '../helpers/random.js';
 import { tf, useCpu, weightsOf } from '../helpers/tf.js';
 
@@ -153,6 +154,25 @@ describe('noise measurement on a linear model with a known gradient covariance',
     expect(warnings).not.toContain('TIDEMARK_ERR_NOISE');
     expect((model as unknown as { fit: unknown }).fit).toBe(tf.Sequential.prototype.fit);
     tf.dispose([x, y]);
+  });
+});
+
+describe('NoiseMeter', () => {
+  it('reports a measurement on non-finite gradients as failed, with no values, and leaves no tensors', () => {
+    const model = tf.sequential({ layers: [tf.layers.dense({ units: 1, inputShape: [3] })] });
+    model.compile({ optimizer: tf.train.sgd(0.1), loss: 'meanSquaredError' });
+    const x = tf.fill([64, 3], Number.NaN);
+    const y = tf.zeros([64, 1]);
+    const before = tf.memory().numTensors;
+    const meter = new NoiseMeter(model, viewModel(model), resolveNoiseOptions({ x, y, every: 1 })!);
+    const r = meter.measure(8, Number.POSITIVE_INFINITY);
+    meter.dispose();
+    expect(r.sample.status).toBe('failed');
+    expect(r.sample.reason).toMatch(/non-finite gradient values in group 1/);
+    expect(r.grams).toBeNull();
+    expect(tf.memory().numTensors).toBe(before);
+    tf.dispose([x, y]);
+    model.dispose();
   });
 });
 
