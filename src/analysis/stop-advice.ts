@@ -207,8 +207,7 @@ export class StopAdvisor {
       return cont(`${phaseText}; diffusion this short often still improves generalisation: waiting for ${plural(Math.ceil(r * driftSteps), 'step')} of it.`);
     }
     if (trend === null) {
-      const inDoubling = this.steps.filter((s) => s > w.step / 2).length;
-      return cont(`${phaseText}; ${what} has ${plural(inDoubling, 'value')} in the last doubling of the training, fewer than the ${p} its trend test needs.`);
+      return cont(`${phaseText}; ${what} has ${plural(this.inLastDoubling(w.step), 'value')} in the last doubling of the training, fewer than the ${p} its trend test needs.`);
     }
     const units = (x: number): string => (higher && Math.abs(this.best ?? 0) <= 1 ? `${signed(100 * x, 2)} points` : signed(x, 2));
     const trendText =
@@ -223,12 +222,18 @@ export class StopAdvisor {
     return { ...base, verdict: 'may-stop', reason: `${phaseText}; ${trendText}, below the ${units(trend.worth)} worth having. ${caution}` };
   }
 
-  /** The trend over the values logged in the last doubling of the training (after step/2); null with fewer than n. */
-  private lastDoubling(step: number, n: number, higher: boolean): AdviceTrend | null {
+  /** Values logged in the last doubling of the training (after step/2); they are the newest, so counted from the end. */
+  private inLastDoubling(step: number): number {
     let first = this.steps.length;
     while (first > 0 && this.steps[first - 1]! > step / 2) first--;
-    const k = this.steps.length - first;
+    return this.steps.length - first;
+  }
+
+  /** The trend over the values of the last doubling of the training; null with fewer than n. */
+  private lastDoubling(step: number, n: number, higher: boolean): AdviceTrend | null {
+    const k = this.inLastDoubling(step);
     if (k < n) return null;
+    const first = this.steps.length - k;
     const steps = this.steps.slice(first);
     const ys = this.values.slice(first);
     const fit = doublingGain(steps, ys, higher);
