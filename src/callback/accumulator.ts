@@ -21,6 +21,13 @@ export interface RawVariableWindow {
   updateWeightSq: number | null;
 }
 
+/**
+ * Minibatches folded into the sums in one pass (ShiftedMoments.pushBlock), counted from a window's first step.
+ * The consecutive-difference pairs of `diffTrace` are taken within these blocks by every accumulator, so
+ * the js and tensor paths give the same numbers.
+ */
+export const BLOCK = 4;
+
 export interface Accumulator {
   readonly kind: 'js' | 'tensor';
   /** Inside the tap, before the update. `sample` asks for the update size of this step. */

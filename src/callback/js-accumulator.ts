@@ -4,7 +4,7 @@
  * shifted sum and sum of squares per coordinate (methods.md §4).
  */
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
-import type { Accumulator, RawVariableWindow } from './accumulator.js';
+import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
 import type { ModelView } from './model-layers.js';
 import { benefitsFromBuffers, readValues } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
@@ -29,8 +29,6 @@ function diffSq(a: Values, b: Values): number {
   return s;
 }
 
-/** Minibatches folded into the sums in one pass; see ShiftedMoments.pushBlock. */
-export const BLOCK = 4;
 
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;

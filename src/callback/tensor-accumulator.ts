@@ -4,7 +4,7 @@
  * into one small tensor and reads it back once.
  */
 import * as tf from '@tensorflow/tfjs';
-import type { Accumulator, RawVariableWindow } from './accumulator.js';
+import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
 import type { ModelView } from './model-layers.js';
 import type { GradientPair } from './optimizer-tap.js';
 
@@ -13,9 +13,12 @@ interface Slot {
   s1: tf.Tensor | null;
   s2: tf.Tensor | null;
   count: number;
-  /** The previous minibatch gradient (non-finite entries replaced), and Σ‖g_{k+1} − g_k‖² so far. */
+  /**
+   * The previous minibatch gradient (non-finite entries replaced), and Σ (g_{k+1} − g_k)² so far, elementwise:
+   * summed once at the close rather than reduced to a scalar every step.
+   */
   prev: tf.Tensor | null;
-  diffSq: tf.Scalar | null;
+  diffSq: tf.Tensor | null;
   pairs: number;
   nonfinite: tf.Scalar | null;
   before: tf.Tensor | null;
@@ -80,9 +83,12 @@ export class TensorAccumulator implements Accumulator {
           const d = tf.sub(clean, slot.ref);
           slot.s1 = replace(slot.s1, tf.add(slot.s1!, d));
           slot.s2 = replace(slot.s2, tf.add(slot.s2!, tf.square(d)));
-          const q = tf.sum(tf.squaredDifference(clean, slot.prev!)) as tf.Scalar;
-          slot.diffSq = replace(slot.diffSq, slot.diffSq === null ? q : (tf.add(slot.diffSq, q) as tf.Scalar));
-          slot.pairs++;
+          // Pairs within blocks of BLOCK steps, as the js accumulator takes them.
+          if (slot.count % BLOCK !== 0) {
+            const q = tf.squaredDifference(clean, slot.prev!);
+            slot.diffSq = replace(slot.diffSq, slot.diffSq === null ? q : tf.add(slot.diffSq, q));
+            slot.pairs++;
+          }
           slot.prev = replace(slot.prev, clean);
         }
         slot.count++;
@@ -139,7 +145,7 @@ export class TensorAccumulator implements Accumulator {
           tf.sum(tf.squaredDifference(v.variable, this.initial[v.index]!)),
           s.updateSq ?? nanScalar(),
           s.updateWeightSq ?? nanScalar(),
-          s.diffSq !== null && s.pairs > 0 ? tf.div(s.diffSq, 2 * s.pairs) : nanScalar(),
+          s.diffSq !== null && s.pairs > 0 ? tf.div(tf.sum(s.diffSq), 2 * s.pairs) : nanScalar(),
         );
       }
       return tf.stack(parts);

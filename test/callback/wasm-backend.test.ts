@@ -57,6 +57,8 @@ describe('monitor on the wasm backend', () => {
       for (const f of ['grad_mean_norm', 'grad_std_norm', 'weight_travel'] as const) {
         expect(Math.abs(y[f] - x[f]) / x[f]).toBeLessThan(1e-4);
       }
+      // Consecutive differences are paired within the same blocks on both paths.
+      expect(Math.abs(y.grad_diff_norm! - x.grad_diff_norm!) / x.grad_diff_norm!).toBeLessThan(1e-4);
     });
   });
 });
