@@ -46,18 +46,16 @@
  */
 import { createHash } from 'node:crypto';
 import { readFileSync } from 'node:fs';
-import { createRequire } from 'node:module';
-import path from 'node:path';
 import { availableParallelism } from 'node:os';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
-import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { buildGearboxModel, makeGearboxData, toTensors, type GearboxData } from '../examples/gearbox-data.js';
 import { monitor, type Marker } from '../src/index.js';
-import { MNIST_CLASSES, MNIST_PIXELS, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
+import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { withSeededShuffle } from '../test/helpers/phase-runs.js';
 import { mulberry32, shuffleInPlace } from '../test/helpers/random.js';
-import { printTable, progress } from './report.js';
+import { useWasm } from '../test/helpers/tf.js';
+import { median, printTable, progress } from './report.js';
 
 // ---------------------------------------------------------------------------------------------
 // Settings
@@ -185,18 +183,9 @@ function gearboxData(): DataSet {
   };
 }
 
-function mnistModel(seed: number, lr: number): tf.Sequential {
-  const model = tf.sequential();
-  const init = (i: number) => tf.initializers.glorotUniform({ seed: seed * 16 + i });
-  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: init(0) }));
-  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: init(1) }));
-  model.add(tf.layers.dense({ units: MNIST_CLASSES, activation: 'softmax', name: 'output', kernelInitializer: init(2) }));
-  model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy', metrics: ['accuracy'] });
-  return model;
-}
-
 function buildModel(c: Config, seed: number): tf.Sequential {
-  return c.id === 'gearbox' ? buildGearboxModel(tf, { seed, learningRate: c.lr }) : mnistModel(seed, c.lr);
+  if (c.id === 'gearbox') return buildGearboxModel(tf, { seed, learningRate: c.lr });
+  return mnistModel(c.lr, { kernelSeeds: [16 * seed, 16 * seed + 1, 16 * seed + 2], metrics: ['accuracy'] });
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -391,11 +380,6 @@ function outcome(rule: Rule, run: RunRecord): Outcome {
 // ---------------------------------------------------------------------------------------------
 // Report
 
-function median(xs: readonly number[]): number {
-  const s = [...xs].sort((a, b) => a - b);
-  const m = Math.floor(s.length / 2);
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
-}
 
 const pct = (x: number, digits = 2): string => `${(100 * x).toFixed(digits)} %`;
 const pp = (x: number): string => `${x >= 0 ? '+' : '−'}${Math.abs(100 * x).toFixed(2)} pp`;
@@ -497,18 +481,12 @@ function reportConfig(c: Config, runs: readonly RunRecord[], s: Settings): void 
 
 // ---------------------------------------------------------------------------------------------
 
-function wasmDir(): string {
-  const main = createRequire(import.meta.url).resolve('@tensorflow/tfjs-backend-wasm');
-  return `${path.dirname(main)}${path.sep}`;
-}
 
 async function main(): Promise<void> {
   const s = readSettings();
   if (s === null) return;
   const t0 = performance.now();
-  setWasmPaths(wasmDir());
-  if (!(await tf.setBackend('wasm'))) throw new Error('the wasm backend did not initialise');
-  await tf.ready();
+  if (!(await useWasm())) throw new Error('the wasm backend did not initialise');
   console.log(
     `tidemark advice bench: node ${process.version}, tfjs ${tf.version.tfjs}, backend ${tf.getBackend()}, ${availableParallelism()} cores` +
       `${s.quick ? ', --quick' : ''}`,

@@ -20,6 +20,7 @@ import type { PhaseInput } from '../src/analysis/phase-detector.js';
 import { logUniform, snrSeries, spreadDrop, type LayerSpec } from '../test/helpers/snr-series.js';
 import { mulberry32 } from '../test/helpers/random.js';
 import { BATCH, buildReferenceModel, CLASSES, DATA_SEED, FEATURES, SAMPLES } from './reference-model.js';
+import { median } from './report.js';
 import { teacherData } from './seeded-data.js';
 
 const TARGET = 0.01;
@@ -31,11 +32,6 @@ const ROUNDS = quick ? 3 : 7;
 const STEPS = 200;
 const WARMUP = 20;
 
-function median(xs: number[]): number {
-  const s = xs.slice().sort((a, b) => a - b);
-  const m = s.length >> 1;
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
-}
 
 // ---------------------------------------------------------------------------------------------
 // One training step of the reference model

@@ -24,7 +24,7 @@ import { monitor, type Monitor, type MonitorCallback } from '../src/callback/mon
 import { installTap, type GradientPair } from '../src/callback/optimizer-tap.js';
 import { TensorAccumulator } from '../src/callback/tensor-accumulator.js';
 import { BATCH, buildReferenceModel, CLASSES, DATA_SEED, FEATURES, HIDDEN, LR, MODEL_SEED, SAMPLES } from './reference-model.js';
-import { printTable, progress } from './report.js';
+import { median, printTable, progress } from './report.js';
 import { normal, teacherData, xorshift32 } from './seeded-data.js';
 
 // ---------------------------------------------------------------------------------------------
@@ -103,12 +103,6 @@ function readSettings(): Settings | null {
 const now = (): number => performance.now();
 const gc = (globalThis as { gc?: () => void }).gc;
 
-function median(xs: readonly number[]): number {
-  if (xs.length === 0) return Number.NaN;
-  const s = [...xs].sort((a, b) => a - b);
-  const h = s.length >> 1;
-  return s.length % 2 === 1 ? s[h]! : (s[h - 1]! + s[h]!) / 2;
-}
 
 function mean(xs: readonly number[]): number {
   return xs.length === 0 ? Number.NaN : xs.reduce((a, b) => a + b, 0) / xs.length;

@@ -16,18 +16,13 @@ import { monitor } from '../src/index.js';
 import { viewModel } from '../src/callback/model-layers.js';
 import { Probe, PROBE_DEFAULTS, resolveProbeOptions } from '../src/callback/probe.js';
 import { BATCH, buildReferenceModel, CLASSES, DATA_SEED, FEATURES, SAMPLES } from './reference-model.js';
-import { printTable, progress } from './report.js';
+import { median, printTable, progress } from './report.js';
 import { teacherData } from './seeded-data.js';
 
 const TARGET = 0.05;
 const { values } = parseArgs({ options: { quick: { type: 'boolean', default: false } } });
 const quick = values.quick === true;
 
-function median(xs: number[]): number {
-  const s = xs.slice().sort((a, b) => a - b);
-  const m = s.length >> 1;
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
-}
 
 const fmt = (ms: number): string => (ms >= 100 ? ms.toFixed(0) : ms.toFixed(1));
 

@@ -14,3 +14,11 @@ export function printTable(title: string, head: string[], rows: string[][], note
 export function progress(message: string): void {
   process.stderr.write(`  … ${message}\n`);
 }
+
+/** The median of the values (NaN for none). */
+export function median(xs: readonly number[]): number {
+  if (xs.length === 0) return Number.NaN;
+  const s = [...xs].sort((a, b) => a - b);
+  const h = s.length >> 1;
+  return s.length % 2 === 1 ? s[h]! : (s[h - 1]! + s[h]!) / 2;
+}

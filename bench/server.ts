@@ -26,7 +26,7 @@ import { RemoteSink } from '../src/storage/remote-sink.js';
 import { encodeJson, encodeRecord } from '../src/storage/sink.js';
 import { openStore } from '../src/storage/sqlite-store.js';
 import type { Store } from '../src/storage/store.js';
-import { printTable, progress } from './report.js';
+import { median, printTable, progress } from './report.js';
 import { windowPoints } from '../src/protocol/points.js';
 import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
 import { freePort, rssMb, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
@@ -68,11 +68,6 @@ const windowRecords = (ws: readonly WindowRecord[]): SinkRecord[] => ws.map((win
 // ---------------------------------------------------------------------------------------------
 // Helpers
 
-function median(xs: readonly number[]): number {
-  const s = [...xs].sort((a, b) => a - b);
-  const m = s.length >> 1;
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
-}
 
 function quantile(sorted: readonly number[], q: number): number {
   if (sorted.length === 0) return Number.NaN;

@@ -23,7 +23,7 @@ import { parseArgs } from 'node:util';
 import Database from 'better-sqlite3';
 import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
 import { openStore } from '../src/storage/sqlite-store.js';
-import { printTable, progress } from './report.js';
+import { median, printTable, progress } from './report.js';
 import { xorshift32 } from './seeded-data.js';
 
 const USAGE = `usage: tsx bench/store.ts [--quick]
@@ -70,11 +70,6 @@ function readSettings(): Settings | null {
 // ---------------------------------------------------------------------------------------------
 // Helpers
 
-function median(xs: readonly number[]): number {
-  const s = [...xs].sort((a, b) => a - b);
-  const m = s.length >> 1;
-  return s.length % 2 === 1 ? s[m]! : (s[m - 1]! + s[m]!) / 2;
-}
 
 function time(f: () => void): number {
   const t0 = performance.now();

@@ -154,14 +154,19 @@ export function mnistTensors(part: MnistPart): { xs: tf.Tensor2D; ys: tf.Tensor2
 
 /**
  * The dense 784→64→32→10 relu/softmax network of the real-data checks, plain SGD at `lr`, categorical
- * cross-entropy; glorot-uniform kernels seeded 10·seed + 1..3 (seed 1 gives the seeds 11, 12, 13 of the checks).
+ * cross-entropy; glorot-uniform kernels seeded `kernelSeeds`, by default 10·seed + 1..3 (seed 1 gives the
+ * seeds 11, 12, 13 of the checks).
  */
-export function mnistModel(lr: number, options: { seed?: number; metrics?: string[] } = {}): tf.Sequential {
+export function mnistModel(
+  lr: number,
+  options: { seed?: number; kernelSeeds?: readonly [number, number, number]; metrics?: string[] } = {},
+): tf.Sequential {
   const seed = options.seed ?? 1;
+  const [s1, s2, s3] = options.kernelSeeds ?? [10 * seed + 1, 10 * seed + 2, 10 * seed + 3];
   const model = tf.sequential();
-  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 1 }) }));
-  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 2 }) }));
-  model.add(tf.layers.dense({ units: 10, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: 10 * seed + 3 }) }));
+  model.add(tf.layers.dense({ units: 64, inputShape: [MNIST_PIXELS], activation: 'relu', name: 'hidden1', kernelInitializer: tf.initializers.glorotUniform({ seed: s1 }) }));
+  model.add(tf.layers.dense({ units: 32, activation: 'relu', name: 'hidden2', kernelInitializer: tf.initializers.glorotUniform({ seed: s2 }) }));
+  model.add(tf.layers.dense({ units: MNIST_CLASSES, activation: 'softmax', name: 'output', kernelInitializer: tf.initializers.glorotUniform({ seed: s3 }) }));
   model.compile({ optimizer: tf.train.sgd(lr), loss: 'categoricalCrossentropy', ...(options.metrics ? { metrics: options.metrics } : {}) });
   return model;
 }
