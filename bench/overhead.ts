@@ -17,6 +17,7 @@ import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { countNonFinite, ShiftedMoments } from '../src/analysis/moments.js';
+import { SimdFold } from '../src/analysis/simd-fold.js';
 import type { Accumulator } from '../src/callback/accumulator.js';
 import { JsAccumulator } from '../src/callback/js-accumulator.js';
 import { viewModel, type ModelView, type TrackedVariable } from '../src/callback/model-layers.js';
@@ -445,6 +446,21 @@ function tapBreakdown(x: tf.Tensor, y: tf.Tensor, s: Settings): [string, number]
   out.push(['countNonFinite over all gradients', timeMedian(() => data.forEach((d) => countNonFinite(d)), reps)]);
   const moments = data.map((d) => new ShiftedMoments(d.length));
   out.push(['ShiftedMoments.push of all gradients', timeMedian(() => data.forEach((d, i) => moments[i]!.push(d)), reps)]);
+  // A block of four steps (the same gradients four times), per step: the JavaScript loop and the SIMD kernel.
+  const blockJs = data.map((d) => new ShiftedMoments(d.length));
+  out.push([
+    'pushBlock of 4, JavaScript loop, per step',
+    timeMedian(() => data.forEach((d, i) => blockJs[i]!.pushBlock([d, d, d, d])), reps) / 4,
+  ]);
+  const fold = SimdFold.create(data.map((d) => d.length));
+  if (fold !== null) {
+    fold.vectors.forEach((v, i) => v.slots.forEach((slot) => slot.set(data[i]!)));
+    const blockSimd = fold.vectors.map((v) => new ShiftedMoments(v.s1.length, { ...v, fold }));
+    out.push([
+      'pushBlock of 4, WebAssembly SIMD kernel, per step',
+      timeMedian(() => fold.vectors.forEach((v, i) => blockSimd[i]!.pushBlock(v.slots)), reps) / 4,
+    ]);
+  }
 
   const view = viewModel(ref.model);
   const pairs = pairsOf(list);
@@ -882,7 +898,9 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     ['part', ...results.map((b) => b.backend)],
     (results[0]?.breakdown ?? []).map(([name], i) => [name, ...results.map((b) => ms(b.breakdown[i]![1]))]),
     [
-      'The JsAccumulator rows contain the three rows above them (plus the per-layer bookkeeping).',
+      'The JsAccumulator rows contain a read-back, the non-finite check and a quarter of a block fold (plus the',
+      '  per-layer bookkeeping). pushBlock of 4: one block of four minibatches folded, ÷ 4. The JsAccumulator',
+      '  folds with the SIMD kernel where it copies gradients anyway (wasm) and with the JavaScript loop on cpu.',
       'First step of a window: also reads every weight before and after the update (update ratio).',
     ],
   );

@@ -2,6 +2,7 @@
  * Running moments: Welford's update for scalars, the Chan–Golub–LeVeque merge, and a vector
  * accumulator with a shifted sum of squares for per-coordinate gradient statistics.
  */
+import type { SimdFold } from './simd-fold.js';
 
 /** Count, mean and sum of squared deviations of a scalar stream. */
 export interface Moments {
@@ -90,11 +91,26 @@ export class ShiftedMoments {
   /** The squared differences of the block addBlock last went through. */
   private blockDiffSq = 0;
 
-  constructor(size: number) {
+  /** The SIMD kernel for blocks of four whose vectors it holds (see {@link SimdFold}), or null. */
+  private readonly fold: SimdFold | null;
+
+  /**
+   * `storage`: where the reference and sums live, when they must sit in a {@link SimdFold}'s memory so
+   * that its kernel folds blocks of four held in the same memory; by default, plain arrays.
+   */
+  constructor(size: number, storage?: { ref: Float64Array; s1: Float64Array; fold: SimdFold }) {
     if (!Number.isInteger(size) || size < 0) throw new RangeError(`size must be a non-negative integer, got ${size}`);
     this.size = size;
-    this.ref = new Float64Array(size);
-    this.s1 = new Float64Array(size);
+    if (storage !== undefined) {
+      if (storage.ref.length !== size || storage.s1.length !== size || !storage.fold.holds(storage.ref, storage.s1)) {
+        throw new RangeError(`storage must hold ${size} values in the kernel's memory`);
+      }
+      storage.ref.fill(0);
+      storage.s1.fill(0);
+    }
+    this.ref = storage?.ref ?? new Float64Array(size);
+    this.s1 = storage?.s1 ?? new Float64Array(size);
+    this.fold = storage?.fold ?? null;
   }
 
   get count(): number {
@@ -194,7 +210,15 @@ export class ShiftedMoments {
     let y = 0;
     if (block.length === 4) {
       const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
-      for (let j = 0; j < end; j++) {
+      let start = 0;
+      if (this.fold !== null && a instanceof Float32Array && b instanceof Float32Array && c instanceof Float32Array && e instanceof Float32Array && this.fold.holds(a, b, c, e)) {
+        // The kernel does the same sums two coordinates at a time; the loop below finishes what it left.
+        const done = this.fold.fold4([a, b, c, e], ref, s1, end, sign);
+        start = done.stop;
+        y = done.y;
+        q = done.q;
+      }
+      for (let j = start; j < end; j++) {
         const r = ref[j]!;
         const d1 = a[j]! - r;
         const d2 = b[j]! - r;

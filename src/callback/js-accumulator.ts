@@ -4,6 +4,7 @@
  * shifted sum and sum of squares per coordinate (methods.md §4).
  */
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
+import { SimdFold } from '../analysis/simd-fold.js';
 import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
 import type { ModelView } from './model-layers.js';
 import { benefitsFromBuffers, readValues } from './host-read.js';
@@ -32,6 +33,8 @@ function diffSq(a: Values, b: Values): number {
 
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
+  /** 'simd' where blocks are folded by the WebAssembly kernel in its own memory (wasm backend), else 'js'. */
+  readonly folding: 'simd' | 'js';
   private readonly view: ModelView;
   private readonly moments: ShiftedMoments[];
   private readonly initial: Float32Array[];
@@ -51,14 +54,19 @@ export class JsAccumulator implements Accumulator {
   constructor(view: ModelView) {
     this.view = view;
     const n = view.variables.length;
-    this.moments = view.variables.map((v) => new ShiftedMoments(v.size));
+    const useBuffers = benefitsFromBuffers();
+    // Where gradients are copied anyway (wasm), copy them into the SIMD kernel's memory and fold them there.
+    const fold = useBuffers && BLOCK === 4 ? SimdFold.create(view.variables.map((v) => v.size)) : null;
+    this.folding = fold === null ? 'js' : 'simd';
+    this.moments = view.variables.map((v, i) =>
+      fold === null ? new ShiftedMoments(v.size) : new ShiftedMoments(v.size, { ...fold.vectors[i]!, fold }),
+    );
     // Copies: the backend may hand out its live buffer, which the optimizer replaces each step.
     this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
     this.nonfinite = new Float64Array(n);
     this.beforeWeights = new Array<Values | null>(n).fill(null);
-    const useBuffers = benefitsFromBuffers();
-    this.buffers = Array.from({ length: BLOCK }, () =>
-      useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
+    this.buffers = Array.from({ length: BLOCK }, (_, k) =>
+      fold !== null ? fold.vectors.map((f) => f.slots[k]!) : useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
     );
     this.weightBuffers = useBuffers
       ? { before: view.variables.map((v) => new Float32Array(v.size)), after: view.variables.map((v) => new Float32Array(v.size)) }

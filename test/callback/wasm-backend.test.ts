@@ -5,6 +5,8 @@
  */
 import { beforeAll, describe, expect, it } from 'vitest';
 import { readValues } from '../../src/callback/host-read.js';
+import { JsAccumulator } from '../../src/callback/js-accumulator.js';
+import { viewModel } from '../../src/callback/model-layers.js';
 import { monitor } from '../../src/index.js';
 import { blobTensors, denseModel, tf, useWasm, weightsOf } from '../helpers/tf.js';
 
@@ -20,6 +22,40 @@ describe('monitor on the wasm backend', () => {
     expect(got).toBe(buf);
     expect(Array.from(buf)).toEqual(Array.from(t.dataSync()));
     t.dispose();
+  });
+
+  it('folds the gradients with the WebAssembly SIMD kernel, giving the float64 loop\'s numbers', async () => {
+    // The same gradients through a kernel-backed accumulator (wasm) and through plain ShiftedMoments
+    // sums computed here with the textbook two-pass formulas (mean, then squared deviations).
+    const model = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 5 });
+    const view = viewModel(model);
+    const acc = new JsAccumulator(view);
+    expect(acc.folding).toBe('simd');
+    const grads: Float32Array[][] = [];
+    for (let k = 0; k < 9; k++) {
+      const step = view.variables.map((v) => tf.randomNormal(v.variable.shape, k, 1 + k / 10, 'float32', 40 + k));
+      grads.push(step.map((t) => Float32Array.from(t.dataSync())));
+      acc.before(view.variables.map((v, i) => [v.variable.name, step[i]!] as const), false);
+      acc.after(false);
+      tf.dispose(step);
+    }
+    const out = await acc.close();
+    view.variables.forEach((v, i) => {
+      const n = v.size;
+      let trace = 0;
+      let mean2 = 0;
+      for (let j = 0; j < n; j++) {
+        const col = grads.map((g) => g[i]![j]!);
+        const m = col.reduce((a, b) => a + b, 0) / col.length;
+        trace += col.reduce((a, b) => a + (b - m) ** 2, 0) / (col.length - 1);
+        mean2 += m * m;
+      }
+      expect(out[i]!.count).toBe(9);
+      expect(out[i]!.varianceTrace / trace).toBeCloseTo(1, 9);
+      expect(out[i]!.meanSquaredNorm / mean2).toBeCloseTo(1, 9);
+    });
+    acc.dispose();
+    model.dispose();
   });
 
   it('chooses the JavaScript accumulator and leaves training bit-identical', async () => {
