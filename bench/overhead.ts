@@ -1055,7 +1055,7 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
     '    Σ noise measurements (mon.noiseCost().ms)',
     '      the first one (at the first window)',
     '      the later ones: median ms',
-    '      Σ noise / fit wall time (noise.budget 1.5 %)',
+    '      Σ noise / fit wall time (noise.budget, default 1 %)',
     '    closes less the noise measurements',
     '  batch-end hook calls that closed no window',
     '  train/epoch begin/end hook calls that closed no window',
@@ -1072,7 +1072,7 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
     labels.map((label, i) => [label, ...cols.map((c) => c[i]!)]),
     [
       "One run per backend with monitor(model, { store: 'memory' }) and every other option at its default (window 'auto',",
-      "  accumulator 'auto' → js, noise measurements on with noise.budget 1.5 %), all figures from that run on one clock;",
+      "  accumulator 'auto' → js, noise measurements on with noise.budget 1 %), all figures from that run on one clock;",
       '  no steps dropped. % = share of the training time, i.e. fit wall time less everything the monitor did in it.',
       'Σ tap: Table 2’s two timers, summed over every step. Σ hooks: every call of the monitor’s fit hooks, timed around it;',
       '  a close runs the noise measurement when one is due (inside closeWindow), so the closes contain them.',

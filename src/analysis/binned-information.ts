@@ -13,7 +13,7 @@
  */
 
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
-import { closestName } from '../option-hints.js';
+import { unknownOption } from '../option-check.js';
 import { countEntropy, millerMadowBits } from './entropy.js';
 
 /** How close (in bits) H(T) must come to log2(rows) to be flagged `saturated`. */
@@ -87,14 +87,7 @@ function isArrayLike(v: unknown): v is ArrayLike<number> {
 
 /** Throws TIDEMARK_ERR_OPTION_UNKNOWN for an option name not in `known`, with the closest name as a hint. */
 export function checkOptionNames(where: string, options: object, known: readonly string[]): void {
-  for (const name of Object.keys(options)) {
-    if (known.includes(name)) continue;
-    const hint = closestName(name, known);
-    throw new TidemarkTypeError(
-      'TIDEMARK_ERR_OPTION_UNKNOWN',
-      `${where}: unknown option '${name}'${hint !== null ? `; did you mean '${hint}'?` : ''} Known options: ${known.join(', ')}.`,
-    );
-  }
+  for (const name of Object.keys(options)) if (!known.includes(name)) throw unknownOption(name, known, { owner: where });
 }
 
 /**

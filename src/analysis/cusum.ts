@@ -5,6 +5,8 @@
  * average run lengths of Montgomery's table (methods.md §5.1).
  */
 
+import { checkOptions, type OptionSchema } from '../option-check.js';
+
 export interface CusumOptions {
   /** Reference value (allowance), in σ units. Default 0.5. */
   k?: number;
@@ -24,6 +26,12 @@ export interface CusumState {
   n: number;
 }
 
+const CUSUM_RULES: OptionSchema = Object.freeze({
+  k: { type: 'number', min: 0 },
+  h: { type: 'number', above: 0 },
+  headStart: { type: 'number', min: 0 },
+});
+
 export type CusumSignal = 'up' | 'down' | null;
 
 export class Cusum {
@@ -33,10 +41,10 @@ export class Cusum {
   private s: CusumState;
 
   constructor(options: CusumOptions = {}) {
-    this.k = options.k ?? 0.5;
-    this.h = options.h ?? 4;
-    this.headStart = options.headStart ?? 0;
-    if (!(this.k >= 0) || !(this.h > 0)) throw new RangeError(`CUSUM needs k ≥ 0 and h > 0; got k=${this.k}, h=${this.h}`);
+    const o = checkOptions<Required<CusumOptions>>(options, CUSUM_RULES, { k: 0.5, h: 4, headStart: 0 }, { owner: 'Cusum' });
+    this.k = o.k;
+    this.h = o.h;
+    this.headStart = o.headStart;
     this.s = this.initial();
   }
 

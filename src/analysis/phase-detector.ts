@@ -24,6 +24,7 @@
  * confidence: faster growth of the distance can come from a larger learning rate in diffusion
  * (methods.md §1.4), so it never marks drift by itself.
  */
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { RollingMedian } from './rolling-median.js';
 import { Cusum } from './cusum.js';
 
@@ -69,6 +70,20 @@ export const PHASE_DEFAULTS: Readonly<Required<PhaseOptions>> = Object.freeze({
   floorClampDb: -15,
   exponentSplit: 0.75,
   networkShare: 0,
+});
+
+/** The range of each option; checked by the PhaseDetector, monitor() and `tidemark analyze` alike. */
+export const PHASE_RULES: OptionSchema = Object.freeze({
+  boundaryDb: { type: 'number' },
+  k: { type: 'number', min: 0 },
+  h: { type: 'number', above: 0 },
+  clip: { type: 'number', above: 0 },
+  noiseDb: { type: 'number', above: 0 },
+  noiseWindows: { type: 'number', integer: true, min: 2, max: 10_000 },
+  minNoiseDb: { type: 'number', min: 0 },
+  floorClampDb: { type: 'number', max: 0 },
+  exponentSplit: { type: 'number', above: 0, below: 2 },
+  networkShare: { type: 'number', min: 0, max: 1 },
 });
 
 /** The per-layer numbers the detector reads from a window. */
@@ -191,8 +206,8 @@ export class PhaseDetector {
   private readonly cap: number;
 
   constructor(options: PhaseOptions = {}) {
-    this.o = { ...PHASE_DEFAULTS, ...options };
-    this.noiseWindows = Math.max(1, Math.floor(this.o.noiseWindows) || 1);
+    this.o = checkOptions(options, PHASE_RULES, PHASE_DEFAULTS, { owner: 'PhaseDetector' }) as Required<PhaseOptions>;
+    this.noiseWindows = this.o.noiseWindows;
     this.cap = Math.max(HISTORY, this.noiseWindows + 1);
     this.lowestSq = 10 ** (this.o.floorClampDb / 10);
   }

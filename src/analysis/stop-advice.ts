@@ -19,6 +19,7 @@
  *    autocorrelated, so the interval is descriptive (methods.md §9), not a guarantee.
  * The advice is a statistical estimate, to be confirmed on held-out data before acting on it.
  */
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { PhaseName, PhaseSnapshot } from './phase-detector.js';
 import { studentTQuantile } from './student-t.js';
 
@@ -42,6 +43,14 @@ export interface AdviceOptions {
 }
 
 export const ADVICE_DEFAULTS = Object.freeze({ patience: 10, minGain: 0.05, diffusionRatio: 1 });
+
+/** The range of each option; checked by the StopAdvisor, monitor() and `tidemark analyze` alike. */
+export const ADVICE_RULES: OptionSchema = Object.freeze({
+  patience: { type: 'number', integer: true, min: 5, max: 100_000 },
+  minGain: { type: 'number', above: 0, below: 1 },
+  diffusionRatio: { type: 'number', min: 0, max: 1000 },
+  watch: { type: 'string', nonEmpty: true },
+});
 
 /** The trend of the watched quantity over its recent values. */
 export interface AdviceTrend {
@@ -123,9 +132,11 @@ export class StopAdvisor {
   private steps: number[] = [];
   private values: number[] = [];
   private flat = 0;
+  /** Every log name seen, for saying what exists when the watched one does not. */
+  private readonly logged = new Set<string>();
 
   constructor(options: AdviceOptions = {}) {
-    this.o = { ...ADVICE_DEFAULTS, watch: null, ...options } as StopAdvisor['o'];
+    this.o = checkOptions(options, ADVICE_RULES, { ...ADVICE_DEFAULTS, watch: null } as never, { owner: 'StopAdvisor' }) as StopAdvisor['o'];
   }
 
   /**
@@ -180,6 +191,7 @@ export class StopAdvisor {
         this.stale = 0;
       } else this.stale++;
     }
+    for (const k of Object.keys(w.logs)) this.logged.add(k);
     const trend = this.lastDoubling(w.step, p, higher);
     if (fresh) this.flat = trend !== null && trend.gain_upper < trend.worth ? this.flat + 1 : 0;
     const base = { step: w.step, watched: watch, best: this.best, stale_windows: this.stale, trend, flat_values: this.flat };
@@ -205,6 +217,12 @@ export class StopAdvisor {
         : `Every layer has diffused for ${plural(diffusionSteps, 'step')} (the drift before lasted ${plural(driftSteps, 'step')})`;
     if (driftSteps !== null && diffusionSteps < r * driftSteps) {
       return cont(`${phaseText}; diffusion this short often still improves generalisation: waiting for ${plural(Math.ceil(r * driftSteps), 'step')} of it.`);
+    }
+    if (trend === null && watch !== null && !this.logged.has(watch)) {
+      const names = [...this.logged].sort();
+      return cont(
+        `${phaseText}; '${watch}' has not appeared in the logs${names.length > 0 ? ` (logged: ${names.join(', ')})` : ''}, so its trend cannot be judged. Check the name given to watch.`,
+      );
     }
     if (trend === null) {
       return cont(`${phaseText}; ${what} has ${plural(this.inLastDoubling(w.step), 'value')} in the last doubling of the training, fewer than the ${p} its trend test needs.`);

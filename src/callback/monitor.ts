@@ -3,6 +3,7 @@
  * minibatch gradients into a WindowRecord. Everything that can fail during training is caught and
  * reported (unless `strict`), because monitoring must never break the run it watches.
  */
+import { closestName } from '../option-check.js';
 import { randomUUID } from 'node:crypto';
 import * as tf from '@tensorflow/tfjs';
 import { snrFloor } from '../analysis/gradient-stats.js';
@@ -32,7 +33,7 @@ import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
 import { NoiseMeter, type NoiseResult } from './noise-meter.js';
 import { installTap, type GradientPair } from './optimizer-tap.js';
-import { resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
+import { isServerUrl, resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
 import { Probe, probeFailure, type ProbeResult } from './probe.js';
 import { TensorAccumulator } from './tensor-accumulator.js';
 import { pooledStats, variableStats, type WindowContext } from './window-stats.js';
@@ -97,7 +98,7 @@ export interface Monitor {
 function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
   if (typeof store !== 'string') return store;
   if (store === 'memory') return new MemorySink();
-  if (/^wss?:\/\//.test(store)) {
+  if (isServerUrl(store)) {
     const token = process.env.TIDEMARK_TOKEN;
     return new RemoteSink({ url: store, ...(token !== undefined && token !== '' && !/[?&]token=/.test(store) ? { token } : {}), onError });
   }
@@ -148,6 +149,7 @@ class MonitorSession implements Monitor {
   private sampleThisStep = false;
   private readonly detector: PhaseDetector;
   private readonly advisor: StopAdvisor;
+  private watchChecked = false;
   private lastAdvice: Advice | null = null;
   private readonly model: { stopTraining: boolean };
   private readonly probe: Probe | null;
@@ -174,7 +176,8 @@ class MonitorSession implements Monitor {
     this.meter = meter;
     meter?.rows.install();
     this.detector = new PhaseDetector(opts.phases);
-    this.advisor = new StopAdvisor(opts.advice);
+    const { act: _act, ...policy } = opts.advice;
+    this.advisor = new StopAdvisor(policy);
     this.view = view;
     this.runId = runId;
     this.name = opts.run;
@@ -211,6 +214,7 @@ class MonitorSession implements Monitor {
           for (const [k, v] of Object.entries(logs ?? {})) {
             if (k.startsWith('val_') && typeof v === 'number') this.epochLogs[k] = v;
           }
+          this.checkWatched(logs);
           const close = this.schedule.closeAtEpochEnd(this.acc.pending, this.batchesPerEpoch);
           if (close) await this.closeWindow();
         } catch (e) {
@@ -300,6 +304,21 @@ class MonitorSession implements Monitor {
       // No fit hooks in a custom loop: close here; the read-back, if any, finishes in the background.
       this.closeWindow().catch(() => {});
     }
+  }
+
+  /** Once, at the first epoch end: a watched quantity that fit does not log is said at once, not discovered later. */
+  private checkWatched(logs: Record<string, unknown> | undefined): void {
+    const watch = this.opts.advice.watch;
+    if (this.watchChecked || watch === undefined || logs === undefined) return;
+    this.watchChecked = true;
+    if (watch in logs) return;
+    const names = Object.keys(logs).filter((k) => typeof logs[k] === 'number').sort();
+    const best = closestName(watch, names);
+    this.report(
+      'TIDEMARK_ERR_ADVICE_WATCH',
+      `advice.watch is '${watch}', but the first epoch logged ${names.length > 0 ? names.join(', ') : 'nothing'}${best !== null ? ` (did you mean '${best}'?)` : ''}.`,
+      'The stop advice will say continue until that quantity appears.',
+    );
   }
 
   private countPassBatch(): void {

@@ -12,6 +12,7 @@
  * the last estimate, so that the rows drawn are a few times the noise scale. It is synchronous, so no
  * optimizer step can run in between, even in a custom loop.
  */
+import { checkOptions, invalidOption, satisfies, type OptionSchema } from '../option-check.js';
 import * as tf from '@tensorflow/tfjs';
 import { addGrams, noiseFromGram, type FixedWeightNoise, type NoiseDesign } from '../analysis/fixed-weight-noise.js';
 import { mulberry32 } from '../analysis/random.js';
@@ -26,7 +27,7 @@ export interface NoiseOptions {
    * stays within `budget` of the training time so far. A number N: every N windows, whatever it costs.
    */
   every?: number | 'auto';
-  /** With `every: 'auto'`, the share of training wall time measurements may take, in (0, 1]. Default 0.015. */
+  /** With `every: 'auto'`, the share of training wall time measurements may take, in (0, 1]. Default 0.01. */
   budget?: number;
   /** Fewest groups of a measurement (≥ 4). Default 8. */
   minGroups?: number;
@@ -48,7 +49,7 @@ export interface NoiseOptions {
 
 export const NOISE_DEFAULTS = {
   every: 'auto',
-  budget: 0.015,
+  budget: 0.01,
   minGroups: 8,
   maxGroups: 32,
   targetError: 0.15,
@@ -58,56 +59,39 @@ export const NOISE_DEFAULTS = {
 
 export type ResolvedNoiseOptions = Readonly<Omit<Required<NoiseOptions>, 'x' | 'y'>> & { readonly rows: { x: unknown; y: unknown } | null };
 
-const NOISE_NAMES = ['every', 'budget', 'minGroups', 'maxGroups', 'targetError', 'maxError', 'maxBytes', 'x', 'y'] as const;
-
-function rangeError(name: string, range: string, v: unknown): TidemarkRangeError {
-  return new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `Option 'noise.${name}' must be ${range}; received ${JSON.stringify(v)}.`);
-}
+const NOISE_RULES: OptionSchema = Object.freeze({
+  every: { type: 'any' },
+  budget: { type: 'number', above: 0, max: 1 },
+  minGroups: { type: 'number', integer: true, min: 4, max: 4096 },
+  maxGroups: { type: 'number', integer: true, min: 4, max: 4096 },
+  targetError: { type: 'number', above: 0, max: 10 },
+  maxError: { type: 'number', above: 0, max: 10 },
+  maxBytes: { type: 'number', integer: true, min: 1024 },
+  x: { type: 'any' },
+  y: { type: 'any' },
+});
 
 /** Checks the `noise` option; `false` turns measurements off (null). */
 export function resolveNoiseOptions(value: unknown): ResolvedNoiseOptions | null {
   if (value === false) return null;
-  if (value === undefined || value === true) return Object.freeze({ ...NOISE_DEFAULTS, rows: null });
-  if (value === null || typeof value !== 'object' || Array.isArray(value)) {
-    throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'noise' must be false or an object { every, budget, x, y, ... }.");
+  if (value === true) value = undefined;
+  const o = checkOptions<NoiseOptions>(value, NOISE_RULES, NOISE_DEFAULTS as NoiseOptions, { prefix: 'noise.' });
+  const every = o.every ?? 'auto';
+  if (every !== 'auto' && !satisfies({ type: 'number', integer: true, min: 1 }, every)) {
+    throw invalidOption('every', { type: 'number', integer: true, min: 1 }, every, { prefix: 'noise.' });
   }
-  const o = value as Record<string, unknown>;
-  for (const k of Object.keys(o)) {
-    if (!(NOISE_NAMES as readonly string[]).includes(k)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_UNKNOWN', `Unknown option 'noise.${k}'. Known: ${NOISE_NAMES.join(', ')}.`);
-    }
+  const out = o as Required<NoiseOptions>;
+  if (out.maxGroups < out.minGroups) {
+    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `Option 'noise.maxGroups' must be at least noise.minGroups (${out.minGroups}); received ${out.maxGroups}.`);
   }
-  const out: Record<string, unknown> = { ...NOISE_DEFAULTS };
-  const int = (k: string, min: number): void => {
-    const v = o[k];
-    if (v === undefined) return;
-    if (typeof v !== 'number' || !Number.isInteger(v) || v < min) throw rangeError(k, `an integer ≥ ${min}`, v);
-    out[k] = v;
-  };
-  const share = (k: string, hi: number): void => {
-    const v = o[k];
-    if (v === undefined) return;
-    if (typeof v !== 'number' || !(v > 0 && v <= hi)) throw rangeError(k, `a number in (0, ${hi}]`, v);
-    out[k] = v;
-  };
-  if (o.every !== 'auto') int('every', 1);
-  share('budget', 1);
-  int('minGroups', 4);
-  int('maxGroups', 4);
-  share('targetError', 10);
-  share('maxError', 10);
-  int('maxBytes', 1024);
-  if ((out.maxGroups as number) < (out.minGroups as number)) {
-    throw rangeError('maxGroups', `at least noise.minGroups (${String(out.minGroups)})`, out.maxGroups);
-  }
-  if ((out.maxError as number) < (out.targetError as number)) {
-    throw rangeError('maxError', `at least noise.targetError (${String(out.targetError)})`, out.maxError);
+  if (out.maxError < out.targetError) {
+    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `Option 'noise.maxError' must be at least noise.targetError (${out.targetError}); received ${out.maxError}.`);
   }
   if ((o.x === undefined) !== (o.y === undefined)) {
     throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'noise' needs both x and y (training rows and their targets), or neither.");
   }
-  out.rows = o.x === undefined ? null : { x: o.x, y: o.y };
-  return Object.freeze(out) as unknown as ResolvedNoiseOptions;
+  const { x, y, ...rest } = out;
+  return Object.freeze({ ...rest, rows: x === undefined ? null : { x, y } }) as unknown as ResolvedNoiseOptions;
 }
 
 /** Values of one measurement, for window-stats: a Gram per tracked variable and the design. */

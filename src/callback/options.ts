@@ -2,10 +2,10 @@
  * monitor() options: one defaults table, validated and frozen before training starts. Unknown or
  * misspelt names throw with a hint, so a typo never silently turns a feature off.
  */
-import { closestName } from '../option-hints.js';
+import { checkOptions, unknownOption } from '../option-check.js';
 import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../errors.js';
-import { ADVICE_DEFAULTS, type AdviceOptions } from '../analysis/stop-advice.js';
-import { PHASE_DEFAULTS, type PhaseOptions } from '../analysis/phase-detector.js';
+import { ADVICE_RULES, type AdviceOptions } from '../analysis/stop-advice.js';
+import { PHASE_RULES, type PhaseOptions } from '../analysis/phase-detector.js';
 import type { Sink } from '../storage/sink.js';
 import { resolveNoiseOptions, type NoiseOptions, type ResolvedNoiseOptions } from './noise-meter.js';
 import { resolveProbeOptions, type ProbeOptions, type ResolvedProbeOptions } from './probe.js';
@@ -18,7 +18,9 @@ export interface MonitorOptions {
   run?: string;
   /**
    * Where records go: a SQLite file (default `$TIDEMARK_DB` or `tidemark.db` in the working directory),
-   * a path ending in `.jsonl` (JSON Lines, appended), `'memory'` (kept in the monitor only), or a {@link Sink}.
+   * a path ending in `.jsonl` (JSON Lines, appended), `'memory'` (kept in the monitor only), a running
+   * `tidemark serve` (its `http://host:port` address as printed, or `ws://host:port`), or a {@link Sink}.
+   * Other URLs are refused.
    */
   store?: string | Sink;
   /**
@@ -55,7 +57,7 @@ export interface MonitorOptions {
   probe?: ProbeOptions;
   /**
    * Noise measurements: the fixed-weight gradient noise scale from gradients of disjoint groups of
-   * training rows at the current weights, within `budget` (default 1.5 %) of the training time. On by
+   * training rows at the current weights, within `budget` (default 1 %) of the training time. On by
    * default, with fit's own x and y; pass `{ x, y }` for fitDataset or custom loops; `false` turns it off.
    * See {@link NoiseOptions}.
    */
@@ -104,14 +106,14 @@ const KNOWN = [
 /** In design.md's contract, built in later versions. */
 
 /** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
+/** A tidemark server's address: ws(s):// for ingest, or the http(s):// address `serve` prints. */
+export function isServerUrl(store: string): boolean {
+  return /^(wss?|https?):\/\//i.test(store);
+}
+
 export function defaultStore(): string {
   const env = process.env.TIDEMARK_DB;
   return env !== undefined && env !== '' ? env : 'tidemark.db';
-}
-
-function hint(name: string): string {
-  const best = closestName(name, KNOWN);
-  return best === null ? `Known options: ${KNOWN.join(', ')}.` : `Did you mean '${best}'?`;
 }
 
 function invalid(name: string, expected: string, got: unknown): TidemarkTypeError {
@@ -120,33 +122,6 @@ function invalid(name: string, expected: string, got: unknown): TidemarkTypeErro
     'TIDEMARK_ERR_OPTION_INVALID',
     `Option '${name}' must be ${expected}; received ${shown}.`,
   );
-}
-
-function numeric(defaults: Readonly<Record<string, number>>): Record<string, 'number'> {
-  return Object.fromEntries(Object.keys(defaults).map((k) => [k, 'number' as const]));
-}
-
-/** Validates a nested options object against the names and types it may hold. */
-function nestedOptions(
-  name: string,
-  value: unknown,
-  schema: Record<string, 'number' | 'boolean' | 'string'>,
-): Record<string, unknown> {
-  if (value === undefined) return {};
-  if (value === null || typeof value !== 'object' || Array.isArray(value)) throw invalid(name, 'an object', value);
-  const out: Record<string, unknown> = {};
-  for (const [k, v] of Object.entries(value as Record<string, unknown>)) {
-    const type = schema[k];
-    if (type === undefined) {
-      throw new TidemarkTypeError(
-        'TIDEMARK_ERR_OPTION_UNKNOWN',
-        `Unknown option '${name}.${k}'. Known: ${Object.keys(schema).join(', ')}.`,
-      );
-    }
-    if (typeof v !== type || (type === 'number' && !Number.isFinite(v))) throw invalid(`${name}.${k}`, `a ${type}`, v);
-    out[k] = v;
-  }
-  return out;
 }
 
 function isSink(value: unknown): value is Sink {
@@ -161,9 +136,7 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   if (typeof input !== 'object' || Array.isArray(input)) throw invalid('options', 'an object', input);
   const o = input as Record<string, unknown>;
   for (const key of Object.keys(o)) {
-    if (!(KNOWN as readonly string[]).includes(key)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_UNKNOWN', `Unknown option '${key}'. ${hint(key)}`);
-    }
+    if (!(KNOWN as readonly string[]).includes(key)) throw unknownOption(key, KNOWN);
   }
 
   const run = o.run ?? `run-${new Date(now()).toISOString()}`;
@@ -174,6 +147,14 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const store = o.store ?? defaultStore();
   if (typeof store === 'string') {
     if (store.length === 0) throw invalid('store', "a file path, 'memory', or a Sink object", store);
+    const scheme = /^([a-z][a-z0-9+.-]*):\/\//i.exec(store);
+    if (scheme !== null && !isServerUrl(store)) {
+      // A URL must never become a folder named after its scheme.
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_INVALID',
+        `Option 'store' is a ${scheme[1]}:// URL, which tidemark cannot write to. Use a server's address (http://, https://, ws:// or wss://, as 'tidemark serve' prints it), a SQLite file path, a .jsonl path, or 'memory'.`,
+      );
+    }
   } else if (!isSink(store)) {
     throw invalid('store', "a file path (SQLite, or .jsonl for JSON Lines), 'memory', or a Sink object", store);
   }
@@ -227,8 +208,8 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   const onWarning = o.onWarning ?? null;
   if (onWarning !== null && typeof onWarning !== 'function') throw invalid('onWarning', 'a function', onWarning);
 
-  const advice = nestedOptions('advice', o.advice, { act: 'boolean', watch: 'string', ...numeric(ADVICE_DEFAULTS) });
-  const phases = nestedOptions('phases', o.phases, numeric(PHASE_DEFAULTS));
+  const advice = checkOptions<AdviceOptions & { act: boolean }>(o.advice, { act: { type: 'boolean' }, ...ADVICE_RULES }, { act: false }, { prefix: 'advice.' });
+  const phases = checkOptions<PhaseOptions>(o.phases, PHASE_RULES, {}, { prefix: 'phases.' });
   const probe = resolveProbeOptions(o.probe);
   const noise = resolveNoiseOptions(o.noise);
 
@@ -238,7 +219,7 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
       throw invalid('serve', 'a port number from 0 to 65535 (0: any free port), or false', o.serve);
     }
     const path = typeof store === 'string' ? store : null;
-    if (path === null || path === 'memory' || path.endsWith('.jsonl') || /^wss?:\/\//.test(path)) {
+    if (path === null || path === 'memory' || path.endsWith('.jsonl') || isServerUrl(path)) {
       throw new TidemarkTypeError(
         'TIDEMARK_ERR_OPTION_INVALID',
         `Option 'serve' serves the run from its SQLite store, but 'store' is ${typeof store === 'string' ? `'${store}'` : 'a Sink object'}. Use a SQLite file (the default), or run 'tidemark serve' and send to it with store: 'ws://127.0.0.1:7341'.`,
@@ -248,8 +229,8 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   }
 
   return Object.freeze({
-    advice: Object.freeze({ act: false, ...advice }) as ResolvedOptions['advice'],
-    phases: Object.freeze(phases) as PhaseOptions,
+    advice: advice as ResolvedOptions['advice'],
+    phases,
     probe,
     noise,
     serve,

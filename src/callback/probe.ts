@@ -4,6 +4,7 @@
  * information estimates (binned I(X;T), I(T;Y); pairwise bounds on I(X;T) for the layer plus Gaussian
  * noise). It runs between windows, after the optimizer step has returned, never inside the tap.
  */
+import { unknownOption } from '../option-check.js';
 import * as tf from '@tensorflow/tfjs';
 import { binnedInformation } from '../analysis/binned-information.js';
 import { labelClasses, type LabelKind } from '../analysis/label-bins.js';
@@ -68,9 +69,7 @@ export function resolveProbeOptions(value: unknown): ResolvedProbeOptions | null
   }
   const o = value as Record<string, unknown>;
   for (const k of Object.keys(o)) {
-    if (!(PROBE_OPTION_NAMES as readonly string[]).includes(k)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_UNKNOWN', `Unknown option 'probe.${k}'. Known: ${PROBE_OPTION_NAMES.join(', ')}.`);
-    }
+    if (!(PROBE_OPTION_NAMES as readonly string[]).includes(k)) throw unknownOption(k, PROBE_OPTION_NAMES, { prefix: 'probe.' });
   }
   if (o.x === undefined || o.y === undefined) {
     throw new TidemarkTypeError('TIDEMARK_ERR_PROBE_INVALID', "Option 'probe' needs x (probe inputs) and y (their targets).");

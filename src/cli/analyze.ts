@@ -2,6 +2,8 @@
  * Offline re-analysis of a stored run: the online detector and advisor run again over the stored
  * windows with other settings, and the result is compared with the markers recorded live.
  */
+import { TidemarkRangeError } from '../errors.js';
+import { closestName } from '../option-check.js';
 import { detectPhases, type PhaseChange, type PhaseOptions } from '../analysis/phase-detector.js';
 import { adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
 import type { Marker } from '../protocol/records.js';
@@ -55,6 +57,14 @@ export function compareMarkers(offline: PhaseChange[], online: Marker[]): Pick<A
 
 export function analyzeRun(store: Store, runId: string, phases: PhaseOptions, advice: AdviceOptions): AnalyzeResult {
   const windows = store.windows(runId);
+  if (advice.watch !== undefined && windows.length > 0 && !windows.some((w) => advice.watch! in w.logs)) {
+    const names = [...new Set(windows.flatMap((w) => Object.keys(w.logs)))].sort();
+    const best = closestName(advice.watch, names);
+    throw new TidemarkRangeError(
+      'TIDEMARK_ERR_OPTION_INVALID',
+      `--watch '${advice.watch}' is not in this run's logs${best !== null ? ` (did you mean '${best}'?)` : ''}; logged: ${names.length > 0 ? names.join(', ') : 'nothing'}.`,
+    );
+  }
   const { states, changes } = detectPhases(windows, phases);
   const advices = adviseStop(windows, states, advice);
   const online = store.markers(runId).filter((m) => PHASE_KINDS.has(m.kind) && m.details.source !== 'offline');

@@ -10,7 +10,10 @@ import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
-import { displacementLevelDb } from '../analysis/phase-detector.js';
+import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
+import { ADVICE_DEFAULTS, ADVICE_RULES } from '../analysis/stop-advice.js';
+import { describeRule, satisfies, type OptionRule } from '../option-check.js';
+import { SERVER_RULES } from '../server/app.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
 import { fmt, fmtDb, fmtTime, printable, table } from './format.js';
 import { latestProbe, renderProbe } from './probe.js';
@@ -221,6 +224,18 @@ function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T): T
 
 export function buildProgram(io: Io): Command {
   const program = new Command();
+  /** A numeric flag's parser: the same range as the option it sets, and the flag's name in the message. */
+  const num =
+    (flag: string, rule: OptionRule = { type: 'number' }) =>
+    (v: string): number => {
+      const n = v.trim() === '' ? Number.NaN : Number(v);
+      if (!satisfies(rule, n)) {
+        throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${flag} must be ${describeRule(rule)}; received '${v}'.`);
+      }
+      return n;
+    };
+  const P = PHASE_RULES;
+  const A = ADVICE_RULES;
   program
     .name('tidemark')
     .description('Per-layer gradient signal-to-noise, noise scale and weight travel of TensorFlow.js runs, kept in a SQLite store.')
@@ -238,7 +253,7 @@ export function buildProgram(io: Io): Command {
     .option('--group <group>', 'only runs in this group')
     .option('--tag <key=value>', 'only runs with this tag (repeatable)', parseTag)
     .addOption(new Option('--status <status>', 'only runs with this status').choices(['running', 'finished', 'failed', 'interrupted']))
-    .option('--limit <n>', 'at most n runs', (v) => Number.parseInt(v, 10), 1000)
+    .option('--limit <n>', 'at most n runs', num('--limit', { type: 'number', integer: true, min: 1, max: 1_000_000 }), 1000)
     .option('--json', 'machine-readable output')
     .action((o: { name?: string; group?: string; tag?: Record<string, string>; status?: RunStatus; limit: number; json?: boolean }) => {
       const rows = withStore(db(), true, (s) =>
@@ -319,24 +334,19 @@ export function buildProgram(io: Io): Command {
       io.out(`Deleted ${ids.length} run${ids.length === 1 ? '' : 's'} started before ${fmtTime(before)}.\n`);
     });
 
-  const num = (flag: string) => (v: string) => {
-    const n = Number(v);
-    if (!Number.isFinite(n)) throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `${flag} takes a number; received '${v}'.`);
-    return n;
-  };
   program
     .command('analyze')
     .description('recompute phases, markers and advice from the stored windows with other settings')
     .argument('<run>', 'run id, unique id prefix, or name')
-    .option('--boundary-db <dB>', 'drift/diffusion boundary of the displacement ratio (default 0)', num('--boundary-db'))
-    .option('--k <sigma>', 'CUSUM allowance in noise units (default 0.5)', num('--k'))
-    .option('--h <sigma>', 'CUSUM decision interval in noise units (default 4)', num('--h'))
-    .option('--clip <sigma>', 'clip standardised inputs at ±clip (default 2.5)', num('--clip'))
-    .option('--noise-db <dB>', 'assumed noise of the phase level before an estimate exists (default 1.5)', num('--noise-db'))
-    .option('--network-share <share>', 'follow the layers instead of the network\'s own level: share of parameters in diffusion for the network to diffuse (default: own level)', num('--network-share'))
-    .option('--patience <values>', 'values of the watched quantity in the trend test (default 10; stop uses twice)', num('--patience'))
-    .option('--min-gain <share>', 'smallest gain from doubling the training worth having, as a share of what is left (default 0.02)', num('--min-gain'))
-    .option('--diffusion-ratio <ratio>', 'diffusion length, in drift lengths, before may-stop (default 1)', num('--diffusion-ratio'))
+    .option('--boundary-db <dB>', `drift/diffusion boundary of the displacement ratio (default ${PHASE_DEFAULTS.boundaryDb})`, num('--boundary-db', P.boundaryDb))
+    .option('--k <sigma>', `CUSUM allowance in noise units, ≥ 0 (default ${PHASE_DEFAULTS.k})`, num('--k', P.k))
+    .option('--h <sigma>', `CUSUM decision interval in noise units, > 0 (default ${PHASE_DEFAULTS.h})`, num('--h', P.h))
+    .option('--clip <sigma>', `clip standardised inputs at ±clip, > 0 (default ${PHASE_DEFAULTS.clip})`, num('--clip', P.clip))
+    .option('--noise-db <dB>', `assumed noise of the phase level before an estimate exists, > 0 (default ${PHASE_DEFAULTS.noiseDb})`, num('--noise-db', P.noiseDb))
+    .option('--network-share <share>', "follow the layers instead of the network's own level: share of parameters in diffusion for the network to diffuse, 0 to 1 (default 0: own level)", num('--network-share', P.networkShare))
+    .option('--patience <values>', `values of the watched quantity in the trend test, an integer ≥ 5 (default ${ADVICE_DEFAULTS.patience}; stop uses twice)`, num('--patience', A.patience))
+    .option('--min-gain <share>', `smallest gain from doubling the training worth having, as a share of what is left, in (0, 1) (default ${ADVICE_DEFAULTS.minGain})`, num('--min-gain', A.minGain))
+    .option('--diffusion-ratio <ratio>', `diffusion length, in drift lengths, before may-stop, ≥ 0 (default ${ADVICE_DEFAULTS.diffusionRatio})`, num('--diffusion-ratio', A.diffusionRatio))
     .option('--watch <metric>', 'logged quantity the advice watches (default the validation accuracy, else val_loss, else loss)')
     .option('--write', 'store the offline markers next to the online ones (marked as offline)')
     .option('--json', 'machine-readable output')
@@ -375,12 +385,12 @@ export function buildProgram(io: Io): Command {
   program
     .command('serve')
     .description('serve the store over HTTP and WebSocket: the API, the live stream, remote ingest and /metrics')
-    .option('--port <port>', 'port to listen on (default 7341)', num('--port'))
+    .option('--port <port>', 'port to listen on (default 7341; 0: any free port)', num('--port', { type: 'number', integer: true, min: 0, max: 65535 }))
     .option('--host <address>', 'address to listen on (default 127.0.0.1; any other needs --token)')
     .option('--token <token>', 'required on every request and connection (default: $TIDEMARK_TOKEN, else none)')
     .option('--insecure', 'listen beyond loopback without a token')
     .option('--cors <origin>', 'let pages of this origin call the API')
-    .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate'))
+    .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate', SERVER_RULES.ingestRate))
     .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
       const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
       const running = await startServer({

@@ -3,6 +3,7 @@
  * JSON schema per route), the live stream for viewers and the ingest endpoint for remote writers (ws, on
  * the same HTTP server), and `/metrics` in the OpenMetrics text format.
  */
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { existsSync } from 'node:fs';
 import { readFile, stat } from 'node:fs/promises';
 import type { IncomingMessage } from 'node:http';
@@ -12,7 +13,7 @@ import type { Duplex } from 'node:stream';
 import { Ajv } from 'ajv';
 import Fastify, { type FastifyInstance, type FastifyReply, type FastifyRequest } from 'fastify';
 import { WebSocketServer, type RawData, type WebSocket } from 'ws';
-import { codeOf, ERROR_CODES, TidemarkError, type ErrorCode } from '../errors.js';
+import { codeOf, ERROR_CODES, TidemarkError, TidemarkTypeError, type ErrorCode } from '../errors.js';
 import { MAX_FRAME_BYTES, type BackfillMessage, type ErrorMessage, type IngestReply } from '../protocol/messages.js';
 import { windowPoints } from '../protocol/points.js';
 import { markerKey, type SinkRecord } from '../protocol/records.js';
@@ -145,8 +146,35 @@ async function staticFile(name: string): Promise<{ body: Buffer; type: string } 
 const bad = (message: string): TidemarkError => new TidemarkError('TIDEMARK_ERR_REQUEST_INVALID', message);
 
 /** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
+/** Names, types and ranges of the server's options (the store is checked by its own type). */
+export const SERVER_RULES: OptionSchema = Object.freeze({
+  store: { type: 'any' },
+  token: { type: 'any' },
+  cors: { type: 'any' },
+  bodyLimit: { type: 'number', integer: true, min: 1024, max: 2 ** 31 - 1 },
+  maxFrameBytes: { type: 'number', integer: true, min: 1024, max: 2 ** 31 - 1 },
+  ingestRate: { type: 'number', above: 0 },
+  pollMs: { type: 'number', integer: true, min: 1, max: 2 ** 31 - 1 },
+  heartbeatMs: { type: 'number', integer: true, min: 10, max: 2 ** 31 - 1 },
+  viewerBufferBytes: { type: 'number', integer: true, min: 1024 },
+  recentMs: { type: 'number', min: 0 },
+  page: { type: 'string' },
+  onError: { type: 'function' },
+  now: { type: 'function' },
+});
+
 export async function buildServer(options: ServerOptions): Promise<TidemarkServer> {
+  checkOptions(options, SERVER_RULES, {}, { owner: 'buildServer' });
+  for (const k of ['token', 'cors'] as const) {
+    const v = options[k];
+    if (v !== undefined && v !== null && (typeof v !== 'string' || v.length === 0)) {
+      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `Option '${k}' of buildServer must be a non-empty string or null; received ${typeof v}.`);
+    }
+  }
   const store = options.store;
+  if (store === null || typeof store !== 'object' || typeof (store as { runs?: unknown }).runs !== 'function') {
+    throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'store' of buildServer must be a Store (openStore(path)).");
+  }
   const token = options.token ?? null;
   const cors = options.cors ?? null;
   const maxFrame = options.maxFrameBytes ?? MAX_FRAME_BYTES;

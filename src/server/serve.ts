@@ -2,10 +2,11 @@
  * Starting the server: safe defaults first (loopback unless a token is set), then listen. Used by
  * `tidemark serve` and by `monitor(model, { serve: port })`.
  */
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { TidemarkError, TidemarkRangeError } from '../errors.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { Store } from '../storage/store.js';
-import { buildServer, type ServerOptions, type TidemarkServer } from './app.js';
+import { buildServer, SERVER_RULES, type ServerOptions, type TidemarkServer } from './app.js';
 import { isLoopback } from './auth.js';
 
 export const DEFAULT_PORT = 7341;
@@ -34,12 +35,19 @@ export interface RunningServer {
   close(): Promise<void>;
 }
 
+const START_RULES: OptionSchema = Object.freeze({
+  ...SERVER_RULES,
+  db: { type: 'string', nonEmpty: true },
+  port: { type: 'number', integer: true, min: 0, max: 65535 },
+  host: { type: 'string', nonEmpty: true },
+  insecure: { type: 'boolean' },
+  onWarning: { type: 'function' },
+});
+
 export async function startServer(options: StartOptions = {}): Promise<RunningServer> {
+  checkOptions(options, START_RULES, {}, { owner: 'startServer' });
   const host = options.host ?? DEFAULT_HOST;
   const port = options.port ?? DEFAULT_PORT;
-  if (!Number.isInteger(port) || port < 0 || port > 65535) {
-    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `port must be an integer from 0 to 65535; received ${String(port)}.`);
-  }
   const token = options.token ?? null;
   if (token !== null && token.length < 8) {
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', 'The token must be at least 8 characters long; a short one is easy to guess.');
@@ -59,7 +67,8 @@ export async function startServer(options: StartOptions = {}): Promise<RunningSe
   const store = options.store ?? openStore(options.db ?? process.env.TIDEMARK_DB ?? 'tidemark.db');
   let built: TidemarkServer | null = null;
   try {
-    built = await buildServer({ ...options, store, token });
+    const { db: _db, port: _port, host: _host, insecure: _insecure, onWarning: _onWarning, ...serverOptions } = options;
+    built = await buildServer({ ...serverOptions, store, token });
     await built.app.listen({ host, port });
   } catch (e) {
     if (built !== null) await built.close().catch(() => {});

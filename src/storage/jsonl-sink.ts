@@ -1,11 +1,13 @@
 import { mkdir, open, type FileHandle } from 'node:fs/promises';
 import { dirname } from 'node:path';
+import { TidemarkTypeError } from '../errors.js';
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
 import { encodeRecord, type Sink } from './sink.js';
 
 export interface JsonlSinkOptions {
-  /** Milliseconds between background flushes. Default 500. */
-  flushInterval?: number;
+  /** Milliseconds between background flushes (1 to 2^31 − 1). Default 500. */
+  flushIntervalMs?: number;
   /** Queued records that trigger a flush at once. Default 256. */
   flushAt?: number;
   /** Records kept in memory while writes fail; older ones are dropped and counted beyond this. Default 100000. */
@@ -13,6 +15,13 @@ export interface JsonlSinkOptions {
   /** Told once per failed flush. */
   onError?: (error: unknown) => void;
 }
+
+const JSONL_SINK_RULES: OptionSchema = Object.freeze({
+  flushIntervalMs: { type: 'number', integer: true, min: 1, max: 2 ** 31 - 1 },
+  flushAt: { type: 'number', integer: true, min: 1 },
+  maxQueued: { type: 'number', integer: true, min: 1 },
+  onError: { type: 'function' },
+});
 
 /**
  * Appends records to a JSON Lines file (one JSON object per line). Writes are batched on a timer
@@ -31,11 +40,20 @@ export class JsonlSink implements Sink {
   private readonly onError: (error: unknown) => void;
 
   constructor(path: string, options: JsonlSinkOptions = {}) {
+    if (typeof path !== 'string' || path.length === 0) {
+      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `new JsonlSink(): path must be a non-empty string; received ${String(path)}.`);
+    }
+    const o = checkOptions<Required<JsonlSinkOptions>>(
+      options,
+      JSONL_SINK_RULES,
+      { flushIntervalMs: 500, flushAt: 256, maxQueued: 100_000, onError: () => {} },
+      { owner: 'new JsonlSink()' },
+    );
     this.path = path;
-    this.flushInterval = options.flushInterval ?? 500;
-    this.flushAt = options.flushAt ?? 256;
-    this.maxQueued = options.maxQueued ?? 100_000;
-    this.onError = options.onError ?? (() => {});
+    this.flushInterval = o.flushIntervalMs;
+    this.flushAt = o.flushAt;
+    this.maxQueued = o.maxQueued;
+    this.onError = o.onError;
   }
 
   get dropped(): number {

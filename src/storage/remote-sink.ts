@@ -6,6 +6,7 @@
  * batches move to a spill file and are read back from there. Nothing here throws into training: problems
  * go to `onError`, and records given up are counted in `dropped`.
  */
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { mkdir, open, rename, unlink, type FileHandle } from 'node:fs/promises';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
@@ -63,9 +64,24 @@ interface Batch {
   spill: { offset: number; length: number } | null;
   /** A spill write of this batch is queued. */
   spilling: boolean;
-  /** Sent at least once: from then on its seq and content are fixed. */
+/** Sent at least once: from then on its seq and content are fixed. */
   sent: boolean;
 }
+
+const ms = { type: 'number', integer: true, min: 1, max: 2 ** 31 - 1 } as const;
+const REMOTE_SINK_RULES: OptionSchema = Object.freeze({
+  url: { type: 'any' },
+  token: { type: 'string', nonEmpty: true },
+  maxBatchRecords: { type: 'number', integer: true, min: 1 },
+  maxMemoryBytes: { type: 'number', integer: true, min: 0 },
+  spillDir: { type: 'string', nonEmpty: true },
+  closeTimeoutMs: { type: 'number', integer: true, min: 0, max: 2 ** 31 - 1 },
+  backoff: { type: 'any' },
+  flushIntervalMs: ms,
+  ackTimeoutMs: ms,
+  onError: { type: 'function' },
+});
+const BACKOFF_RULES: OptionSchema = Object.freeze({ initialMs: ms, maxMs: ms });
 
 export class RemoteSink implements Sink {
   /** The URL connected to, token included. */
@@ -133,9 +149,9 @@ export class RemoteSink implements Sink {
     if (typeof options !== 'object' || options === null) {
       throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `RemoteSink needs an options object with a url; received ${String(options)}.`);
     }
-    if (options.token !== undefined && (typeof options.token !== 'string' || options.token.length === 0)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', 'RemoteSink: token must be a non-empty string when given.');
-    }
+    // Names, types and ranges; the defaults and the cross-field rule (maxMs ≥ initialMs) follow below.
+    checkOptions(options, REMOTE_SINK_RULES, {}, { owner: 'new RemoteSink()' });
+    checkOptions(options.backoff, BACKOFF_RULES, {}, { owner: 'new RemoteSink()', prefix: 'backoff.' });
     const url = parseIngestUrl(options.url);
     if (options.token !== undefined) url.searchParams.set('token', options.token);
     this.url = url.href;
@@ -759,7 +775,7 @@ export class RemoteSink implements Sink {
 /** Accepts `ws:` and `wss:` URLs with a host and without a fragment (RFC 6455 §3 forbids fragments). */
 function parseIngestUrl(raw: unknown): URL {
   const bad = (why: string) =>
-    new TidemarkTypeError('TIDEMARK_ERR_REMOTE_URL', `RemoteSink url ${JSON.stringify(raw)} ${why}; expected ws://host:port or wss://host:port (path /ingest by default).`);
+    new TidemarkTypeError('TIDEMARK_ERR_REMOTE_URL', `RemoteSink url ${JSON.stringify(raw)} ${why}; expected ws://host:port or wss://host:port, or the server's http(s):// address (path /ingest by default).`);
   if (typeof raw !== 'string') throw bad('is not a string');
   let url: URL;
   try {
@@ -767,6 +783,8 @@ function parseIngestUrl(raw: unknown): URL {
   } catch {
     throw bad('is not a URL');
   }
+  // The server prints its address as http://…; the same host and port take WebSocket ingest.
+  if (url.protocol === 'http:' || url.protocol === 'https:') url = new URL(raw.replace(/^http/i, 'ws'));
   if (url.protocol !== 'ws:' && url.protocol !== 'wss:') throw bad(`has scheme ${url.protocol}`);
   if (url.hostname === '') throw bad('has no host');
   if (url.hash !== '' || raw.includes('#')) throw bad('has a fragment (#…), which WebSocket URLs may not carry');

@@ -2,11 +2,11 @@
  * The SQLite Store (better-sqlite3): runs, their window statistics as series of points, markers and
  * warnings in one local file. Writes are synchronous, one IMMEDIATE transaction per `append`, with
  * every statement prepared once. WAL lets one writer per run and many readers work at once, and
- * several processes write different runs into one file, waiting up to `busyTimeout` for the lock.
+ * several processes write different runs into one file, waiting up to `busyTimeoutMs` for the lock.
  * Every SQLite failure is rethrown as a coded TidemarkError with the original as `cause`: SQLite's
  * own messages can quote SQL and never reach users as they are.
  */
-import { closestName } from '../option-hints.js';
+import { checkOptions, unknownOption, type OptionSchema } from '../option-check.js';
 import { mkdirSync } from 'node:fs';
 import { dirname } from 'node:path';
 import Database from 'better-sqlite3';
@@ -47,12 +47,12 @@ export interface StoreOptions {
   /** A `running` run whose heartbeat is older than this many ms (≥ 0) reads as `interrupted`. Default 30000. */
   staleAfterMs?: number;
   /** How long to wait for another connection's lock before failing, in ms. Default 5000. */
-  busyTimeout?: number;
+  busyTimeoutMs?: number;
   /** The clock, in ms since the epoch (tests inject one). Default `Date.now`. */
   now?: () => number;
 }
 
-const DEFAULTS = { readonly: false, staleAfterMs: 30_000, busyTimeout: 5_000, now: Date.now } as const;
+const DEFAULTS = { readonly: false, staleAfterMs: 30_000, busyTimeoutMs: 5_000, now: Date.now } as const;
 
 /**
  * Opens (creating it when missing, unless `readonly`) a tidemark store in the SQLite file `path`;
@@ -94,15 +94,16 @@ function num(x: number | null): number {
 // Validation of options and arguments
 
 function checkKeys(where: string, given: object, known: readonly string[]): void {
-  for (const key of Object.keys(given)) {
-    if (known.includes(key)) continue;
-    const hint = closestName(key, known);
-    throw new TidemarkTypeError(
-      'TIDEMARK_ERR_OPTION_UNKNOWN',
-      `${where}: unknown option '${key}'.${hint === null ? '' : ` Did you mean '${hint}'?`} Known options: ${known.join(', ')}.`,
-    );
-  }
+  for (const key of Object.keys(given)) if (!known.includes(key)) throw unknownOption(key, known, { owner: where });
 }
+
+const STORE_RULES: OptionSchema = Object.freeze({
+  readonly: { type: 'boolean' },
+  // 0 is allowed: every running run then reads as interrupted (a check after the writers are known dead).
+  staleAfterMs: { type: 'number', min: 0 },
+  busyTimeoutMs: { type: 'number', integer: true, min: 0, max: 2 ** 31 - 1 },
+  now: { type: 'function' },
+});
 
 function show(value: unknown): string {
   if (typeof value === 'string') return JSON.stringify(value.length > 60 ? `${value.slice(0, 60)}…` : value);
@@ -118,19 +119,7 @@ function resolveOptions(path: unknown, options: unknown): Required<StoreOptions>
   if (typeof path !== 'string' || path.length === 0) {
     throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `openStore: path must be a non-empty string; received ${show(path)}.`);
   }
-  if (typeof options !== 'object' || options === null) throw invalidOption('openStore', 'options', 'an object', options);
-  checkKeys('openStore', options, Object.keys(DEFAULTS));
-  const o = { ...DEFAULTS, ...(options as StoreOptions) };
-  if (typeof o.readonly !== 'boolean') throw invalidOption('openStore', 'readonly', 'true or false', o.readonly);
-  // 0 is allowed: every running run then reads as interrupted (a check after the writers are known dead).
-  if (typeof o.staleAfterMs !== 'number' || !(o.staleAfterMs >= 0) || o.staleAfterMs === Infinity) {
-    throw invalidOption('openStore', 'staleAfterMs', 'a non-negative, finite number of milliseconds', o.staleAfterMs);
-  }
-  if (typeof o.busyTimeout !== 'number' || !Number.isInteger(o.busyTimeout) || o.busyTimeout < 0 || o.busyTimeout > 2 ** 31 - 1) {
-    throw invalidOption('openStore', 'busyTimeout', 'a non-negative integer number of milliseconds', o.busyTimeout);
-  }
-  if (typeof o.now !== 'function') throw invalidOption('openStore', 'now', 'a function returning ms since the epoch', o.now);
-  return Object.freeze(o);
+  return checkOptions<Required<StoreOptions>>(options, STORE_RULES, DEFAULTS, { owner: 'openStore' });
 }
 
 function badRecord(message: string): TidemarkTypeError {
@@ -166,7 +155,7 @@ const RUN_STATUSES: readonly RunStatus[] = ['running', 'finished', 'failed', 'in
 // SQLite errors → coded errors
 
 const SQLITE_REASONS: [prefix: string, reason: string][] = [
-  ['SQLITE_BUSY', 'another connection held the database lock longer than busyTimeout; retry, or raise busyTimeout'],
+  ['SQLITE_BUSY', 'another connection held the database lock longer than busyTimeoutMs; retry, or raise busyTimeoutMs'],
   ['SQLITE_LOCKED', 'the database was locked; retry'],
   ['SQLITE_FULL', 'the disk is full; free space and retry'],
   ['SQLITE_READONLY', 'the file or its directory cannot be written; check permissions'],
@@ -305,12 +294,12 @@ export class SqliteStore implements Store {
   }
 
   private open(): Database.Database {
-    const { readonly, busyTimeout } = this.opts;
+    const { readonly, busyTimeoutMs } = this.opts;
     const where = `openStore: could not open ${show(this.path)}`;
     let db: Database.Database;
     try {
       if (!readonly && !this.memory) mkdirSync(dirname(this.path), { recursive: true });
-      db = new Database(this.path, { readonly, fileMustExist: readonly, timeout: busyTimeout });
+      db = new Database(this.path, { readonly, fileMustExist: readonly, timeout: busyTimeoutMs });
     } catch (e) {
       throw new TidemarkError('TIDEMARK_ERR_STORE_OPEN', `${where} (${reasonOf(e)}).`, { cause: e });
     }

@@ -4,13 +4,15 @@
  * retried on the next flush; past `maxQueued` the oldest are dropped and counted. A heartbeat marks
  * the run alive, so a run whose process died shows as interrupted.
  */
+import { TidemarkTypeError } from '../errors.js';
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
 import type { Sink } from './sink.js';
 import type { Store } from './store.js';
 
 export interface StoreSinkOptions {
-  /** Milliseconds between heartbeats and background flushes. Default 2000. */
-  heartbeatInterval?: number;
+  /** Milliseconds between heartbeats and background flushes (10 to 2^31 − 1). Default 2000. */
+  heartbeatIntervalMs?: number;
   /** Records kept while the store refuses writes. Default 100000. */
   maxQueued?: number;
   /** Told about each failed flush or heartbeat. */
@@ -18,6 +20,13 @@ export interface StoreSinkOptions {
   /** Close the store when the sink closes. Default true. */
   closeStore?: boolean;
 }
+
+const STORE_SINK_RULES: OptionSchema = Object.freeze({
+  heartbeatIntervalMs: { type: 'number', integer: true, min: 10, max: 2 ** 31 - 1 },
+  maxQueued: { type: 'number', integer: true, min: 1 },
+  onError: { type: 'function' },
+  closeStore: { type: 'boolean' },
+});
 
 export class StoreSink implements Sink {
   private readonly openStore: () => Store;
@@ -33,11 +42,20 @@ export class StoreSink implements Sink {
 
   /** `open` is a function so that opening errors surface in `Sink.open`, where the monitor handles them. */
   constructor(openStore: () => Store, options: StoreSinkOptions = {}) {
+    if (typeof openStore !== 'function') {
+      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', 'new StoreSink(): the first argument must be a function that opens the store.');
+    }
+    const o = checkOptions<Required<StoreSinkOptions>>(
+      options,
+      STORE_SINK_RULES,
+      { heartbeatIntervalMs: 2000, maxQueued: 100_000, onError: () => {}, closeStore: true },
+      { owner: 'new StoreSink()' },
+    );
     this.openStore = openStore;
-    this.heartbeatInterval = options.heartbeatInterval ?? 2000;
-    this.maxQueued = options.maxQueued ?? 100_000;
-    this.onError = options.onError ?? (() => {});
-    this.closeStore = options.closeStore ?? true;
+    this.heartbeatInterval = o.heartbeatIntervalMs;
+    this.maxQueued = o.maxQueued;
+    this.onError = o.onError;
+    this.closeStore = o.closeStore;
   }
 
   get dropped(): number {

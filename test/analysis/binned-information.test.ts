@@ -363,6 +363,6 @@ describe('argument errors (coded, TIDEMARK_ERR_OPTION_INVALID / _UNKNOWN)', () =
 
   it('names a misspelt option and its likely meaning', () => {
     expectCoded(() => binnedInformation([1, 2], [2, 1], [0, 0], { bin: 3 } as never), 'TidemarkTypeError', 'TIDEMARK_ERR_OPTION_UNKNOWN',
-      /unknown option 'bin'; did you mean 'bins'\?/);
+      /Unknown option 'bin' of .*. Did you mean 'bins'\?/);
   });
 });

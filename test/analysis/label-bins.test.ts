@@ -52,7 +52,7 @@ describe('labelClasses', () => {
     );
     expect(() => labelClasses([0, 1], [2, 1], { bins: 1 })).toThrow(expect.objectContaining({ code: 'TIDEMARK_ERR_OPTION_INVALID' }));
     expect(() => labelClasses([0, 1], [2, 1], { kinds: 'sparse' } as never)).toThrow(
-      expect.objectContaining({ code: 'TIDEMARK_ERR_OPTION_UNKNOWN', message: expect.stringContaining("did you mean 'kind'?") as unknown }),
+      expect.objectContaining({ code: 'TIDEMARK_ERR_OPTION_UNKNOWN', message: expect.stringContaining("Did you mean 'kind'?") as unknown }),
     );
     expect(() => labelClasses([0, Number.NaN], [2, 1], { kind: 'regression' })).toThrow(
       expect.objectContaining({ code: 'TIDEMARK_ERR_OPTION_INVALID', name: 'TidemarkRangeError' }),

@@ -186,7 +186,7 @@ describe('pairwiseInformationBounds on I(X;T) for T = h(X) + N(0, σ²I) (method
       expect.objectContaining({
         name: 'TidemarkTypeError',
         code: 'TIDEMARK_ERR_OPTION_UNKNOWN',
-        message: expect.stringContaining("unknown option 'noiseVarience'; did you mean 'noiseVariance'?") as unknown,
+        message: expect.stringContaining("Did you mean 'noiseVariance'?") as unknown,
       }),
     );
     expect(() => gaussianMixtureEntropyBounds([0, 1], [2, 1], 1, [1])).toThrow(

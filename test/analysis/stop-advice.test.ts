@@ -193,6 +193,21 @@ describe('StopAdvisor (rules of thumb: common practice, no source)', () => {
     expect(later).toEqual(['continue', 'continue', 'continue', 'continue', 'may-stop', 'may-stop', 'may-stop', 'may-stop', 'stop', 'stop']);
   });
 
+  it('with a watched name that is never logged says so, with the names that are, and never reports a trend of it', () => {
+    const a = new StopAdvisor({ patience: 5, watch: 'val_los' });
+    const diffusing = snap('diffusion', 100);
+    let last: Advice | null = null;
+    for (let i = 0; i < 40; i++) last = a.update({ step: 110 + 10 * i, logs: { loss: 1, val_loss: 1 } }, diffusing);
+    expect(last!.verdict).toBe('continue');
+    expect(last!.best).toBeNull();
+    expect(last!.trend).toBeNull();
+    expect(last!.reason).toContain("'val_los' has not appeared in the logs (logged: loss, val_loss), so its trend cannot be judged");
+    // The same history watched under its right name gets a trend and a verdict.
+    const right = new StopAdvisor({ patience: 5, watch: 'val_loss' });
+    for (let i = 0; i < 40; i++) last = right.update({ step: 110 + 10 * i, logs: { loss: 1, val_loss: 1 } }, diffusing);
+    expect(last!.verdict).toBe('stop');
+  });
+
   it('with no loss logged it never advises stopping', () => {
     const s = script(80, () => ({}));
     const advice = adviseStop(s.inputs, s.states);

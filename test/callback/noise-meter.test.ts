@@ -179,9 +179,9 @@ describe('NoiseMeter', () => {
 describe('noise options', () => {
   it('are checked before training with the option named', () => {
     expect(resolveNoiseOptions(false)).toBeNull();
-    expect(resolveNoiseOptions(undefined)!.budget).toBe(0.015);
-    expect(() => resolveNoiseOptions({ budget: 2 })).toThrow(/noise.budget' must be a number in \(0, 1\]; received 2/);
-    expect(() => resolveNoiseOptions({ minGroups: 2 })).toThrow(/noise.minGroups' must be an integer ≥ 4/);
+    expect(resolveNoiseOptions(undefined)!.budget).toBe(0.01);
+    expect(() => resolveNoiseOptions({ budget: 2 })).toThrow(/noise.budget' must be a number > 0 and ≤ 1; received 2/);
+    expect(() => resolveNoiseOptions({ minGroups: 2 })).toThrow(/noise.minGroups' must be an integer from 4 to 4096; received 2/);
     expect(() => resolveNoiseOptions({ minGroups: 16, maxGroups: 8 })).toThrow(/noise.maxGroups/);
     expect(() => resolveNoiseOptions({ evrey: 3 })).toThrow(/Unknown option 'noise.evrey'/);
     expect(() => resolveNoiseOptions({ x: 1 })).toThrow(/both x and y/);

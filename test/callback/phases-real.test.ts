@@ -298,7 +298,8 @@ describe('advice with act: true on the gearbox demo run (validationSplit 0.2, va
     relabelled.xs.dispose();
     newLabels = relabelled.ys;
     model = buildGearboxModel(tf, { seed: 1, learningRate: 0.01 });
-    mon = await monitor(model, { store: 'memory', run: 'phases-real-act', advice: { act: true, patience: 2 } });
+    // patience 5, the least the trend test takes (2 was raised to 5 silently before options were range-checked).
+    mon = await monitor(model, { store: 'memory', run: 'phases-real-act', advice: { act: true, patience: 5 } });
     verdicts = recordVerdicts(mon);
   });
   afterAll(async () => {

@@ -204,3 +204,46 @@ describe('tidemark analyze', () => {
     expect(stored.some((m) => m.details.source === 'offline')).toBe(true);
   });
 });
+
+describe('tidemark analyze: settings are range-checked (the built command)', () => {
+  // The built binary, as a user runs it (npm install builds dist/ through `prepare`).
+  const cli = (...args: string[]) => spawnSync(process.execPath, ['dist/cli/bin.js', ...args], { encoding: 'utf8' });
+  let file = '';
+  beforeAll(async () => {
+    file = join(dir, 'ranges.db');
+    const { xs, ys } = blobTensors(128, 4, 2);
+    const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
+    const mon = await monitor(model, { store: file, run: 'ranges', window: 4 });
+    await model.fit(xs, ys, { epochs: 3, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
+    await mon.close();
+    tf.dispose([xs, ys]);
+  });
+
+  it.each([
+    ['--network-share', '2', '--network-share must be a number from 0 to 1'],
+    ['--network-share', '-1', '--network-share must be a number from 0 to 1'],
+    ['--h', '-1', '--h must be a number > 0'],
+    ['--clip', '0', '--clip must be a number > 0'],
+    ['--patience', '0', '--patience must be an integer from 5 to 100000'],
+    ['--diffusion-ratio', '-1', '--diffusion-ratio must be a number from 0 to 1000'],
+    ['--min-gain', '-5', '--min-gain must be a number > 0 and < 1'],
+    ['--k', 'abc', "--k must be a number ≥ 0; received 'abc'"],
+  ])('refuses %s %s with the usage code and the range', (flag, value, message) => {
+    const r = cli('analyze', 'ranges', '--db', file, flag, value);
+    expect(r.status).toBe(EXIT.usage);
+    expect(r.stderr).toContain(message);
+    expect(r.stderr).not.toContain('Cannot read properties');
+  });
+
+  it('refuses a watched quantity the run never logged, naming what it did log', () => {
+    const r = cli('analyze', 'ranges', '--db', file, '--watch', 'los');
+    expect(r.status).toBe(EXIT.usage);
+    expect(r.stderr).toContain("--watch 'los' is not in this run's logs (did you mean 'loss'?); logged: loss");
+  });
+
+  it('refuses --limit that is not a positive integer', () => {
+    const r = cli('runs', '--db', file, '--limit', 'abc');
+    expect(r.status).toBe(EXIT.usage);
+    expect(r.stderr).toContain("--limit must be an integer from 1 to 1000000; received 'abc'");
+  });
+});

@@ -387,3 +387,20 @@ describe('live stream', () => {
     viewer.ws.close();
   });
 });
+
+describe('buildServer options', () => {
+  it('suggests the option meant for a misspelt name, and refuses out-of-range values', async () => {
+    const store = openStore(':memory:');
+    try {
+      await expect(buildServer({ store, ingestRat: 5 } as never)).rejects.toThrow(
+        "Unknown option 'ingestRat' of buildServer. Did you mean 'ingestRate'?",
+      );
+      await expect(buildServer({ store, pollMs: -3 })).rejects.toThrow(
+        "Option 'pollMs' of buildServer must be an integer from 1 to 2147483647; received -3.",
+      );
+      await expect(buildServer({ store: {} as never })).rejects.toThrow(/must be a Store/);
+    } finally {
+      store.close();
+    }
+  });
+});

@@ -23,7 +23,7 @@ describe('JSON Lines sink', () => {
 
   it('writes one line per record, in order, after close', async () => {
     const file = join(dir, 'nested', 'a.jsonl');
-    const sink = new JsonlSink(file, { flushAt: 3, flushInterval: 10_000 });
+    const sink = new JsonlSink(file, { flushAt: 3, flushIntervalMs: 10_000 });
     await sink.open(run);
     for (let i = 0; i < 10; i++) sink.write(warning(i));
     await sink.close();
@@ -34,7 +34,7 @@ describe('JSON Lines sink', () => {
   it('keeps failed records queued up to its bound and counts what it drops', async () => {
     const file = join(dir, 'b.jsonl');
     const errors: unknown[] = [];
-    const sink = new JsonlSink(file, { flushAt: 1_000_000, flushInterval: 10_000, maxQueued: 5, onError: (e) => errors.push(e) });
+    const sink = new JsonlSink(file, { flushAt: 1_000_000, flushIntervalMs: 10_000, maxQueued: 5, onError: (e) => errors.push(e) });
     await sink.open(run);
     // Close the descriptor under the sink, so its next write fails.
     await (sink as unknown as { handle: { close(): Promise<void> } }).handle.close();
@@ -48,5 +48,16 @@ describe('JSON Lines sink', () => {
     const blocker = join(dir, 'plain-file');
     writeFileSync(blocker, 'x');
     await expect(new JsonlSink(join(blocker, 'c.jsonl')).open(run)).rejects.toThrow(/ENOTDIR|EEXIST/);
+  });
+});
+
+describe('JsonlSink options', () => {
+  it('suggests the option meant for a misspelt name, and refuses out-of-range values', () => {
+    expect(() => new JsonlSink('x.jsonl', { flushIntervall: 5 } as never)).toThrow(
+      "Unknown option 'flushIntervall' of new JsonlSink(). Did you mean 'flushIntervalMs'?",
+    );
+    expect(() => new JsonlSink('x.jsonl', { flushIntervalMs: 0 })).toThrow(/flushIntervalMs' of new JsonlSink\(\) must be an integer from 1/);
+    expect(() => new JsonlSink('x.jsonl', { flushAt: 2.5 })).toThrow(/flushAt' of new JsonlSink\(\) must be an integer ≥ 1; received 2.5/);
+    expect(() => new JsonlSink('', {})).toThrow(/path must be a non-empty string/);
   });
 });

@@ -438,7 +438,8 @@ describe('RemoteSink', () => {
   });
 
   it('throws a coded error at once for a malformed URL', () => {
-    for (const url of ['http://127.0.0.1:1/ingest', 'localhost:8080', 'ws://', '', 'ws://127.0.0.1:1/ingest#x', 'ws://u:p@127.0.0.1:1/']) {
+    // http(s):// is the server's printed address and is accepted (issue 13); other schemes are not.
+    for (const url of ['ftp://127.0.0.1:1/ingest', 'localhost:8080', 'ws://', '', 'ws://127.0.0.1:1/ingest#x', 'ws://u:p@127.0.0.1:1/']) {
       let thrown: unknown = null;
       try {
         new RemoteSink({ url });
@@ -491,5 +492,24 @@ describe('RemoteSink', () => {
     expect(closed.afterDoneMs).toBeLessThan(3000);
     expect(neverClosed.afterDoneMs).toBeLessThan(3000);
     expect(server.stored.get(0)?.[0]).toMatchObject({ type: 'run', run: { id: 'child-open' } });
+  });
+});
+
+describe('RemoteSink options', () => {
+  it('suggests the option meant for a misspelt name, and checks backoff', () => {
+    expect(() => new RemoteSink({ url: 'ws://127.0.0.1:1', maxBatchRecord: 5 } as never)).toThrow(
+      "Unknown option 'maxBatchRecord' of new RemoteSink(). Did you mean 'maxBatchRecords'?",
+    );
+    expect(() => new RemoteSink({ url: 'ws://127.0.0.1:1', backoff: { initialMS: 5 } } as never)).toThrow(
+      "Unknown option 'backoff.initialMS' of new RemoteSink(). Did you mean 'backoff.initialMs'?",
+    );
+    expect(() => new RemoteSink({ url: 'ws://127.0.0.1:1', ackTimeoutMs: -1 })).toThrow(/ackTimeoutMs' of new RemoteSink\(\) must be an integer from 1/);
+  });
+
+  it("accepts the server's http(s):// address and sends to its /ingest over WebSocket", () => {
+    // The address `tidemark serve` prints; the spill path is set at open, so only the URL is observable here.
+    expect(() => new RemoteSink({ url: 'http://127.0.0.1:7341' })).not.toThrow();
+    expect(() => new RemoteSink({ url: 'https://example.org' })).not.toThrow();
+    expect(() => new RemoteSink({ url: 'ftp://example.org' })).toThrow(/has scheme ftp:/);
   });
 });

@@ -287,7 +287,7 @@ describe('SQLite store: queries', () => {
     expect(s.series(run.id, 'batch_size', { last: 1 })).toEqual([{ step: ws[2999]!.step, value: 32 }]);
     expectCoded(() => s.series(run.id, 'grad_snr', { last: 0 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'last'/);
     expectCoded(() => s.series(run.id, 'grad_snr', { points: 1 }), TidemarkRangeError, 'TIDEMARK_ERR_OPTION_INVALID', /'points' must be an integer of at least 2; received 1/);
-    expectCoded(() => s.series(run.id, 'grad_snr', { point: 5 } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /unknown option 'point'. Did you mean 'points'\?/);
+    expectCoded(() => s.series(run.id, 'grad_snr', { point: 5 } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /Unknown option 'point' of series. Did you mean 'points'\?/);
   });
 
   it('filters runs by name substring, group, tags and status, newest first', () => {
@@ -312,7 +312,7 @@ describe('SQLite store: queries', () => {
     now += 30_001;
     expect(ids({ status: 'interrupted' })).toEqual(['r-0002']);
     expect(ids({ status: 'running' })).toEqual([]);
-    expectCoded(() => s.runs({ staus: 'running' } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /'staus'. Did you mean 'status'\?/);
+    expectCoded(() => s.runs({ staus: 'running' } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /'staus' of runs. Did you mean 'status'\?/);
     expectCoded(() => s.runs({ status: 'done' as never }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'status' must be running, finished, failed, interrupted; received "done"/);
   });
 
@@ -461,13 +461,13 @@ describe('SQLite store: bad input and faults', () => {
     s.close();
     s.close();
     expectCoded(() => s.runs(), TidemarkError, 'TIDEMARK_ERR_STORE_CLOSED', /was closed/);
-    expectCoded(() => openStore(freshPath(), { readOnly: true } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /'readOnly'. Did you mean 'readonly'\?/);
-    expectCoded(() => openStore(freshPath(), { staleAfterMs: -1 }), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /'staleAfterMs' must be a non-negative, finite number/);
+    expectCoded(() => openStore(freshPath(), { readOnly: true } as never), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_UNKNOWN', /'readOnly' of openStore. Did you mean 'readonly'\?/);
+    expectCoded(() => openStore(freshPath(), { staleAfterMs: -1 }), TidemarkRangeError, 'TIDEMARK_ERR_OPTION_INVALID', /'staleAfterMs' of openStore must be a number ≥ 0; received -1/);
     expectCoded(() => openStore(''), TidemarkTypeError, 'TIDEMARK_ERR_OPTION_INVALID', /path must be a non-empty string/);
   });
 
-  it('wraps a SQLite failure in a coded error with the cause, never SQLite text: a lock held past busyTimeout', () => {
-    const { s, run } = seeded(freshPath(), 1, { busyTimeout: 0 });
+  it('wraps a SQLite failure in a coded error with the cause, never SQLite text: a lock held past busyTimeoutMs', () => {
+    const { s, run } = seeded(freshPath(), 1, { busyTimeoutMs: 0 });
     const other = raw(s.path);
     other.prepare('BEGIN IMMEDIATE').run();
     try {
@@ -475,7 +475,7 @@ describe('SQLite store: bad input and faults', () => {
         () => s.append(windowRecs(fakeWindows(run, 2).slice(1))),
         TidemarkError,
         'TIDEMARK_ERR_STORE_WRITE',
-        /^append: could not write to ".*"; nothing of this call was kept \(SQLITE_BUSY: another connection held the database lock longer than busyTimeout; retry, or raise busyTimeout\)\.$/,
+        /^append: could not write to ".*"; nothing of this call was kept \(SQLITE_BUSY: another connection held the database lock longer than busyTimeoutMs; retry, or raise busyTimeoutMs\)\.$/,
       );
       expect(e.cause).toBeInstanceOf(Database.SqliteError);
       expect((e.cause as Error).message).not.toBe(e.message);

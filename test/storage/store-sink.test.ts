@@ -26,7 +26,7 @@ function fakeStore() {
 describe('store sink', () => {
   it('stores queued records in one transaction per flush', async () => {
     const { store, state } = fakeStore();
-    const sink = new StoreSink(() => store, { heartbeatInterval: 60_000 });
+    const sink = new StoreSink(() => store, { heartbeatIntervalMs: 60_000 });
     await sink.open(run);
     expect(state.begun).toEqual(['r1']);
     for (let i = 0; i < 5; i++) sink.write(note(i));
@@ -40,7 +40,7 @@ describe('store sink', () => {
 
   it('keeps records through failed flushes and stores them, in order, once the store accepts writes', async () => {
     const { store, state } = fakeStore();
-    const sink = new StoreSink(() => store, { heartbeatInterval: 60_000 });
+    const sink = new StoreSink(() => store, { heartbeatIntervalMs: 60_000 });
     await sink.open(run);
     state.refuse = true;
     sink.write(note(0));
@@ -57,7 +57,7 @@ describe('store sink', () => {
 
   it('drops the oldest records past its bound and counts them', async () => {
     const { store, state } = fakeStore();
-    const sink = new StoreSink(() => store, { heartbeatInterval: 60_000, maxQueued: 3 });
+    const sink = new StoreSink(() => store, { heartbeatIntervalMs: 60_000, maxQueued: 3 });
     await sink.open(run);
     state.refuse = true;
     for (let i = 0; i < 5; i++) sink.write(note(i));
@@ -70,7 +70,7 @@ describe('store sink', () => {
 
   it('heartbeats and flushes in the background', async () => {
     const { store, state } = fakeStore();
-    const sink = new StoreSink(() => store, { heartbeatInterval: 20 });
+    const sink = new StoreSink(() => store, { heartbeatIntervalMs: 20 });
     await sink.open(run);
     sink.write(note(0));
     await new Promise((r) => setTimeout(r, 120));
@@ -84,5 +84,21 @@ describe('store sink', () => {
       throw new Error('not a database');
     });
     await expect(sink.open(run)).rejects.toThrow('not a database');
+  });
+});
+
+describe('StoreSink options', () => {
+  const open = (): Store => {
+    throw new Error('not opened in these checks');
+  };
+  it('suggests the option meant for a misspelt name, and refuses a negative interval', () => {
+    expect(() => new StoreSink(open, { heartbeatIntervl: 5 } as never)).toThrow(
+      "Unknown option 'heartbeatIntervl' of new StoreSink(). Did you mean 'heartbeatIntervalMs'?",
+    );
+    expect(() => new StoreSink(open, { heartbeatInterval: 5 } as never)).toThrow("Did you mean 'heartbeatIntervalMs'?");
+    expect(() => new StoreSink(open, { heartbeatIntervalMs: -5 })).toThrow(
+      "Option 'heartbeatIntervalMs' of new StoreSink() must be an integer from 10 to 2147483647; received -5.",
+    );
+    expect(() => new StoreSink(open, { maxQueued: 0 })).toThrow(/maxQueued' of new StoreSink\(\) must be an integer ≥ 1/);
   });
 });
