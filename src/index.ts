@@ -38,8 +38,9 @@ export type {
   WindowQuery,
 } from './storage/store.js';
 export { StoreSink, type StoreSinkOptions } from './storage/store-sink.js';
-export { exportRun, importJsonl, type ExportFormat } from './storage/export.js';
+export { exportRun, importJsonl, type ExportFormat, type ImportReport } from './storage/export.js';
 export { RemoteSink, type RemoteSinkOptions } from './storage/remote-sink.js';
+export { resendSpill, type ResendOptions, type ResendReport } from './storage/resend.js';
 export { startServer, DEFAULT_PORT, type StartOptions, type RunningServer } from './server/serve.js';
 export { buildServer, type ServerOptions, type TidemarkServer, type ServerCounters } from './server/app.js';
 export type { ProbeOptions } from './callback/probe.js';

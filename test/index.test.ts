@@ -21,6 +21,7 @@ describe('public API', () => {
         'monitor',
         'openStore',
         'RemoteSink',
+        'resendSpill',
         'startServer',
         'buildServer',
         'DEFAULT_PORT',

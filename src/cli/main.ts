@@ -8,6 +8,7 @@ import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.
 import type { RunStatus } from '../protocol/records.js';
 import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
+import { resendSpill } from '../storage/resend.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
@@ -38,18 +39,29 @@ function version(): string {
   return pkg.version;
 }
 
-/** Accepts an ISO date/time or an age such as 30d, 12h, 90m. */
+/** A count, with thousands separators. */
+const count = (n: number): string => n.toLocaleString('en-US');
+
+const AGE_UNITS: Record<string, number> = { min: 60_000, h: 3_600_000, d: 86_400_000, w: 7 * 86_400_000 };
+
+/** Accepts an ISO date/time or an age such as 90min, 12h, 30d, 2w (`m` alone is refused: minutes or months?). */
 export function parseBefore(text: string, now = Date.now()): number {
-  const age = /^(\d+(?:\.\d+)?)([dhm])$/.exec(text.trim());
+  const age = /^(\d+(?:\.\d+)?)\s*([a-z]+)$/i.exec(text.trim());
   if (age) {
-    const unit = { d: 86_400_000, h: 3_600_000, m: 60_000 }[age[2] as 'd' | 'h' | 'm'];
+    const unit = AGE_UNITS[age[2]!.toLowerCase()];
+    if (unit === undefined) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_INVALID',
+        `--before: '${age[2]}' is not a unit of age${age[2]!.toLowerCase() === 'm' ? ' (minutes or months?)' : ''}; use min, h, d or w (90min, 12h, 30d, 2w), or a date such as 2026-11-30.`,
+      );
+    }
     return now - Number(age[1]) * unit;
   }
   const t = Date.parse(text);
   if (Number.isNaN(t)) {
     throw new TidemarkTypeError(
       'TIDEMARK_ERR_OPTION_INVALID',
-      `--before takes a date (2026-11-30, 2026-11-30T12:00Z) or an age (30d, 12h, 90m); received '${text}'.`,
+      `--before takes a date (2026-11-30, 2026-11-30T12:00Z) or an age (90min, 12h, 30d, 2w); received '${text}'.`,
     );
   }
   return t;
@@ -300,25 +312,58 @@ export function buildProgram(io: Io): Command {
 
   program
     .command('import')
-    .description('add a run from a JSON Lines export (or a JSON Lines store file)')
+    .description("add runs from a JSON Lines file: an export, a JSON Lines store, or a remote writer's spill file")
     .argument('<file>', 'JSON Lines file')
-    .action(async (file: string) => {
+    .option('--partial', 'import a file that is incomplete (a run without an end record, a cut last line); such runs read as interrupted')
+    .action(async (file: string, o: { partial?: boolean }) => {
       const store = openStore(db());
       try {
-        const ids = await importJsonl(store, file);
-        io.out(`Imported ${ids.length} run${ids.length === 1 ? '' : 's'}: ${ids.join(', ')}\n`);
+        const report = await importJsonl(store, file, { partial: o.partial === true });
+        for (const id of report.runs) {
+          const w = report.windows[id]!;
+          const state =
+            w.inFile > 0 && w.added === 0
+              ? 'already in the store, nothing new'
+              : `${count(w.added)} new window${w.added === 1 ? '' : 's'} of ${count(w.inFile)} in the file`;
+          io.out(`Imported run ${id}: ${state}${report.unended.includes(id) ? ' (no end record: reads as interrupted)' : ''}.\n`);
+        }
+        if (report.runs.length === 0) io.out('The file holds no runs.\n');
+        if (report.tornLastLine) io.out('The last line was cut off and was skipped.\n');
       } finally {
         store.close();
       }
     });
 
   program
+    .command('resend')
+    .description("send a remote writer's spill file (its unsent batches) to a tidemark server")
+    .argument('<file>', 'the spill file named in the writer\'s TIDEMARK_ERR_REMOTE_UNSENT message')
+    .requiredOption('--to <address>', "the server: http://host:port as 'tidemark serve' prints it, or ws://host:port")
+    .option('--token <token>', 'the server\'s token (default: $TIDEMARK_TOKEN, else none)')
+    .action(async (file: string, o: { to: string; token?: string }) => {
+      const token = o.token ?? process.env.TIDEMARK_TOKEN;
+      const r = await resendSpill(file, o.to, token !== undefined && token !== '' ? { token } : {});
+      io.out(
+        `Sent ${count(r.batches)} batch${r.batches === 1 ? '' : 'es'} (${count(r.records)} records) of run ${r.runs.join(', ') || '—'}` +
+          `${r.duplicates > 0 ? `; the server already had ${count(r.duplicates)} of them` : ''}. The file can be deleted.\n`,
+      );
+    });
+
+  program
     .command('delete')
     .description('delete a run and everything stored for it')
     .argument('<run>', 'run id, unique id prefix, or name')
-    .action((ref: string) => {
+    .option('--force', 'delete it even while it is still training')
+    .action((ref: string, o: { force?: boolean }) => {
       withStore(db(), false, (s) => {
         const run = s.resolveRun(ref);
+        if (run.status === 'running' && o.force !== true) {
+          const ago = Math.max(0, Math.round((Date.now() - run.heartbeat_at) / 1000));
+          throw new TidemarkError(
+            'TIDEMARK_ERR_RUN_LIVE',
+            `${printable(run.name)} (${run.id}) is still training (its writer was alive ${ago} s ago). Nothing was deleted. Stop the training first, or pass --force to delete it anyway (its writer will then fail to store what follows).`,
+          );
+        }
         s.deleteRun(run.id);
         io.out(`Deleted ${printable(run.name)} (${run.id}).\n`);
       });
@@ -327,11 +372,27 @@ export function buildProgram(io: Io): Command {
   program
     .command('prune')
     .description('delete runs started before a date or older than an age')
-    .requiredOption('--before <date|age>', 'e.g. 2026-11-01 or 30d')
-    .action((o: { before: string }) => {
+    .requiredOption('--before <date|age>', 'a date (2026-11-01) or an age: 90min, 12h, 30d, 2w')
+    .option('--dry-run', 'list what would be deleted, and delete nothing')
+    .action((o: { before: string; dryRun?: boolean }) => {
       const before = parseBefore(o.before);
-      const ids = withStore(db(), false, (s) => s.prune(before));
-      io.out(`Deleted ${ids.length} run${ids.length === 1 ? '' : 's'} started before ${fmtTime(before)}.\n`);
+      const plural = (n: number): string => `${n} run${n === 1 ? '' : 's'}`;
+      withStore(db(), o.dryRun === true, (s) => {
+        const old = s.runs({ limit: 1_000_000 }).filter((r) => r.created_at < before);
+        // A live run is never pruned, however old: its writer is still sending.
+        const live = old.filter((r) => r.status === 'running');
+        const doomed = old.filter((r) => r.status !== 'running');
+        let deleted = doomed.map((r) => r.id);
+        if (o.dryRun === true) io.out(`Would delete ${plural(doomed.length)} started before ${fmtTime(before)} (dry run: nothing deleted)${doomed.length > 0 ? ':' : '.'}\n`);
+        else {
+          deleted = s.prune(before);
+          io.out(`Deleted ${plural(deleted.length)} started before ${fmtTime(before)}${deleted.length > 0 ? ':' : '.'}\n`);
+        }
+        for (const r of doomed) if (deleted.includes(r.id)) io.out(`  ${printable(r.name)} (${r.id}, ${r.status})\n`);
+        if (live.length > 0) {
+          io.out(`Kept ${plural(live.length)} still training: ${live.map((r) => `${printable(r.name)} (${r.id})`).join(', ')}.\n`);
+        }
+      });
     });
 
   program

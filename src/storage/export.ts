@@ -12,9 +12,10 @@
 import { createReadStream } from 'node:fs';
 import { createInterface } from 'node:readline';
 import { TidemarkError, TidemarkTypeError } from '../errors.js';
+import { checkOptions } from '../option-check.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
 import { csvLine, type CsvValue } from './csv.js';
-import { decodeRecord, encodeRecord } from './sink.js';
+import { decodeRecord, encodeRecord, recordsOfLine } from './sink.js';
 import type { RunDetail, Store } from './store.js';
 
 export type ExportFormat = 'csv' | 'jsonl';
@@ -156,27 +157,125 @@ export function exportRun(store: Store, runId: string, format: ExportFormat): st
 /** Records appended per transaction while importing. */
 const IMPORT_BATCH = 500;
 
-/**
- * Appends the records of a JSON Lines file (an export, or a JSON Lines sink's file) to `store`, in
- * transactions of a few hundred records. Windows and markers the store already has are skipped, so
- * importing a file again, or after an interrupted import, completes it without doubling anything.
- * A run the file does not end keeps the time of its last window as its heartbeat, so it reads as
- * `interrupted`, as it was. A torn last line (a crash mid-write) is skipped.
- *
- * @returns the ids of the runs the file begins, in file order.
- * @throws TidemarkError TIDEMARK_ERR_FILE_READ when the file cannot be read; TidemarkTypeError
- *   TIDEMARK_ERR_RECORD_INVALID naming the line when a line is not a record.
- */
-export async function importJsonl(store: Store, path: string): Promise<string[]> {
-  const runs: string[] = [];
-  const started = new Map<string, number>();
-  const ended = new Set<string>();
-  const lastTime = new Map<string, number>();
-  let batch: SinkRecord[] = [];
-  let batchLine = 0;
+/** What an import found and did. */
+export interface ImportReport {
+  /** The runs the file holds (by their run records, or by their batches for a spill file), in file order. */
+  runs: string[];
+  /** Per run: windows in the file, and how many of them the store did not have before. */
+  windows: Record<string, { inFile: number; added: number }>;
+  /** Runs the file holds no end record for (the writer stopped, or the file was cut). */
+  unended: string[];
+  /** The last line was cut (a crash or copy mid-write) and was skipped. */
+  tornLastLine: boolean;
+}
+
+interface FileScan {
+  runs: string[];
+  windowsInFile: Map<string, number>;
+  withRunRecord: Set<string>;
+  ended: Set<string>;
+  tornLastLine: boolean;
+}
+
+/** Reads the whole file once without writing: what it holds, and whether it is complete. */
+async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: number) => void): Promise<FileScan> {
+  const scan: FileScan = { runs: [], windowsInFile: new Map(), withRunRecord: new Set(), ended: new Set(), tornLastLine: false };
   let pendingError: { line: number; error: unknown } | null = null;
   let lineNo = 0;
+  const see = (run: unknown): void => {
+    if (typeof run === 'string' && !scan.windowsInFile.has(run)) {
+      scan.windowsInFile.set(run, 0);
+      scan.runs.push(run);
+    }
+  };
+  try {
+    const lines = createInterface({ input: createReadStream(path, 'utf8'), crlfDelay: Infinity });
+    for await (const text of lines) {
+      lineNo++;
+      if (text.trim() === '') continue;
+      // A bad line is an error only if another line follows it: the last one may be torn by a crash.
+      if (pendingError !== null) throw badLine(path, pendingError.line, pendingError.error);
+      let records: SinkRecord[];
+      try {
+        records = recordsOfLine(decodeRecord(text));
+      } catch (error) {
+        pendingError = { line: lineNo, error };
+        continue;
+      }
+      for (const record of records) {
+        if (record.type === 'run' && typeof record.run?.id === 'string') {
+          see(record.run.id);
+          scan.withRunRecord.add(record.run.id);
+        } else if (record.type === 'end') {
+          see(record.run);
+          scan.ended.add(record.run);
+        } else if (record.type === 'window') {
+          see(record.window?.run);
+          scan.windowsInFile.set(record.window.run, (scan.windowsInFile.get(record.window.run) ?? 0) + 1);
+        }
+        onRecord?.(record, lineNo);
+      }
+    }
+  } catch (e) {
+    if (e instanceof TidemarkError || e instanceof TidemarkTypeError) throw e;
+    throw new TidemarkError('TIDEMARK_ERR_FILE_READ', `importJsonl: could not read ${JSON.stringify(path)} (${describe(e)}).`, { cause: e });
+  }
+  scan.tornLastLine = pendingError !== null;
+  return scan;
+}
 
+/** Windows the store holds for the run, or null when it does not know the run. */
+function windowsStored(store: Store, runId: string): number | null {
+  try {
+    const run = store.resolveRun(runId);
+    return run.id === runId ? run.windows : null;
+  } catch {
+    return null;
+  }
+}
+
+/**
+ * Appends the records of a JSON Lines file (an export, a JSON Lines sink's file, or a remote writer's spill
+ * file of batches) to `store`, in transactions of a few hundred records. Windows and markers the store
+ * already has are skipped, so importing a file again, or after an interrupted import, completes it without
+ * doubling anything (the report says how many windows were new).
+ *
+ * An incomplete file (a run without an end record, or a last line cut mid-write) is refused before anything
+ * is written unless `partial` is true; then the complete lines are imported and a run the file does not end
+ * keeps the time of its last window as its heartbeat, so it reads as `interrupted`, as it was.
+ *
+ * @throws TidemarkError TIDEMARK_ERR_IMPORT_INCOMPLETE (nothing written) for an incomplete file without
+ *   `partial`; TIDEMARK_ERR_FILE_READ when the file cannot be read; TidemarkTypeError
+ *   TIDEMARK_ERR_RECORD_INVALID naming the line when a line is not a record, or a spill file's run is unknown.
+ */
+export async function importJsonl(store: Store, path: string, options: { partial?: boolean } = {}): Promise<ImportReport> {
+  const { partial } = checkOptions<{ partial: boolean }>(options, { partial: { type: 'boolean' } }, { partial: false }, { owner: 'importJsonl' });
+  const scan = await scanJsonl(path);
+  const unended = scan.runs.filter((id) => !scan.ended.has(id));
+  if (!partial && (unended.length > 0 || scan.tornLastLine)) {
+    const what = [
+      ...(scan.tornLastLine ? ['its last line is cut off'] : []),
+      ...(unended.length > 0 ? [`run${unended.length === 1 ? '' : 's'} ${unended.join(', ')} ${unended.length === 1 ? 'has' : 'have'} no end record (the writer stopped or the file was cut)`] : []),
+    ];
+    throw new TidemarkError(
+      'TIDEMARK_ERR_IMPORT_INCOMPLETE',
+      `${path} is incomplete: ${what.join('; ')}. Nothing was imported. Import what is there with --partial (importJsonl(store, path, { partial: true })); such runs read as interrupted.`,
+    );
+  }
+  for (const id of scan.runs) {
+    if (!scan.withRunRecord.has(id) && windowsStored(store, id) === null) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_RECORD_INVALID',
+        `${path} holds records of run ${id} but not its run record, and this store does not know the run: it is a spill file whose first batches reached the server. Send it there with 'tidemark resend ${path} --to <server address>'.`,
+      );
+    }
+  }
+  const before = new Map(scan.runs.map((id) => [id, windowsStored(store, id) ?? 0]));
+  const lastTime = new Map<string, number>();
+  const started = new Map<string, number>();
+  let batch: SinkRecord[] = [];
+  let batchLine = 0;
+  let lineNo = 0;
   const flush = (): void => {
     if (batch.length === 0) return;
     try {
@@ -189,42 +288,28 @@ export async function importJsonl(store: Store, path: string): Promise<string[]>
     }
     batch = [];
   };
-
-  try {
-    const lines = createInterface({ input: createReadStream(path, 'utf8'), crlfDelay: Infinity });
-    for await (const text of lines) {
-      lineNo++;
-      if (text.trim() === '') continue;
-      // A bad line is an error only if another line follows it: the last one may be torn by a crash.
-      if (pendingError !== null) throw badLine(path, pendingError.line, pendingError.error);
-      let record: SinkRecord;
-      try {
-        record = decodeRecord(text);
-        if (typeof record !== 'object' || record === null || typeof record.type !== 'string') throw new Error('not a record');
-      } catch (error) {
-        pendingError = { line: lineNo, error };
-        continue;
-      }
-      if (batch.length === 0) batchLine = lineNo;
-      batch.push(record);
-      if (record.type === 'run' && typeof record.run?.id === 'string' && !started.has(record.run.id)) {
-        started.set(record.run.id, record.run.started_at);
-        runs.push(record.run.id);
-      } else if (record.type === 'end') ended.add(record.run);
-      else if (record.type === 'window' && typeof record.window?.time === 'number') {
-        lastTime.set(record.window.run, Math.max(lastTime.get(record.window.run) ?? -Infinity, record.window.time));
-      }
-      if (batch.length >= IMPORT_BATCH) flush();
+  await scanJsonl(path, (record, line) => {
+    lineNo = line;
+    if (batch.length === 0) batchLine = line;
+    if (record.type === 'run') {
+      // The store creates a run from its run record; a resent run record is a no-op.
+      if (!started.has(record.run.id)) started.set(record.run.id, record.run.started_at);
+    } else if (record.type === 'window' && typeof record.window?.time === 'number') {
+      lastTime.set(record.window.run, Math.max(lastTime.get(record.window.run) ?? -Infinity, record.window.time));
     }
-  } catch (e) {
-    if (e instanceof TidemarkError || e instanceof TidemarkTypeError) throw e;
-    throw new TidemarkError('TIDEMARK_ERR_FILE_READ', `importJsonl: could not read ${JSON.stringify(path)} (${describe(e)}).`, { cause: e });
-  }
+    batch.push(record);
+    if (batch.length >= IMPORT_BATCH) flush();
+  });
   flush();
-  for (const id of runs) {
-    if (!ended.has(id)) store.heartbeat(id, lastTime.get(id) ?? started.get(id)!);
+  for (const id of unended) {
+    const at = lastTime.get(id) ?? started.get(id);
+    if (at !== undefined) store.heartbeat(id, at);
   }
-  return runs;
+  const windows: ImportReport['windows'] = {};
+  for (const id of scan.runs) {
+    windows[id] = { inFile: scan.windowsInFile.get(id) ?? 0, added: (windowsStored(store, id) ?? 0) - (before.get(id) ?? 0) };
+  }
+  return { runs: scan.runs, windows, unended, tornLastLine: scan.tornLastLine };
 }
 
 function badLine(path: string, line: number, error: unknown): TidemarkTypeError {

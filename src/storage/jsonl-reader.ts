@@ -1,18 +1,21 @@
 import { createReadStream } from 'node:fs';
 import { createInterface } from 'node:readline';
 import type { RunInfo, SinkRecord, WindowRecord } from '../protocol/records.js';
-import { decodeRecord } from './sink.js';
+import { decodeRecord, recordsOfLine } from './sink.js';
 
 /** Reads a JSON Lines store record by record. A torn last line (a crash mid-write) is skipped. */
 export async function* readJsonl(path: string): AsyncGenerator<SinkRecord> {
   const lines = createInterface({ input: createReadStream(path, 'utf8'), crlfDelay: Infinity });
   for await (const line of lines) {
     if (line.trim() === '') continue;
+    let records: SinkRecord[];
     try {
-      yield decodeRecord(line);
+      records = recordsOfLine(decodeRecord(line));
     } catch {
       // Only the final line can be partial; anything else would be a corrupt file, still skipped.
+      continue;
     }
+    yield* records;
   }
 }
 

@@ -168,6 +168,13 @@ export class RemoteSink implements Sink {
     this.onError = options.onError ?? (() => {});
   }
 
+  /** The server's address without the token, for commands to print. */
+  private serverAddress(): string {
+    const u = new URL(this.shownUrl);
+    u.searchParams.delete('token');
+    return u.href;
+  }
+
   get dropped(): number {
     return this.droppedCount;
   }
@@ -278,7 +285,7 @@ export class RemoteSink implements Sink {
         ? this.batches.size > 0
           ? `They could not be kept in a file (${describeCause(this.spillError)}).`
           : ''
-        : `The unsent batches are in ${kept} (one batch message per line, in seq order).`;
+        : `The unsent batches are in ${kept} (one batch message per line, in seq order): send them with 'tidemark resend ${kept} --to ${this.serverAddress()}' once the server is up, or keep them in a local store with 'tidemark import ${kept}'.`;
     this.batches.clear();
     this.memBytes = 0;
     this.emit(
@@ -773,7 +780,8 @@ export class RemoteSink implements Sink {
 }
 
 /** Accepts `ws:` and `wss:` URLs with a host and without a fragment (RFC 6455 §3 forbids fragments). */
-function parseIngestUrl(raw: unknown): URL {
+/** The ingest URL for a server address: ws(s)://, or the http(s):// address `serve` prints; path /ingest by default. */
+export function parseIngestUrl(raw: unknown): URL {
   const bad = (why: string) =>
     new TidemarkTypeError('TIDEMARK_ERR_REMOTE_URL', `RemoteSink url ${JSON.stringify(raw)} ${why}; expected ws://host:port or wss://host:port, or the server's http(s):// address (path /ingest by default).`);
   if (typeof raw !== 'string') throw bad('is not a string');

@@ -37,3 +37,18 @@ export function decodeJson(text: string): unknown {
 export function decodeRecord(line: string): SinkRecord {
   return decodeJson(line) as SinkRecord;
 }
+
+/**
+ * The records one line of a JSON Lines file holds: the record itself, or, for a line of a remote writer's
+ * spill file (a `batch` message of the ingest protocol), the records of that batch.
+ */
+export function recordsOfLine(value: unknown): SinkRecord[] {
+  if (typeof value !== 'object' || value === null) throw new Error('not a record');
+  const v = value as { type?: unknown; records?: unknown };
+  if (v.type === 'batch') {
+    if (!Array.isArray(v.records)) throw new Error('a batch line without records');
+    return v.records as SinkRecord[];
+  }
+  if (typeof v.type !== 'string') throw new Error('not a record');
+  return [value as SinkRecord];
+}

@@ -1,5 +1,5 @@
 import { spawnSync } from 'node:child_process';
-import { mkdtempSync, readFileSync, rmSync } from 'node:fs';
+import { mkdtempSync, readFileSync, rmSync, writeFileSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { parse } from 'csv-parse/sync';
@@ -8,6 +8,7 @@ import { EXIT, main, parseBefore } from '../../src/cli/main.js';
 import { monitor } from '../../src/index.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
+import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-cli-'));
 afterAll(() => rmSync(dir, { recursive: true, force: true }));
@@ -135,9 +136,56 @@ describe('tidemark delete and prune', () => {
     expect(all.out).toContain('Deleted 2 runs');
   });
 
+  it('refuses to delete a run that is still training unless forced, and prune keeps it and says so', async () => {
+    const file = join(dir, 'live.db');
+    const store = openStore(file);
+    const live = fakeRun({ id: 'live-run-0001', started_at: Date.now() - 3_600_000 });
+    const old = fakeRun({ id: 'old-run-0001', started_at: Date.now() - 3_600_000 });
+    store.beginRun(live);
+    store.beginRun(old);
+    store.append([{ type: 'end', run: old.id, status: 'finished', step: 0, time: Date.now() - 3_500_000 }]);
+    store.heartbeat(live.id);
+    store.close();
+    const refused = await run('delete', live.id, '--db', file);
+    expect(refused.code).toBe(EXIT.failed);
+    expect(refused.err).toContain('is still training');
+    expect(refused.err).toContain('TIDEMARK_ERR_RUN_LIVE');
+    const dry = await run('prune', '--before', '30min', '--dry-run', '--db', file);
+    expect(dry.out).toContain('Would delete 1 run started before');
+    expect(dry.out).toContain('(old-run-0001, finished)');
+    expect(dry.out).toContain('Kept 1 run still training');
+    expect(JSON.parse((await run('runs', '--db', file, '--json')).out)).toHaveLength(2);
+    const pruned = await run('prune', '--before', '30min', '--db', file);
+    expect(pruned.out).toContain('Deleted 1 run started before');
+    expect(pruned.out).toContain('Kept 1 run still training: ');
+    expect((await run('delete', live.id, '--db', file, '--force')).code).toBe(EXIT.ok);
+    expect(JSON.parse((await run('runs', '--db', file, '--json')).out)).toEqual([]);
+  });
+
+  it('refuses an incomplete JSON Lines file unless --partial, and says when an import added nothing', async () => {
+    const file = join(dir, 'cut.jsonl');
+    const r = fakeRun({ id: 'cut-run-0001', started_at: 1_700_000_000_000 });
+    const ws = fakeWindows(r, 10, 2);
+    writeFileSync(file, [{ type: 'run', run: r }, ...ws.map((window) => ({ type: 'window', window }))].map((x) => JSON.stringify(x)).join('\n') + '\n{"type":"wind');
+    const copy = join(dir, 'cut.db');
+    const refused = await run('import', file, '--db', copy);
+    expect(refused.code).toBe(EXIT.failed);
+    expect(refused.err).toContain('is incomplete: its last line is cut off; run cut-run-0001 has no end record');
+    expect(refused.err).toContain('Nothing was imported');
+    const partial = await run('import', file, '--db', copy, '--partial');
+    expect(partial.code).toBe(EXIT.ok);
+    expect(partial.out).toBe('Imported run cut-run-0001: 10 new windows of 10 in the file (no end record: reads as interrupted).\nThe last line was cut off and was skipped.\n');
+    const again = await run('import', file, '--db', copy, '--partial');
+    expect(again.out).toContain('Imported run cut-run-0001: already in the store, nothing new');
+  });
+
   it('reads dates and ages for --before', () => {
     const now = Date.parse('2026-12-02T00:00:00Z');
     expect(parseBefore('30d', now)).toBe(now - 30 * 86_400_000);
+    expect(parseBefore('90min', now)).toBe(now - 90 * 60_000);
+    expect(parseBefore('2w', now)).toBe(now - 14 * 86_400_000);
+    // '10m' reads as months to many and as minutes to others: refused with the units that exist.
+    expect(() => parseBefore('10m', now)).toThrow("--before: 'm' is not a unit of age (minutes or months?); use min, h, d or w");
     expect(parseBefore('2026-11-01', now)).toBe(Date.parse('2026-11-01'));
     expect(() => parseBefore('last tuesday', now)).toThrow(/--before/);
   });

@@ -134,7 +134,7 @@ describe('JSON Lines export and import', () => {
     expect(lines.filter((r) => r.type !== 'marker')).toEqual(sorted(records).filter((r) => r.type !== 'marker'));
 
     const b = store();
-    expect(await importJsonl(b, file)).toEqual([run.id]);
+    expect((await importJsonl(b, file)).runs).toEqual([run.id]);
     expect(comparable(b.resolveRun(run.id))).toEqual(comparable(a.resolveRun(run.id)));
     expect(b.windows(run.id)).toEqual(a.windows(run.id));
     expect(b.markers(run.id)).toEqual(a.markers(run.id));
@@ -145,7 +145,7 @@ describe('JSON Lines export and import', () => {
     expect(exportRun(b, run.id, 'csv')).toEqual(exportRun(a, run.id, 'csv'));
   });
 
-  it("imports a JSON Lines sink's own file, twice without doubling, and an unended run reads as interrupted", async () => {
+  it("refuses a JSON Lines sink's own file cut mid-run unless partial; then imports it, twice without doubling, and the run reads as interrupted", async () => {
     const run = fakeRun({ id: 'sink-run-0001', started_at: 1_600_000_000_000 });
     const ws = fakeWindows(run, 20, 4);
     const file = join(dir, 'sink.jsonl');
@@ -157,8 +157,18 @@ describe('JSON Lines export and import', () => {
     // The process was killed mid-write: a torn last line.
     appendFileSync(file, '{"type":"window","window":{"run":"sink-run-0001","ind');
     const s = store();
-    expect(await importJsonl(s, file)).toEqual([run.id]);
-    expect(await importJsonl(s, file)).toEqual([run.id]);
+    await expect(importJsonl(s, file)).rejects.toMatchObject({
+      code: 'TIDEMARK_ERR_IMPORT_INCOMPLETE',
+      message: expect.stringContaining(`its last line is cut off; run ${run.id} has no end record`) as unknown,
+    });
+    expect(s.runs()).toEqual([]);
+    expect(await importJsonl(s, file, { partial: true })).toEqual({
+      runs: [run.id],
+      windows: { [run.id]: { inFile: 20, added: 20 } },
+      unended: [run.id],
+      tornLastLine: true,
+    });
+    expect((await importJsonl(s, file, { partial: true })).windows).toEqual({ [run.id]: { inFile: 20, added: 0 } });
     expect(s.windows(run.id)).toEqual(ws);
     expect(s.resolveRun(run.id)).toMatchObject({ status: 'interrupted', windows: 20, heartbeat_at: ws.at(-1)!.time, ended_at: null });
   });
@@ -169,9 +179,13 @@ describe('JSON Lines export and import', () => {
     writeFileSync(file, `${JSON.stringify({ type: 'run', run: fakeRun({ id: 'bad-0001' }) })}\nnot json\n{"type":"end"}\n`);
     await expect(importJsonl(s, file)).rejects.toThrow(expect.objectContaining({ code: 'TIDEMARK_ERR_RECORD_INVALID', message: expect.stringMatching(/bad\.jsonl, line 2: not a JSON record/) }));
     writeFileSync(file, `${JSON.stringify({ type: 'window', window: { run: 'nobody' } })}\n`);
-    const e = await importJsonl(s, file).catch((x: unknown) => x);
+    const e = await importJsonl(s, file, { partial: true }).catch((x: unknown) => x);
     expect(e).toBeInstanceOf(TidemarkTypeError);
-    expect(e).toMatchObject({ code: 'TIDEMARK_ERR_RECORD_INVALID', message: expect.stringMatching(/bad\.jsonl, lines 1–1: append: record 0: window\.index must be a finite number/) });
+    expect(e).toMatchObject({ code: 'TIDEMARK_ERR_RECORD_INVALID', message: expect.stringMatching(/holds records of run nobody but not its run record/) });
+    const known = fakeRun({ id: 'bad-0002' });
+    writeFileSync(file, `${JSON.stringify({ type: 'run', run: known })}\n${JSON.stringify({ type: 'window', window: { run: known.id } })}\n`);
+    const e2 = await importJsonl(s, file, { partial: true }).catch((x: unknown) => x);
+    expect(e2).toMatchObject({ code: 'TIDEMARK_ERR_RECORD_INVALID', message: expect.stringMatching(/bad\.jsonl, lines 1–2: append: record 1: window\.index must be a finite number/) });
     const missing = await importJsonl(s, join(dir, 'missing.jsonl')).catch((x: unknown) => x);
     expect(missing).toBeInstanceOf(TidemarkError);
     expect(missing).toMatchObject({ code: 'TIDEMARK_ERR_FILE_READ', message: expect.stringMatching(/could not read ".*missing\.jsonl" \(ENOENT\)/) });
