@@ -30,6 +30,7 @@ export const ERROR_CODES = {
   TIDEMARK_ERR_RUN_AMBIGUOUS: 'More than one run matches the given id prefix or name.',
   TIDEMARK_ERR_RECORD_INVALID: 'A record given to the store, or a line of an import file, is malformed.',
   TIDEMARK_ERR_IMPORT_INCOMPLETE: 'A file to import is incomplete (a run without an end record, or a cut last line); nothing was imported.',
+  TIDEMARK_ERR_FILE_WRITE: 'An output file could not be written (a directory, a missing directory, no permission).',
   TIDEMARK_ERR_FILE_READ: 'A file to import could not be read.',
   TIDEMARK_ERR_UNAUTHORIZED: 'A request or connection to the server lacked the right token, or came from a page of another origin.',
   TIDEMARK_ERR_REQUEST_INVALID: 'An HTTP request to the server had a bad parameter or body.',

@@ -16,7 +16,8 @@ export function fmtDb(x: number | null | undefined): string {
 
 export function fmtTime(ms: number | null): string {
   if (ms === null) return '—';
-  return new Date(ms).toISOString().replace('T', ' ').slice(0, 19);
+  // Stored times are UTC; say so, since a reader's clock may not be.
+  return `${new Date(ms).toISOString().replace('T', ' ').slice(0, 19)} UTC`;
 }
 
 /** Left-aligns the first column, right-aligns the rest. */

@@ -2,7 +2,8 @@
  * The `tidemark` command. Exit codes: 0 success; 1 a failure while working (unreadable store, write
  * error); 2 a usage error; 3 the named run does not exist or is ambiguous.
  */
-import { readFileSync, writeFileSync } from 'node:fs';
+import { readFileSync, statSync, writeFileSync } from 'node:fs';
+import { join } from 'node:path';
 import { Command, CommanderError, Option } from 'commander';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.js';
 import type { RunStatus } from '../protocol/records.js';
@@ -169,9 +170,19 @@ function renderShow(store: Store, run: RunDetail): string {
   out.push('');
   if (markers.length === 0) out.push('  no markers');
   else {
-    const rows = [['marker', 'layer', 'step', 'known at', 'confidence']];
+    // Online markers came from the run as it trained; offline ones from 'tidemark analyze --write' with other settings.
+    const rows = [['marker', 'layer', 'step', 'known at', 'confidence', 'source', 'detail']];
     for (const m of markers) {
-      rows.push([m.kind, m.layer === null ? '(network)' : printable(m.layer, 40), String(m.step), String(m.detected_step), fmt(m.confidence, 2)]);
+      const verdict = m.kind === 'advice' && typeof m.details.verdict === 'string' ? m.details.verdict : '';
+      rows.push([
+        m.kind,
+        m.layer === null ? '(network)' : printable(m.layer, 40),
+        String(m.step),
+        String(m.detected_step),
+        fmt(m.confidence, 2),
+        m.details.source === 'offline' ? 'offline' : 'online',
+        verdict,
+      ]);
     }
     out.push(table(rows, '  '));
   }
@@ -225,7 +236,54 @@ function parseTag(value: string, previous: Record<string, string> = {}): Record<
   return { ...previous, [value.slice(0, i)]: value.slice(i + 1) };
 }
 
-function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T): T {
+/**
+ * Says what is wrong with a store path before SQLite does (it would answer SQLITE_CANTOPEN or an I/O error):
+ * a directory, or a file that does not exist where one is needed. Only `import` creates a store.
+ */
+function checkStorePath(db: string, create: boolean): void {
+  let isDir = false;
+  let exists = false;
+  try {
+    const st = statSync(db);
+    exists = true;
+    isDir = st.isDirectory();
+  } catch {
+    exists = false;
+  }
+  if (isDir) {
+    throw new TidemarkError(
+      'TIDEMARK_ERR_STORE_OPEN',
+      `${db} is a directory, not a store file. Point --db (or TIDEMARK_DB) at a file, such as ${join(db, 'tidemark.db')}.`,
+    );
+  }
+  if (!exists && !create) {
+    throw new TidemarkError(
+      'TIDEMARK_ERR_STORE_OPEN',
+      `There is no store at ${db}. A monitored training run creates one (monitor(model) writes tidemark.db in its working directory; 'npm run demo' makes one to look at), 'tidemark import FILE --db ${db}' creates one from a JSON Lines file, or point --db (or TIDEMARK_DB) at an existing store.`,
+    );
+  }
+}
+
+/** Writes an output file, with a coded error that says what is wrong with the path. */
+function writeOut(path: string, text: string): void {
+  try {
+    writeFileSync(path, text);
+  } catch (e) {
+    const code = (e as { code?: string }).code ?? '';
+    const why =
+      code === 'EISDIR'
+        ? 'it is a directory: give a file name, such as ' + join(path, 'run.csv')
+        : code === 'ENOENT'
+          ? 'its directory does not exist'
+          : code === 'EACCES' || code === 'EPERM'
+            ? 'permission denied'
+            : code || (e as Error).message;
+    throw new TidemarkError('TIDEMARK_ERR_FILE_WRITE', `Could not write ${path} (${why}).`, { cause: e });
+  }
+}
+
+function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T, create = false): T {
+  checkStorePath(db, create);
   const store = openStore(db, { readonly });
   try {
     return fn(store);
@@ -306,7 +364,7 @@ export function buildProgram(io: Io): Command {
     .option('--out <file>', 'write to a file instead of standard output')
     .action((ref: string, o: { format: 'csv' | 'jsonl'; out?: string }) => {
       const text = withStore(db(), true, (s) => exportRun(s, s.resolveRun(ref).id, o.format));
-      if (o.out !== undefined) writeFileSync(o.out, text);
+      if (o.out !== undefined) writeOut(o.out, text);
       else io.out(text);
     });
 
@@ -316,6 +374,7 @@ export function buildProgram(io: Io): Command {
     .argument('<file>', 'JSON Lines file')
     .option('--partial', 'import a file that is incomplete (a run without an end record, a cut last line); such runs read as interrupted')
     .action(async (file: string, o: { partial?: boolean }) => {
+      checkStorePath(db(), true);
       const store = openStore(db());
       try {
         const report = await importJsonl(store, file, { partial: o.partial === true });
@@ -454,6 +513,13 @@ export function buildProgram(io: Io): Command {
     .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate', SERVER_RULES.ingestRate))
     .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
       const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
+      checkStorePath(db(), true);
+      let fresh = false;
+      try {
+        statSync(db());
+      } catch {
+        fresh = true;
+      }
       const running = await startServer({
         db: db(),
         ...(o.port !== undefined ? { port: o.port } : {}),
@@ -466,7 +532,10 @@ export function buildProgram(io: Io): Command {
         onError: (e) => io.err(`tidemark serve: ${(e as Error).stack ?? String(e)}\n`),
       });
       io.out(`tidemark serving ${db()} at ${running.url}\n`);
-      io.out(`  page ${running.url}/   metrics ${running.url}/metrics   ingest ${running.url.replace(/^http/, 'ws')}/ingest\n`);
+      if (fresh) io.out(`  ${db()} did not exist: this is a new, empty store (runs that write to it, or to the ingest address, will appear).\n`);
+      // With a token, the page link carries it (the page sends it on every request), so the printed link opens.
+      const pageLink = token !== null && token !== '' ? `${running.url}/?token=${encodeURIComponent(token)}` : `${running.url}/`;
+      io.out(`  page ${pageLink}   metrics ${running.url}/metrics   ingest ${running.url.replace(/^http/, 'ws')}/ingest\n`);
       await new Promise<void>((resolve) => {
         const stop = (): void => {
           process.off('SIGINT', stop);

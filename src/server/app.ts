@@ -3,7 +3,7 @@
  * JSON schema per route), the live stream for viewers and the ingest endpoint for remote writers (ws, on
  * the same HTTP server), and `/metrics` in the OpenMetrics text format.
  */
-import { checkOptions, type OptionSchema } from '../option-check.js';
+import { checkOptions, closestName, type OptionSchema } from '../option-check.js';
 import { existsSync } from 'node:fs';
 import { readFile, stat } from 'node:fs/promises';
 import type { IncomingMessage } from 'node:http';
@@ -144,6 +144,13 @@ async function staticFile(name: string): Promise<{ body: Buffer; type: string } 
 }
 
 const bad = (message: string): TidemarkError => new TidemarkError('TIDEMARK_ERR_REQUEST_INVALID', message);
+
+/** `from` after `to` selects nothing by construction: a caller's mistake, said as such. */
+function checkRange(from: number | undefined, to: number | undefined): void {
+  if (from !== undefined && to !== undefined && from > to) {
+    throw bad(`Query parameters 'from' (${from}) and 'to' (${to}): from must not be greater than to.`);
+  }
+}
 
 /** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
 /** Names, types and ranges of the server's options (the store is checked by its own type). */
@@ -301,6 +308,21 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     async (req) => {
       const run = store.resolveRun((req.params as { id: string }).id);
       const q = req.query as { metric: string; layer?: string; from?: number; to?: number; points?: number };
+      checkRange(q.from, q.to);
+      // An unknown metric or layer is a mistake of the caller, not an empty series (docs/protocol.md).
+      const keys = store.seriesKeys(run.id);
+      if (keys.length > 0) {
+        const layer = q.layer ?? null;
+        if (!keys.some((k) => k.metric === q.metric)) {
+          const metrics = [...new Set(keys.map((k) => k.metric))].sort();
+          const best = closestName(q.metric, metrics);
+          throw bad(`Query parameter 'metric': this run has no series '${q.metric}'.${best !== null ? ` Did you mean '${best}'?` : ''} Its metrics: ${metrics.join(', ')}.`);
+        }
+        if (!keys.some((k) => k.metric === q.metric && k.layer === layer)) {
+          const layers = keys.filter((k) => k.metric === q.metric).map((k) => (k.layer === null ? '(none: the network)' : k.layer));
+          throw bad(`Query parameter 'layer': '${q.metric}' has no series for ${layer === null ? 'the network' : `layer '${layer}'`}. It has: ${layers.join(', ')}.`);
+        }
+      }
       const points = store.series(run.id, q.metric, {
         layer: q.layer ?? null,
         ...(q.from !== undefined ? { from: q.from } : {}),
@@ -328,6 +350,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     async (req) => {
       const run = store.resolveRun((req.params as { id: string }).id);
       const q = req.query as { after?: number; from?: number; to?: number; points?: number; variables?: boolean };
+      checkRange(q.from, q.to);
       const query: WindowQuery = {};
       for (const key of ['after', 'from', 'to', 'points'] as const) if (q[key] !== undefined) query[key] = q[key];
       if (q.variables !== undefined) query.variables = q.variables;
@@ -507,17 +530,20 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     if (!hub.send(viewer, message)) viewer.behind.set(run.id, after);
   };
 
+  // Everything the server runs besides fastify stops inside fastify's own lifecycle, so `app.close()` is the one
+  // teardown: the watcher stops polling before the caller can close the store.
+  app.addHook('preClose', async () => {
+    watcher.stop();
+    hub.close();
+    for (const ws of ingestSockets) ws.terminate();
+    wss.close();
+  });
+
   return {
     app,
     counters,
     hub,
-    close: async () => {
-      watcher.stop();
-      hub.close();
-      for (const ws of ingestSockets) ws.terminate();
-      wss.close();
-      await app.close();
-    },
+    close: () => app.close(),
   };
 }
 

@@ -75,7 +75,13 @@ export async function startServer(options: StartOptions = {}): Promise<RunningSe
     if (owned) store.close();
     const code = (e as { code?: string }).code;
     if (code === 'EADDRINUSE' || code === 'EACCES' || code === 'EADDRNOTAVAIL') {
-      throw new TidemarkError('TIDEMARK_ERR_SERVE_LISTEN', `Cannot listen on ${host}:${port} (${code}). Pick another port, or stop what is using it.`, { cause: e });
+      const what =
+        code === 'EADDRINUSE'
+          ? 'something else is listening there. Pick another port (--port), or stop what is using it'
+          : code === 'EACCES'
+            ? 'no permission: ports below 1024 need privileges. Pick a port of 1024 or more'
+            : `${host} is not an address of this machine. Use 127.0.0.1 (the default), or one of this machine's addresses`;
+      throw new TidemarkError('TIDEMARK_ERR_SERVE_LISTEN', `Cannot listen on ${host}:${port} (${code}): ${what}.`, { cause: e });
     }
     throw e;
   }

@@ -1,4 +1,4 @@
-import { spawnSync } from 'node:child_process';
+import { spawn, spawnSync } from 'node:child_process';
 import { mkdtempSync, readFileSync, rmSync, writeFileSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
@@ -6,6 +6,7 @@ import { parse } from 'csv-parse/sync';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
 import { EXIT, main, parseBefore } from '../../src/cli/main.js';
 import { monitor } from '../../src/index.js';
+import { startServer } from '../../src/server/serve.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
@@ -250,6 +251,12 @@ describe('tidemark analyze', () => {
     // The online markers stay as they were; the offline ones come in addition.
     expect(stored.filter((m) => m.details.source !== 'offline').length).toBe(count);
     expect(stored.some((m) => m.details.source === 'offline')).toBe(true);
+    // show tells the online markers from the offline ones, and gives each advice marker its verdict.
+    const shown = await run('show', 'to-analyze', '--db', file);
+    const markerLines = shown.out.split('\n').filter((l) => /^\s+(drift-start|diffusion-start|advice)\s/.test(l));
+    expect(markerLines.some((l) => /\sonline(\s|$)/.test(l))).toBe(true);
+    expect(markerLines.some((l) => /\soffline(\s|$)/.test(l))).toBe(true);
+    for (const l of markerLines.filter((x) => x.trim().startsWith('advice'))) expect(l).toMatch(/(continue|may-stop|stop)\s*$/);
   });
 });
 
@@ -293,5 +300,64 @@ describe('tidemark analyze: settings are range-checked (the built command)', () 
     const r = cli('runs', '--db', file, '--limit', 'abc');
     expect(r.status).toBe(EXIT.usage);
     expect(r.stderr).toContain("--limit must be an integer from 1 to 1000000; received 'abc'");
+  });
+});
+
+describe('messages for a wrong path or address (the built command)', () => {
+  const cli = (...args: string[]) => spawnSync(process.execPath, ['dist/cli/bin.js', ...args], { encoding: 'utf8', cwd: process.cwd() });
+
+  it('says there is no store at a path that does not exist, and creates nothing', () => {
+    const missing = join(dir, 'nothing-here.db');
+    const r = cli('runs', '--db', missing);
+    expect(r.status).toBe(EXIT.failed);
+    expect(r.stderr).toContain(`There is no store at ${missing}. A monitored training run creates one`);
+    expect(r.stderr).not.toContain('SQLITE_');
+    expect(() => readFileSync(missing)).toThrow();
+  });
+
+  it('says a directory is a directory', () => {
+    const r = cli('runs', '--db', dir);
+    expect(r.status).toBe(EXIT.failed);
+    expect(r.stderr).toContain(`${dir} is a directory, not a store file`);
+  });
+
+  it('says why export --out cannot write a directory', () => {
+    const file = join(dir, 'one.db');
+    const store = openStore(file);
+    const one = fakeRun({ id: 'one-run-0001' });
+    store.beginRun(one);
+    store.close();
+    const r = cli('export', one.id, '--db', file, '--format', 'csv', '--out', dir);
+    expect(r.status).toBe(EXIT.failed);
+    expect(r.stderr).toContain(`Could not write ${dir} (it is a directory: give a file name`);
+    expect(r.stderr).toContain('TIDEMARK_ERR_FILE_WRITE');
+  });
+
+  it('serve says when its store is new and empty, and prints the page link with its token', async () => {
+    const fresh = join(dir, 'typo.db');
+    const child = spawn(process.execPath, ['dist/cli/bin.js', 'serve', '--db', fresh, '--port', '0', '--token', 'tok-en/12345'], { stdio: ['ignore', 'pipe', 'pipe'] });
+    let out = '';
+    child.stdout.on('data', (d: Buffer) => void (out += d.toString()));
+    const deadline = Date.now() + 20_000;
+    while (!out.includes('new, empty store') && Date.now() < deadline && child.exitCode === null) await new Promise((r) => setTimeout(r, 100));
+    child.kill('SIGINT');
+    await new Promise((r) => child.once('exit', r));
+    expect(out).toContain(`${fresh} did not exist: this is a new, empty store`);
+    expect(out).toMatch(/page http:\/\/127\.0\.0\.1:\d+\/\?token=tok-en%2F12345 /);
+  });
+});
+
+describe('startServer on an address this machine does not have', () => {
+  it('says so instead of advising another port', async () => {
+    const store = openStore(':memory:');
+    try {
+      // 192.0.2.1 is TEST-NET-1 (RFC 5737): never assigned to a machine.
+      await expect(startServer({ store, host: '192.0.2.1', port: 0, token: 'a-long-enough-token' })).rejects.toMatchObject({
+        code: 'TIDEMARK_ERR_SERVE_LISTEN',
+        message: expect.stringContaining('192.0.2.1 is not an address of this machine') as unknown,
+      });
+    } finally {
+      store.close();
+    }
   });
 });

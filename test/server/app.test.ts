@@ -129,6 +129,39 @@ describe('HTTP API', () => {
     }
   });
 
+  it('answers an unknown metric or layer, and from > to, with 400 naming the parameter and what exists (docs/protocol.md)', async () => {
+    const { server, store } = await serve();
+    const { run } = seed(store);
+    const get = async (q: string) => {
+      const r = await server.app.inject(`/api/runs/${run.id}/${q}`);
+      return { status: r.statusCode, error: (r.json() as { error?: { code: string; message: string } }).error };
+    };
+    const metric = await get('series?metric=weight_nrom');
+    expect(metric.status).toBe(400);
+    expect(metric.error).toMatchObject({ code: 'TIDEMARK_ERR_REQUEST_INVALID' });
+    expect(metric.error!.message).toContain("Query parameter 'metric': this run has no series 'weight_nrom'. Did you mean 'weight_norm'?");
+    const layer = await get('series?metric=weight_norm&layer=no_such_layer');
+    expect(layer.status).toBe(400);
+    expect(layer.error!.message).toContain("Query parameter 'layer': 'weight_norm' has no series for layer 'no_such_layer'. It has: ");
+    expect(layer.error!.message).toContain('dense_Dense2');
+    const range = await get('series?metric=weight_norm&layer=dense_Dense2&from=50&to=10');
+    expect(range.status).toBe(400);
+    expect(range.error!.message).toContain("'from' (50) and 'to' (10): from must not be greater than to");
+    expect((await get('windows?from=50&to=10')).status).toBe(400);
+    expect((await get('series?metric=weight_norm&layer=dense_Dense2&from=10&to=50')).status).toBe(200);
+  });
+
+  it("stops everything with fastify's own app.close(): no polling of a store closed after it", async () => {
+    const store = openStore(':memory:');
+    const errors: unknown[] = [];
+    const server = await buildServer({ store, pollMs: 10, onError: (e) => void errors.push(e) });
+    await server.app.listen({ host: '127.0.0.1', port: 0 });
+    await server.app.close();
+    store.close();
+    await new Promise((r) => setTimeout(r, 200));
+    expect(errors).toEqual([]);
+  });
+
   it('never shows a database message to a client', async () => {
     const store = openStore(':memory:');
     const broken = Object.create(store) as SqliteStore;
