@@ -143,6 +143,10 @@ async function staticFile(name: string): Promise<{ body: Buffer; type: string } 
   }
 }
 
+/** A wave under a dashed line: the tide and its mark. */
+export const FAVICON_SVG =
+  "<svg xmlns='http://www.w3.org/2000/svg' viewBox='0 0 16 16'><path d='M1 10c2-3 4-3 7 0s5 3 7 0' fill='none' stroke='#0b6e75' stroke-width='2'/><path d='M2 4h12' stroke='#889' stroke-width='1.5' stroke-dasharray='2 2'/></svg>";
+
 const bad = (message: string): TidemarkError => new TidemarkError('TIDEMARK_ERR_REQUEST_INVALID', message);
 
 /** `from` after `to` selects nothing by construction: a caller's mistake, said as such. */
@@ -234,7 +238,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     }
     const path = req.url.split('?')[0]!;
     // The health check, the page and its bundle (/static/…) carry no data; everything else needs the token.
-    if (token === null || path === '/healthz' || path === '/' || path.startsWith('/static/')) return;
+    if (token === null || path === '/healthz' || path === '/' || path === '/favicon.ico' || path.startsWith('/static/')) return;
     if (!tokenMatches(token, tokenOf(req.raw))) {
       await sendError(reply, new TidemarkError('TIDEMARK_ERR_UNAUTHORIZED', 'This server needs a token: send Authorization: Bearer <token> or ?token=<token>.'));
     }
@@ -244,6 +248,8 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
   const queryOf = (props: Record<string, unknown>) => ({ type: 'object', properties: { token: { type: 'string' }, ...props }, additionalProperties: false });
 
   app.get('/healthz', async () => ({ status: 'ok' }));
+  // The page names its icon inline; browsers that ask for /favicon.ico anyway get the same drawing, not a 404.
+  app.get('/favicon.ico', async (_req, reply) => reply.type('image/svg+xml').header('cache-control', 'max-age=86400').send(FAVICON_SVG));
 
   // The page: `options.page` when given, else the built page in dist/web, else (not built) the placeholder.
   const builtPage = existsSync(resolvePath(WEB_DIR, 'index.html')) ? resolvePath(WEB_DIR, 'index.html') : null;

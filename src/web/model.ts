@@ -194,7 +194,9 @@ export function adviceSentence(a: AdviceView): string {
         ? 'Stop advice: training may be near the point where it stops paying off'
         : 'Stop advice: keep training';
   const at = a.step === null ? ' (no stop advice so far)' : ` (since step ${a.step})`;
-  return `${head}${at}.${a.reason === null ? '' : ` Reason: ${a.reason}.`}`;
+  // Reasons are whole sentences that end in their own full stop.
+  const reason = a.reason === null ? '' : ` Reason: ${a.reason.trim().replace(/[.\s]+$/, '')}.`;
+  return `${head}${at}.${reason}`;
 }
 
 /** Short text for a marker's details: scalar values only, numbers rounded. */

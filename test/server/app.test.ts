@@ -2,6 +2,7 @@
  * The server in-process: HTTP routes through fastify's inject, WebSocket ingest and live stream through
  * the ws package's own client (an independent implementation of RFC 6455) on a loopback port.
  */
+import { readFileSync } from 'node:fs';
 import { connect, type AddressInfo } from 'node:net';
 import { afterEach, describe, expect, it } from 'vitest';
 import WebSocket from 'ws';
@@ -9,7 +10,7 @@ import type { IngestReply, LiveMessage as ViewerBound } from '../../src/protocol
 
 type LiveMessage = ViewerBound | IngestReply;
 import type { SinkRecord, WindowRecord } from '../../src/protocol/records.js';
-import { buildServer, type ServerOptions, type TidemarkServer } from '../../src/server/app.js';
+import { buildServer, FAVICON_SVG, type ServerOptions, type TidemarkServer } from '../../src/server/app.js';
 import { withoutVariables } from '../../src/protocol/records.js';
 import { exportRun } from '../../src/storage/export.js';
 import { decodeJson, encodeJson } from '../../src/storage/sink.js';
@@ -433,6 +434,26 @@ describe('buildServer options', () => {
       );
       await expect(buildServer({ store: {} as never })).rejects.toThrow(/must be a Store/);
     } finally {
+      store.close();
+    }
+  });
+});
+
+describe('favicon', () => {
+  it('answers /favicon.ico with the icon the page names inline, without a token', async () => {
+    const store = openStore(':memory:');
+    const server = await buildServer({ store, token: 'a-long-enough-token', onError: () => {} });
+    try {
+      const r = await server.app.inject('/favicon.ico');
+      expect(r.statusCode).toBe(200);
+      expect(r.headers['content-type']).toContain('image/svg+xml');
+      expect(r.body).toBe(FAVICON_SVG);
+      const html = readFileSync(new URL('../../src/web/index.html', import.meta.url), 'utf8');
+      const inline = /<link rel="icon" href="data:image\/svg\+xml,([^"]+)">/.exec(html);
+      expect(inline).not.toBeNull();
+      expect(decodeURIComponent(inline![1]!).replace(/"/g, "'")).toBe(FAVICON_SVG);
+    } finally {
+      await server.close();
       store.close();
     }
   });

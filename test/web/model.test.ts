@@ -113,6 +113,10 @@ describe('page model', () => {
     expect(a).toEqual({ verdict: 'stop', reason: 'r50', step: 50 });
     expect(adviceSentence(a)).toContain('since step 50');
     expect(adviceSentence(latestAdvice([]))).toContain('keep training');
+    // A reason that ends in a full stop (as the advisor writes them) gets one full stop, not two.
+    const ended = adviceSentence({ verdict: 'may-stop', reason: 'Confirm on held-out data before stopping.', step: 7 });
+    expect(ended).toMatch(/Reason: Confirm on held-out data before stopping\.$/);
+    expect(ended).not.toContain('..');
     expect(CAUTION).toMatch(/estimates.*held-out data/);
   });
 

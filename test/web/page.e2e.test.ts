@@ -81,9 +81,15 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     const page = await browser.newPage({ viewport: { width: 1200, height: 900 } });
     const errors: string[] = [];
     page.on('pageerror', (e) => errors.push(String(e)));
+    // Every request the page makes on load is answered (no favicon 404, no missing asset).
+    const missing: string[] = [];
+    page.on('response', (r) => {
+      if (r.status() === 404) missing.push(r.url());
+    });
     await page.goto(`${server.url}/`);
     const row = page.locator(`tr[data-run="${run.id}"]`);
     await row.waitFor({ timeout: 10_000 });
+    expect(missing).toEqual([]);
     expect(await row.textContent()).toContain('gearbox-e2e');
     expect(await row.textContent()).toContain('lr=0.05');
 
