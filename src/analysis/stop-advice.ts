@@ -64,9 +64,25 @@ export interface AdviceTrend {
   worth: number;
 }
 
+/**
+ * Which rule decided the verdict: the reason's kind, stable while its numbers change. A new stage is worth a
+ * marker (the page and `show` then give the reason that holds now), a new number within one is not.
+ */
+export type AdviceStage =
+  | 'phase-unknown'
+  | 'network-drift'
+  | 'layers-drift'
+  | 'layers-unknown'
+  | 'short-diffusion'
+  | 'watch-missing'
+  | 'few-values'
+  | 'still-gaining'
+  | 'flat';
+
 export interface Advice {
   step: number;
   verdict: Verdict;
+  stage: AdviceStage;
   reason: string;
   /** The quantity watched, and its best value so far. */
   watched: string | null;
@@ -77,6 +93,11 @@ export interface Advice {
   trend: AdviceTrend | null;
   /** Values in a row at which the trend test found no gain worth having. */
   flat_values: number;
+}
+
+/** Whether `next` is worth a marker after `previous`: the first advice, a new verdict, or a new stage. */
+export function adviceChanged(previous: Advice | null, next: Advice): boolean {
+  return previous === null || previous.verdict !== next.verdict || previous.stage !== next.stage;
 }
 
 export interface AdviceInput {
@@ -196,16 +217,16 @@ export class StopAdvisor {
     if (fresh) this.flat = trend !== null && trend.gain_upper < trend.worth ? this.flat + 1 : 0;
     const base = { step: w.step, watched: watch, best: this.best, stale_windows: this.stale, trend, flat_values: this.flat };
     const what = watch ?? 'the loss';
-    const cont = (reason: string): Advice => ({ ...base, verdict: 'continue', reason });
+    const cont = (stage: AdviceStage, reason: string): Advice => ({ ...base, verdict: 'continue', stage, reason });
 
     const drifting = Object.entries(phase.layers).filter(([, ph]) => ph === 'drift').map(([l]) => l);
     const unknown = Object.entries(phase.layers).filter(([, ph]) => ph === 'undetermined').map(([l]) => l);
-    if (phase.network === 'drift') return cont('The network is still drifting: its weights move more along the mean gradient than by minibatch noise, so training is making directed progress.');
-    if (phase.network !== 'diffusion' || phase.networkSince === null) return cont('Not enough windows yet to tell drift from diffusion.');
+    if (phase.network === 'drift') return cont('network-drift', 'The network is still drifting: its weights move more along the mean gradient than by minibatch noise, so training is making directed progress.');
+    if (phase.network !== 'diffusion' || phase.networkSince === null) return cont('phase-unknown', 'Not enough windows yet to tell drift from diffusion.');
     if (drifting.length > 0) {
-      return cont(`The network diffuses, but ${drifting.length === 1 ? `layer ${drifting[0]} still drifts` : `layers ${drifting.join(', ')} still drift`}: training is still making directed progress there.`);
+      return cont('layers-drift', `The network diffuses, but ${drifting.length === 1 ? `layer ${drifting[0]} still drifts` : `layers ${drifting.join(', ')} still drift`}: training is still making directed progress there.`);
     }
-    if (unknown.length > 0) return cont(`The network diffuses, but the phase of ${unknown.join(', ')} is not known yet.`);
+    if (unknown.length > 0) return cont('layers-unknown', `The network diffuses, but the phase of ${unknown.join(', ')} is not known yet.`);
 
     const diffusionSince = Math.max(phase.networkSince, ...Object.values(phase.since).map((s) => s ?? 0));
     const diffusionSteps = w.step - diffusionSince;
@@ -216,28 +237,29 @@ export class StopAdvisor {
         ? `Every layer has diffused for ${plural(diffusionSteps, 'step')} (no drift phase was seen before)`
         : `Every layer has diffused for ${plural(diffusionSteps, 'step')} (the drift before lasted ${plural(driftSteps, 'step')})`;
     if (driftSteps !== null && diffusionSteps < r * driftSteps) {
-      return cont(`${phaseText}; diffusion this short often still improves generalisation: waiting for ${plural(Math.ceil(r * driftSteps), 'step')} of it.`);
+      return cont('short-diffusion', `${phaseText}; diffusion this short often still improves generalisation: waiting for ${plural(Math.ceil(r * driftSteps), 'step')} of it.`);
     }
     if (trend === null && watch !== null && !this.logged.has(watch)) {
       const names = [...this.logged].sort();
       return cont(
+        'watch-missing',
         `${phaseText}; '${watch}' has not appeared in the logs${names.length > 0 ? ` (logged: ${names.join(', ')})` : ''}, so its trend cannot be judged. Check the name given to watch.`,
       );
     }
     if (trend === null) {
-      return cont(`${phaseText}; ${what} has ${plural(this.inLastDoubling(w.step), 'value')} in the last doubling of the training, fewer than the ${p} its trend test needs.`);
+      return cont('few-values', `${phaseText}; ${what} has ${plural(this.inLastDoubling(w.step), 'value')} in the last doubling of the training, fewer than the ${p} its trend test needs.`);
     }
     const units = (x: number): string => (higher && Math.abs(this.best ?? 0) <= 1 ? `${signed(100 * x, 2)} points` : signed(x, 2));
     const trendText =
       `over the last doubling of the training (${trend.values} values) ${what} changed at a rate of ${units(trend.gain)} per doubling, ` +
       `at most ${units(trend.gain_upper)} (95 % upper bound)`;
-    if (trend.gain_upper >= trend.worth) return cont(`${phaseText}; ${trendText}: another doubling may still gain ${units(trend.worth)} or more.`);
+    if (trend.gain_upper >= trend.worth) return cont('still-gaining', `${phaseText}; ${trendText}: another doubling may still gain ${units(trend.worth)} or more.`);
     const longEnough = driftSteps === null || diffusionSteps >= 2 * r * driftSteps;
     const caution = 'An estimate: confirm on held-out data before stopping.';
     if (this.flat >= p && longEnough) {
-      return { ...base, verdict: 'stop', reason: `${phaseText}; ${trendText}, below the ${units(trend.worth)} worth having, for ${plural(this.flat, 'value')} in a row. ${caution}` };
+      return { ...base, verdict: 'stop', stage: 'flat', reason: `${phaseText}; ${trendText}, below the ${units(trend.worth)} worth having, for ${plural(this.flat, 'value')} in a row. ${caution}` };
     }
-    return { ...base, verdict: 'may-stop', reason: `${phaseText}; ${trendText}, below the ${units(trend.worth)} worth having. ${caution}` };
+    return { ...base, verdict: 'may-stop', stage: 'flat', reason: `${phaseText}; ${trendText}, below the ${units(trend.worth)} worth having. ${caution}` };
   }
 
   /** Values logged in the last doubling of the training (after step/2); they are the newest, so counted from the end. */

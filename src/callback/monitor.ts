@@ -9,7 +9,7 @@ import * as tf from '@tensorflow/tfjs';
 import { snrFloor } from '../analysis/gradient-stats.js';
 import { travelExponent } from '../analysis/travel-exponent.js';
 import { PhaseDetector } from '../analysis/phase-detector.js';
-import { StopAdvisor, type Advice } from '../analysis/stop-advice.js';
+import { adviceChanged, StopAdvisor, type Advice } from '../analysis/stop-advice.js';
 import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
 import { codeOf, describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
@@ -456,13 +456,13 @@ class MonitorSession implements Monitor {
     if (sink !== null) sink.flush().catch((e) => this.report('TIDEMARK_ERR_SINK_WRITE', e));
   }
 
-  /** Phase changes become markers as they are found; the advice is a marker when its verdict changes. */
+  /** Phase changes become markers as they are found; the advice is a marker when its verdict or stage changes. */
   private judge(record: WindowRecord): void {
     for (const c of this.detector.update(record)) this.addMarker({ run: this.runId, ...c, details: { ...c.details, source: 'online' } });
     const advice = this.advisor.update(record, this.detector.snapshot());
     const previous = this.lastAdvice;
     this.lastAdvice = advice;
-    if (previous?.verdict !== advice.verdict && !(previous === null && advice.verdict === 'continue')) {
+    if (adviceChanged(previous, advice)) {
       this.addMarker({
         run: this.runId,
         layer: null,
@@ -470,7 +470,7 @@ class MonitorSession implements Monitor {
         step: record.step,
         detected_step: record.step,
         confidence: 1,
-        details: { verdict: advice.verdict, reason: advice.reason, watched: advice.watched, best: advice.best, source: 'online' },
+        details: { verdict: advice.verdict, stage: advice.stage, reason: advice.reason, watched: advice.watched, best: advice.best, source: 'online' },
       });
     }
     if (advice.verdict === 'stop' && this.opts.advice.act && this.inFit && !this.model.stopTraining) {

@@ -5,7 +5,7 @@
 import { TidemarkRangeError } from '../errors.js';
 import { closestName } from '../option-check.js';
 import { detectPhases, type PhaseChange, type PhaseOptions } from '../analysis/phase-detector.js';
-import { adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
+import { adviceChanged, adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
 import type { Marker } from '../protocol/records.js';
 import type { Store } from '../storage/store.js';
 
@@ -68,7 +68,7 @@ export function analyzeRun(store: Store, runId: string, phases: PhaseOptions, ad
   const { states, changes } = detectPhases(windows, phases);
   const advices = adviseStop(windows, states, advice);
   const online = store.markers(runId).filter((m) => PHASE_KINDS.has(m.kind) && m.details.source !== 'offline');
-  const adviceChanges = advices.filter((a, i) => i === 0 ? a.verdict !== 'continue' : a.verdict !== advices[i - 1]!.verdict);
+  const adviceChanges = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a));
   return {
     runId,
     windows: windows.length,
@@ -94,7 +94,7 @@ export function offlineMarkers(result: AnalyzeResult, settings: Record<string, u
     step: a.step,
     detected_step: a.step,
     confidence: 1,
-    details: { verdict: a.verdict, reason: a.reason, source: 'offline', settings },
+    details: { verdict: a.verdict, stage: a.stage, reason: a.reason, source: 'offline', settings },
   }));
   return [...phaseMarkers, ...adviceMarkers];
 }

@@ -1,6 +1,6 @@
 import { describe, expect, it } from 'vitest';
 import { detectPhases, type PhaseName, type PhaseSnapshot } from '../../src/analysis/phase-detector.js';
-import { ADVICE_DEFAULTS, adviseStop, doublingGain, StopAdvisor, type Advice, type AdviceInput } from '../../src/analysis/stop-advice.js';
+import { ADVICE_DEFAULTS, adviceChanged, adviseStop, doublingGain, StopAdvisor, type Advice, type AdviceInput } from '../../src/analysis/stop-advice.js';
 import { mulberry32 } from '../helpers/random.js';
 import { NOISE_DB, snrSeries, spreadDrop, switchAt, constantSnr } from '../helpers/snr-series.js';
 
@@ -206,6 +206,21 @@ describe('StopAdvisor (rules of thumb: common practice, no source)', () => {
     const right = new StopAdvisor({ patience: 5, watch: 'val_loss' });
     for (let i = 0; i < 40; i++) last = right.update({ step: 110 + 10 * i, logs: { loss: 1, val_loss: 1 } }, diffusing);
     expect(last!.verdict).toBe('stop');
+  });
+
+  it('names the rule behind each verdict (its stage), and a marker is due at the first advice and at each new verdict or stage', () => {
+    const s = script(60, (i) => ({ loss: 1 / (1 + i) }));
+    const advice = adviseStop(s.inputs, s.states);
+    expect(advice[0]!.stage).toBe('phase-unknown');
+    expect(advice.find((a) => a.step === 500)!.stage).toBe('network-drift');
+    const changes = advice.filter((a, i) => adviceChanged(i === 0 ? null : advice[i - 1]!, a));
+    expect(changes[0]).toBe(advice[0]);
+    for (let i = 1; i < changes.length; i++) {
+      const before = changes[i - 1]!;
+      expect(before.stage !== changes[i]!.stage || before.verdict !== changes[i]!.verdict).toBe(true);
+    }
+    // Between two changes nothing new: the same verdict and stage.
+    expect(advice.length).toBeGreaterThan(changes.length);
   });
 
   it('with no loss logged it never advises stopping', () => {

@@ -113,6 +113,9 @@ describe('page model', () => {
     expect(a).toEqual({ verdict: 'stop', reason: 'r50', step: 50 });
     expect(adviceSentence(a)).toContain('since step 50');
     expect(adviceSentence(latestAdvice([]))).toContain('keep training');
+    // A continue with its reason (the monitor writes one at the first advice and at each new stage) shows it.
+    const cont = latestAdvice([{ run: 'r', layer: null, kind: 'advice', step: 8, detected_step: 8, confidence: 1, details: { verdict: 'continue', stage: 'network-drift', reason: 'The network is still drifting.' } }]);
+    expect(adviceSentence(cont)).toBe('Stop advice: keep training (since step 8). Reason: The network is still drifting.');
     // A reason that ends in a full stop (as the advisor writes them) gets one full stop, not two.
     const ended = adviceSentence({ verdict: 'may-stop', reason: 'Confirm on held-out data before stopping.', step: 7 });
     expect(ended).toMatch(/Reason: Confirm on held-out data before stopping\.$/);
