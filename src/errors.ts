@@ -17,6 +17,7 @@ export const ERROR_CODES = {
   TIDEMARK_ERR_NONFINITE: 'NaN or infinite gradient values were seen and kept out of the statistics.',
   TIDEMARK_ERR_PROBE_INVALID: 'The probe set does not fit the model, its targets do not fit the probe set, or it would exceed its memory budget.',
   TIDEMARK_ERR_NOISE: 'A noise measurement could not run (no training rows, or the model failed on them); the window is kept without a noise scale.',
+  TIDEMARK_ERR_GRADIENTS_ZERO: 'Every gradient of a layer, or of the whole network, was exactly zero in a window: it no longer learns.',
   TIDEMARK_ERR_ADVICE_WATCH: 'The quantity advice.watch names is not in the training logs, so the stop advice cannot judge it.',
   TIDEMARK_ERR_PROBE: 'The activation probe failed or met non-finite activations during training; the window is kept without (some) probe values.',
   TIDEMARK_ERR_STORE_OPEN: 'The store file could not be opened: missing, not a SQLite file, or not a tidemark store.',

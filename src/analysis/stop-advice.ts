@@ -69,6 +69,7 @@ export interface AdviceTrend {
  * marker (the page and `show` then give the reason that holds now), a new number within one is not.
  */
 export type AdviceStage =
+  | 'gradients-zero'
   | 'phase-unknown'
   | 'network-drift'
   | 'layers-drift'
@@ -100,9 +101,29 @@ export function adviceChanged(previous: Advice | null, next: Advice): boolean {
   return previous === null || previous.verdict !== next.verdict || previous.stage !== next.stage;
 }
 
+/** The gradient sizes of a window's network or layer entry, to tell a network that no longer learns. */
+export interface AdviceGradients {
+  grad_mean_norm: number;
+  grad_std_norm: number;
+}
+
 export interface AdviceInput {
   step: number;
   logs: Record<string, number>;
+  /** The window's per-layer and network gradient sizes (a WindowRecord has them); optional for scripted input. */
+  layers?: Record<string, AdviceGradients>;
+  network?: AdviceGradients;
+}
+
+/** Exactly zero mean and spread: every minibatch gradient of the window was zero. */
+function vanished(g: AdviceGradients | undefined): boolean {
+  return g !== undefined && g.grad_mean_norm === 0 && g.grad_std_norm === 0;
+}
+
+/** The layers of a window whose every minibatch gradient was exactly zero, and whether the whole network's were. */
+export function zeroGradients(w: AdviceInput): { network: boolean; layers: string[] } {
+  const layers = Object.entries(w.layers ?? {}).filter(([, g]) => vanished(g)).map(([name]) => name);
+  return { network: vanished(w.network), layers };
 }
 
 const ACCURACY_NAMES = ['val_acc', 'val_accuracy'];
@@ -219,8 +240,18 @@ export class StopAdvisor {
     const what = watch ?? 'the loss';
     const cont = (stage: AdviceStage, reason: string): Advice => ({ ...base, verdict: 'continue', stage, reason });
 
+    const zero = zeroGradients(w);
+    if (zero.network) {
+      return cont(
+        'gradients-zero',
+        'Every gradient of this window was exactly zero: the network no longer learns (every unit dead, or a learning rate that broke it). Its phase cannot be told; lower the learning rate or start again from new weights.',
+      );
+    }
     const drifting = Object.entries(phase.layers).filter(([, ph]) => ph === 'drift').map(([l]) => l);
-    const unknown = Object.entries(phase.layers).filter(([, ph]) => ph === 'undetermined').map(([l]) => l);
+    // A layer whose gradients are all exactly zero has no phase and never will: it does not hold the advice.
+    const unknown = Object.entries(phase.layers)
+      .filter(([l, ph]) => ph === 'undetermined' && !zero.layers.includes(l))
+      .map(([l]) => l);
     if (phase.network === 'drift') return cont('network-drift', 'The network is still drifting: its weights move more along the mean gradient than by minibatch noise, so training is making directed progress.');
     if (phase.network !== 'diffusion' || phase.networkSince === null) return cont('phase-unknown', 'Not enough windows yet to tell drift from diffusion.');
     if (drifting.length > 0) {

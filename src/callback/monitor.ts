@@ -9,7 +9,7 @@ import * as tf from '@tensorflow/tfjs';
 import { snrFloor } from '../analysis/gradient-stats.js';
 import { travelExponent } from '../analysis/travel-exponent.js';
 import { PhaseDetector } from '../analysis/phase-detector.js';
-import { adviceChanged, StopAdvisor, type Advice } from '../analysis/stop-advice.js';
+import { adviceChanged, StopAdvisor, zeroGradients, type Advice } from '../analysis/stop-advice.js';
 import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
 import { codeOf, describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
 import type {
@@ -306,6 +306,16 @@ class MonitorSession implements Monitor {
     }
   }
 
+  /** Said once: gradients that are all exactly zero mean units or the whole network no longer learn. */
+  private checkGradientsAlive(record: WindowRecord): void {
+    const zero = zeroGradients(record);
+    if (!zero.network && zero.layers.length === 0) return;
+    const what = zero.network
+      ? 'every gradient of the network was exactly zero: it no longer learns (every unit dead, or a learning rate that broke it)'
+      : `every gradient of ${zero.layers.length === 1 ? `layer ${zero.layers[0]}` : `layers ${zero.layers.join(', ')}`} was exactly zero: ${zero.layers.length === 1 ? 'it no longer learns' : 'they no longer learn'} (dead units)`;
+    this.report('TIDEMARK_ERR_GRADIENTS_ZERO', `In the window ending at step ${record.step}, ${what}.`, 'Phases cannot be told there; lower the learning rate or start again from new weights.');
+  }
+
   /** Once, at the first epoch end: a watched quantity that fit does not log is said at once, not discovered later. */
   private checkWatched(logs: Record<string, unknown> | undefined): void {
     const watch = this.opts.advice.watch;
@@ -459,6 +469,7 @@ class MonitorSession implements Monitor {
   /** Phase changes become markers as they are found; the advice is a marker when its verdict or stage changes. */
   private judge(record: WindowRecord): void {
     for (const c of this.detector.update(record)) this.addMarker({ run: this.runId, ...c, details: { ...c.details, source: 'online' } });
+    this.checkGradientsAlive(record);
     const advice = this.advisor.update(record, this.detector.snapshot());
     const previous = this.lastAdvice;
     this.lastAdvice = advice;

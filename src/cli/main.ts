@@ -13,7 +13,7 @@ import { resendSpill } from '../storage/resend.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { RunDetail, RunRow, Store } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
-import { ADVICE_DEFAULTS, ADVICE_RULES } from '../analysis/stop-advice.js';
+import { ADVICE_DEFAULTS, ADVICE_RULES, zeroGradients } from '../analysis/stop-advice.js';
 import { describeRule, satisfies, type OptionRule } from '../option-check.js';
 import { SERVER_RULES } from '../server/app.js';
 import { analyzeRun, offlineMarkers, type AnalyzeResult } from './analyze.js';
@@ -99,9 +99,9 @@ interface LatestRow {
   noise: { value: number; step: number } | null;
 }
 
-function latest(store: Store, run: RunDetail): { step: number | null; rows: LatestRow[]; logs: Record<string, number> } {
+function latest(store: Store, run: RunDetail): { step: number | null; rows: LatestRow[]; logs: Record<string, number>; zero: { network: boolean; layers: string[] } } {
   const step = run.last_step;
-  if (step === null) return { step, rows: [], logs: {} };
+  if (step === null) return { step, rows: [], logs: {}, zero: { network: false, layers: [] } };
   const at = (metric: string, layer: string | null): number | null => {
     const pts = store.series(run.id, metric, { layer, from: step, to: step });
     return pts.length > 0 ? pts[pts.length - 1]!.value : null;
@@ -126,7 +126,7 @@ function latest(store: Store, run: RunDetail): { step: number | null; rows: Late
       if (v !== null) logs[key.metric] = v;
     }
   }
-  return { step, rows, logs };
+  return { step, rows, logs, zero: last === undefined ? { network: false, layers: [] } : zeroGradients(last) };
 }
 
 function renderShow(store: Store, run: RunDetail): string {
@@ -158,6 +158,8 @@ function renderShow(store: Store, run: RunDetail): string {
       ]);
     }
     out.push(table(rows, '  '));
+    if (l.zero.network) out.push('  Every gradient of the last window was exactly zero: the network no longer learns (dead units, or a learning rate that broke it).');
+    else if (l.zero.layers.length > 0) out.push(`  Every gradient of ${l.zero.layers.join(', ')} was exactly zero in the last window: dead units, no longer learning.`);
     out.push(
       '  SNR dB: the last window\'s gradient SNR (mean over spread of its minibatches). level dB: what the phases follow,',
       '  the weights\' movement along the mean gradient against the noise\'s (above 0 drift). The noise scale is measured',
