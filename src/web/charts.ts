@@ -264,8 +264,8 @@ export function zeroDbLine(u: uPlot): void {
   ctx.restore();
 }
 
-/** Tick labels for a log axis (uPlot passes null for the ticks it leaves unlabelled). */
-export const logValues = (_u: uPlot, ticks: (number | null)[]): string[] => ticks.map((t) => (t === null ? '' : formatNumber(t)));
+/** Tick labels for any axis (uPlot passes null for the ticks it leaves unlabelled): short, never 9999999e+30. */
+export const tickValues = (_u: uPlot, ticks: (number | null)[]): string[] => ticks.map((t) => (t === null ? '' : formatNumber(t)));
 
 /**
  * The step axis, logarithmic. Its range is exactly the data's (or the zoom's): uPlot's default log range
@@ -280,7 +280,7 @@ export const xLog: uPlot.Scale = { time: false, distr: 3, range: (_u, min, max) 
 export function stepChart(yLabel: string, logWidth?: number): Pick<uPlot.Options, 'scales' | 'axes'> {
   return {
     scales: { x: xLog, y: logWidth === undefined ? { auto: true } : { distr: 3 } },
-    axes: [{ label: 'step (log scale)', values: logValues }, logWidth === undefined ? { label: yLabel } : { label: yLabel, values: logValues, size: logWidth }],
+    axes: [{ label: 'step (log scale)', values: tickValues }, logWidth === undefined ? { label: yLabel, values: tickValues } : { label: yLabel, values: tickValues, size: logWidth }],
   };
 }
 

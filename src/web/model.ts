@@ -208,9 +208,13 @@ export function detailsText(details: Record<string, unknown>): string {
 }
 
 export function formatNumber(v: number): string {
-  if (!Number.isFinite(v)) return String(v);
+  if (Number.isNaN(v)) return '—';
+  if (!Number.isFinite(v)) return v > 0 ? '∞' : '−∞';
+  const a = Math.abs(v);
+  // Very large or small values in short scientific form: a diverged run's 1e31 must not fill an axis.
+  if (a !== 0 && (a >= 1e6 || a < 1e-3)) return v.toExponential(1);
   if (Number.isInteger(v)) return String(v);
-  return Math.abs(v) >= 100 || Math.abs(v) < 0.01 ? v.toPrecision(3) : v.toFixed(2);
+  return a >= 100 ? v.toPrecision(3) : v.toFixed(2);
 }
 
 // ---------------------------------------------------------------------------------------------

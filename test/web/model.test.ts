@@ -3,6 +3,7 @@ import type { Marker } from '../../src/protocol/records.js';
 import {
   CAUTION,
   adviceSentence,
+  formatNumber,
   compareHash,
   compareLabels,
   currentPhase,
@@ -104,6 +105,20 @@ describe('page model', () => {
     expect(cols.series[0]![1]).toBeCloseTo(ws[1]!.layers.dense_Dense1!.grad_snr_db, 12);
     expect(cols.series[3]![1]).toBeCloseTo(ws[1]!.network.grad_snr_db, 12);
     expect(cols.floor[0]).toBeCloseTo(20 * Math.log10(1 / Math.sqrt(8)), 12);
+  });
+
+  it('formats axis ticks and values short: scientific form for very large or small, marks for non-finite', () => {
+    // A diverged run's weight travel of 1e31 used to read "9999999e+30" on the compare view's axis.
+    expect(formatNumber(1e31)).toBe('1.0e+31');
+    expect(formatNumber(9_999_999)).toBe('1.0e+7');
+    expect(formatNumber(-2.5e-5)).toBe('-2.5e-5');
+    expect(formatNumber(123_456)).toBe('123456');
+    expect(formatNumber(123.456)).toBe('123');
+    expect(formatNumber(3.14159)).toBe('3.14');
+    expect(formatNumber(0)).toBe('0');
+    expect(formatNumber(Number.NaN)).toBe('—');
+    expect(formatNumber(Infinity)).toBe('∞');
+    expect(formatNumber(-Infinity)).toBe('−∞');
   });
 
   it('reports the latest advice and keeps the caution about held-out data', () => {
