@@ -3,7 +3,7 @@
  * here), and a small holder for the uPlot line charts that redraws in place while the series stay the same.
  */
 import uPlot from 'uplot';
-import { formatNumber, NETWORK_LABEL, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
+import { formatNumber, NETWORK_LABEL, stripTicks, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY, layerStyle } from './palette.js';
 
 const SVG_NS = 'http://www.w3.org/2000/svg';
@@ -53,8 +53,11 @@ const GAP = 3;
 export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis: StripAxis): void {
   const lmin = Math.log10(axis.min);
   const span = Math.log10(axis.max) - lmin || 1;
-  const x = (s: number): number => axis.left + (axis.plotWidth * (Math.log10(Math.max(s, axis.min)) - lmin)) / span;
-  const height = rows.length * (ROW + GAP) + 2;
+  const x = (s: number): number => axis.left + (axis.plotWidth * (Math.log10(Math.min(Math.max(s, axis.min), axis.max)) - lmin)) / span;
+  const inRange = (s: number): boolean => s >= axis.min && s <= axis.max;
+  const labels = stripTicks(axis.min, axis.max, axis.plotWidth);
+  const rowsHeight = rows.length * (ROW + GAP) + 2;
+  const height = rowsHeight + (labels.length > 0 ? AXIS_HEIGHT : 0);
   const root = svg('svg', { width: axis.width, height, viewBox: `0 0 ${axis.width} ${height}`, role: 'img', 'aria-label': 'Phase of each layer against step' });
   const hatch = svg(
     'pattern',
@@ -67,6 +70,8 @@ export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis
     const y = 1 + i * (ROW + GAP);
     const g = svg('g', { class: 'phase-row', 'data-layer': row.label });
     for (const seg of row.segments) {
+      // Zoomed in, a segment outside the range is not drawn, and one across its edge is cut there.
+      if (seg.to < axis.min || seg.from > axis.max) continue;
       const x0 = x(seg.from);
       const w = Math.max(x(seg.to) - x0, 1);
       const fill = seg.phase === 'diffusion' ? 'url(#tm-diffusion-hatch)' : PHASE_FILL[seg.phase];
@@ -79,6 +84,8 @@ export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis
       );
     }
     for (const t of row.ticks) {
+      // A marker outside the zoomed range is not drawn (it used to sit on the edge as if it were there).
+      if (!inRange(t.step)) continue;
       const tx = x(t.step);
       g.append(
         svg(
@@ -108,8 +115,23 @@ export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis
     );
     root.append(g);
   });
+  // Step labels under the strip: on a log axis the first few hundred steps take most of the width.
+  if (labels.length > 0) {
+    const g = svg('g', { class: 'strip-axis', 'data-testid': 'strip-axis' });
+    for (const s of labels) {
+      const sx = x(s);
+      g.append(
+        svg('line', { x1: sx, x2: sx, y1: rowsHeight, y2: rowsHeight + 4, stroke: '#555' }),
+        svg('text', { x: sx, y: rowsHeight + AXIS_HEIGHT - 2, 'text-anchor': 'middle', 'font-size': 10, fill: '#333' }, formatNumber(s)),
+      );
+    }
+    root.append(g);
+  }
   box.replaceChildren(root);
 }
+
+const AXIS_HEIGHT = 16;
+
 
 /** The phase legend: a swatch and the phase in words, plus the tick. */
 export function phaseLegend(): HTMLElement {

@@ -217,6 +217,26 @@ export function formatNumber(v: number): string {
   return a >= 100 ? v.toPrecision(3) : v.toFixed(2);
 }
 
+/** Steps to label on the strip's log axis: 1, 2, 5 × powers of ten inside the range, at least 48 px apart. */
+export function stripTicks(min: number, max: number, plotWidth: number): number[] {
+  if (!(min > 0) || !(max > min) || !(plotWidth > 0)) return [];
+  const lmin = Math.log10(min);
+  const span = Math.log10(max) - lmin;
+  const out: number[] = [];
+  let lastX = -Infinity;
+  for (let e = Math.floor(lmin); e <= Math.ceil(Math.log10(max)); e++) {
+    for (const m of [1, 2, 5]) {
+      const s = m * 10 ** e;
+      if (s < min || s > max) continue;
+      const px = (plotWidth * (Math.log10(s) - lmin)) / span;
+      if (px - lastX < 48) continue;
+      out.push(s);
+      lastX = px;
+    }
+  }
+  return out;
+}
+
 // ---------------------------------------------------------------------------------------------
 // The further charts of the run view: phase strip, weight travel, loss, noise scale, information plane.
 

@@ -4,6 +4,7 @@ import {
   CAUTION,
   adviceSentence,
   formatNumber,
+  stripTicks,
   compareHash,
   compareLabels,
   currentPhase,
@@ -105,6 +106,16 @@ describe('page model', () => {
     expect(cols.series[0]![1]).toBeCloseTo(ws[1]!.layers.dense_Dense1!.grad_snr_db, 12);
     expect(cols.series[3]![1]).toBeCloseTo(ws[1]!.network.grad_snr_db, 12);
     expect(cols.floor[0]).toBeCloseTo(20 * Math.log10(1 / Math.sqrt(8)), 12);
+  });
+
+  it('labels the phase strip\'s log step axis at 1, 2, 5 × 10^k inside the range, never closer than 48 px', () => {
+    expect(stripTicks(1, 6000, 800)).toEqual([1, 2, 5, 10, 20, 50, 100, 200, 500, 1000, 2000, 5000]);
+    expect(stripTicks(800, 1600, 800)).toEqual([1000]);
+    // Narrow: fewer labels, still in order and inside the range.
+    const narrow = stripTicks(1, 6000, 200);
+    expect(narrow.length).toBeLessThan(8);
+    expect(narrow.every((s, i) => s >= 1 && s <= 6000 && (i === 0 || s > narrow[i - 1]!))).toBe(true);
+    expect(stripTicks(0, 10, 800)).toEqual([]);
   });
 
   it('formats axis ticks and values short: scientific form for very large or small, marks for non-finite', () => {

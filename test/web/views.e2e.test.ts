@@ -46,6 +46,13 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     store.append(windowRecords(fakeWindows(b, 16, 2, false)));
     store.beginRun(long);
     store.append(windowRecords(fakeWindows(long, LONG, 3, false)));
+    // Network markers before, inside and after the 800–1600 zoom of the test below.
+    store.append(
+      [100, 1200, 3000].map((step, i): SinkRecord => ({
+        type: 'marker',
+        marker: { run: long.id, layer: null, kind: i % 2 === 0 ? 'diffusion-start' : 'drift-start', step, detected_step: step + 16, confidence: 0.8, details: {} },
+      })),
+    );
     server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
     browser = await launchChromium();
   }, 120_000);
@@ -172,6 +179,14 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
     // Phase level, window SNR, travel, loss and noise scale.
     await page.waitForFunction(() => document.querySelectorAll('[data-testid$="-chart"][data-steps="800-1600"]').length === 5);
     expect(await shown()).toEqual(['800-1600', '800-1600', '800-1600', '800-1600', '800-1600']);
+    // The phase strip draws only the marker inside the range (those at 100 and 3000 used to sit on its edges),
+    // and labels its log step axis.
+    await page.waitForFunction(() => document.querySelectorAll('[data-testid="strip-axis"] text').length >= 1);
+    const ticks = await page.$$eval('.phase-row[data-layer="(network)"] .phase-tick title, .phase-row .phase-tick title', (ts) => [...new Set(ts.map((t) => t.textContent))]);
+    expect(ticks.filter((t) => t !== null && /at step (100|3000) /.test(t))).toEqual([]);
+    expect(ticks.some((t) => t !== null && t.includes('at step 1200 '))).toBe(true);
+    const axisLabels = await page.$$eval('[data-testid="strip-axis"] text', (ts) => ts.map((t) => t.textContent));
+    expect(axisLabels).toContain('1000');
 
     // "Whole run" goes back and takes the range out of the URL; the detail stays merged in.
     await page.click('[data-testid="range-whole"]');
