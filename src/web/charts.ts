@@ -353,7 +353,12 @@ export function drawInfoPlane(box: HTMLElement, trajectories: readonly InfoTraje
     axes.append(svg('line', { x1: m.left, x2: m.left + pw, y1: Y(t), y2: Y(t), stroke: '#eee' }), svg('text', { x: m.left - 6, y: Y(t) + 4, 'text-anchor': 'end' }, formatNumber(t)));
   }
   axes.append(
-    svg('text', { x: m.left + pw / 2, y: height - 8, 'text-anchor': 'middle' }, 'I(X;T), bits: information the layer keeps about the input (binned estimate)'),
+    // The long title needs about 460 px; a phone gets the short one instead of a cut one.
+    svg(
+      'text',
+      { x: m.left + pw / 2, y: height - 8, 'text-anchor': 'middle', 'data-testid': 'plane-x-title' },
+      pw >= 460 ? 'I(X;T), bits: information the layer keeps about the input (binned estimate)' : 'I(X;T), bits: about the input',
+    ),
     svg('text', { x: 14, y: m.top + ph / 2, 'text-anchor': 'middle', transform: `rotate(-90 14 ${m.top + ph / 2})` }, 'I(T;Y), bits: about the label'),
   );
   root.append(axes);

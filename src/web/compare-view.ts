@@ -6,7 +6,7 @@
 import type uPlot from 'uplot';
 import type { WindowRecord } from '../protocol/records.js';
 import type { Live } from './connection.js';
-import { el, type View } from './dom.js';
+import { el, scrollBox, type View } from './dom.js';
 import {
   CAUTION,
   COMPARE_MAX,
@@ -70,7 +70,7 @@ export function compareView(root: HTMLElement, live: Live, ids: readonly string[
       back,
       title,
       el('p', { class: 'note' }, 'Each run in its own colour, aligned by step. The network as a whole is shown for each run; open a run for its layers.'),
-      el('div', { class: 'scroll' }, factsTable),
+      scrollBox(factsTable),
       errors,
       el('p', { class: 'caution' }, CAUTION),
       ...controls,

@@ -10,3 +10,23 @@ export function el<K extends keyof HTMLElementTagNameMap>(tag: K, attrs: Record<
 export interface View {
   dispose(): void;
 }
+
+/**
+ * A box that scrolls sideways when its table is wider than the screen, with a line that says so while it is
+ * (on a phone a table's last columns would otherwise be out of sight with nothing to tell).
+ */
+export function scrollBox(child: HTMLElement): HTMLElement {
+  const hint = el('p', { class: 'scroll-hint note', 'data-testid': 'scroll-hint' }, 'Wider than the screen: scroll sideways for more columns →');
+  hint.hidden = true;
+  const box = el('div', { class: 'scroll' }, child);
+  const check = (): void => {
+    hint.hidden = !(box.scrollWidth > box.clientWidth + 1);
+  };
+  if (typeof ResizeObserver === 'function') {
+    const ro = new ResizeObserver(check);
+    ro.observe(box);
+    ro.observe(child);
+  }
+  requestAnimationFrame(check);
+  return el('div', { class: 'scroll-wrap' }, hint, box);
+}

@@ -5,7 +5,7 @@
  */
 import type uPlot from 'uplot';
 import type { Live } from './connection.js';
-import { el, type View } from './dom.js';
+import { el, scrollBox, type View } from './dom.js';
 import {
   CAUTION,
   adviceSentence,
@@ -138,7 +138,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     infoSection,
     el('h3', {}, 'Markers'),
     markersNote,
-    el('div', { class: 'scroll' }, el('table', { class: 'markers', 'data-testid': 'markers' }, el('thead', {}, el('tr', {}, ...['Step', 'Found at', 'Layer', 'Kind', 'Confidence', 'Details'].map((h) => el('th', {}, h)))), markerBody)),
+    scrollBox(el('table', { class: 'markers', 'data-testid': 'markers' }, el('thead', {}, el('tr', {}, ...['Step', 'Found at', 'Layer', 'Kind', 'Confidence', 'Details'].map((h) => el('th', {}, h)))), markerBody)),
   );
   root.append(main);
 

@@ -3,7 +3,7 @@
  */
 import type { RunSummary } from '../protocol/messages.js';
 import { getJson, type Live } from './connection.js';
-import { el, type View } from './dom.js';
+import { el, scrollBox, type View } from './dom.js';
 import { COMPARE_MAX, COMPARE_MIN, compareHash, mergeRuns, runHash, runMatches, type RunRowView } from './model.js';
 
 export function runsView(root: HTMLElement, live: Live): View {
@@ -21,7 +21,7 @@ export function runsView(root: HTMLElement, live: Live): View {
     el('thead', {}, el('tr', {}, el('th', {}, el('span', { class: 'sr-only' }, 'Compare')), ...['Run', 'Group', 'Tags', 'Status', 'Last step', 'Windows', 'Started'].map((h) => el('th', {}, h)))),
     body,
   );
-  root.append(el('h2', {}, 'Runs'), el('div', { class: 'toolbar' }, search, compare, compareNote), note, el('div', { class: 'scroll' }, table));
+  root.append(el('h2', {}, 'Runs'), el('div', { class: 'toolbar' }, search, compare, compareNote), note, scrollBox(table));
 
   const drawCompare = (): void => {
     const n = chosen.size;

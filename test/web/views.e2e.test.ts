@@ -262,10 +262,33 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium: compare, zoom, re
       expect(await overflows(page)).toBe(false);
       const widest = await page.$$eval('canvas, svg', (els) => Math.max(...els.map((e) => e.getBoundingClientRect().right)));
       expect(widest).toBeLessThanOrEqual(viewport.width);
+      // Marker rows stay one or two lines high: the details column keeps a readable width (it used to wrap
+      // one letter per line at 390 px, rows about 200 px tall), and a table wider than the screen says so.
+      const rowHeights = await page.$$eval('[data-testid="markers"] tbody tr', (rows) => rows.map((r) => r.getBoundingClientRect().height));
+      expect(rowHeights.length).toBeGreaterThan(0);
+      expect(Math.max(...rowHeights)).toBeLessThan(60);
+      const hintShown = async (scope: string): Promise<{ scrolls: boolean; hint: boolean }> =>
+        page.$eval(scope, (wrap) => {
+          const box = wrap.querySelector('.scroll')!;
+          const hint = wrap.querySelector('[data-testid="scroll-hint"]') as HTMLElement;
+          return { scrolls: box.scrollWidth > box.clientWidth + 1, hint: !hint.hidden };
+        });
+      await page.waitForTimeout(100);
+      const markersWrap = await hintShown('.scroll-wrap:has([data-testid="markers"])');
+      expect(markersWrap.hint).toBe(markersWrap.scrolls);
+      if (viewport.width < 500) expect(markersWrap.scrolls).toBe(true);
+      // The information plane's axis titles fit inside it.
+      for (const t of await page.$$eval('.plane svg text[data-testid="plane-x-title"]', (ts) => ts.map((x) => ({ right: x.getBoundingClientRect().right, left: x.getBoundingClientRect().left, svgRight: x.closest('svg')!.getBoundingClientRect().right })))) {
+        expect(t.right).toBeLessThanOrEqual(t.svgRight + 1);
+        expect(t.left).toBeGreaterThanOrEqual(0);
+      }
       if (SHOTS !== null && viewport.width < 500) await page.screenshot({ path: join(SHOTS, 'run-narrow.png'), fullPage: true });
       await page.goto(`${server.url}/`);
       await page.locator(`tr[data-run="${a.id}"]`).waitFor({ timeout: 10_000 });
       expect(await overflows(page)).toBe(false);
+      await page.waitForTimeout(100);
+      const runsWrap = await hintShown('.scroll-wrap:has(table)');
+      expect(runsWrap.hint).toBe(runsWrap.scrolls);
       await page.close();
     }
   });
