@@ -12,9 +12,20 @@ export function withToken(path: string): string {
   return `${path}${path.includes('?') ? '&' : '?'}token=${encodeURIComponent(token)}`;
 }
 
+let onUnauthorized: (() => void) | null = null;
+
+/** Called once the server answers 401: the page then asks for the token instead of retrying for ever. */
+export function whenUnauthorized(f: () => void): void {
+  onUnauthorized = f;
+}
+
+/** Whether the page was opened with a token (a 401 then means a wrong one). */
+export const hasToken = token !== null;
+
 export async function getJson(path: string): Promise<unknown> {
   const res = await fetch(withToken(path), { headers: { accept: 'application/json' } });
   const body = decodeJson(await res.text());
+  if (res.status === 401) onUnauthorized?.();
   if (!res.ok) {
     const err = (body as { error?: { code?: string; message?: string } }).error;
     throw new Error(err?.message ?? `HTTP ${res.status}`);
@@ -29,6 +40,7 @@ export class Live {
   private listeners = new Set<Listener>();
   private onOpen = new Set<() => void>();
   private delay = 500;
+  private halted = false;
 
   constructor(private readonly setStatus: (text: string) => void) {
     this.connect();
@@ -50,10 +62,18 @@ export class Live {
     };
     ws.onclose = () => {
       this.ws = null;
+      if (this.halted) return;
       this.setStatus('reconnecting…');
       setTimeout(() => this.connect(), this.delay);
       this.delay = Math.min(this.delay * 2, 10_000);
     };
+  }
+
+  /** Stops for good (the server wants a token the page lacks): no more reconnecting, and `text` as the status. */
+  halt(text: string): void {
+    this.halted = true;
+    this.ws?.close();
+    this.setStatus(text);
   }
 
   send(m: ViewerMessage): void {

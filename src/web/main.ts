@@ -5,7 +5,7 @@
  */
 import 'uplot/dist/uPlot.min.css';
 import './style.css';
-import { Live } from './connection.js';
+import { hasToken, Live, whenUnauthorized } from './connection.js';
 import { compareView } from './compare-view.js';
 import { el, type View } from './dom.js';
 import { parseRoute } from './model.js';
@@ -33,6 +33,30 @@ function render(): void {
   }
 }
 
+/** The server wants a token this page was not given (or a wrong one): ask for it, and reopen with it. */
+function askForToken(): void {
+  if (document.querySelector('[data-testid="token-form"]') !== null) return;
+  live.halt('needs a token');
+  const input = el('input', { type: 'password', 'data-testid': 'token-input', autocomplete: 'off', required: '' });
+  const form = el(
+    'form',
+    { class: 'token', 'data-testid': 'token-form' },
+    el('p', {}, hasToken ? 'The server refused this token. ' : 'This server asks for a token. ', "Enter the one 'tidemark serve' was started with (--token or $TIDEMARK_TOKEN); it stays in this page's address."),
+    el('label', {}, 'Token ', input),
+    ' ',
+    el('button', { type: 'submit' }, 'Open'),
+  );
+  form.addEventListener('submit', (ev) => {
+    ev.preventDefault();
+    const url = new URL(location.href);
+    url.searchParams.set('token', input.value);
+    location.assign(url.href);
+  });
+  root.replaceChildren(form);
+  input.focus();
+}
+
+whenUnauthorized(askForToken);
 document.getElementById('conn-slot')?.append(statusEl);
 window.addEventListener('hashchange', render);
 render();

@@ -238,10 +238,21 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
       await page.locator('[data-testid="run-name"]', { hasText: 'gearbox-e2e' }).waitFor({ timeout: 10_000 });
       await page.goto(`${guarded.url}/?token=e2e-token-123456#/`);
       await page.locator(`tr[data-run="${run.id}"]`).waitFor({ timeout: 10_000 });
-      // Without it, the API refuses and the page says why.
+      // Without it, the page asks for the token (it used to show the API's refusal and "reconnecting…" for ever),
+      // and opens with the one entered.
       const bare = await browser.newPage();
-      await bare.goto(`${guarded.url}/`);
-      await bare.locator('.note', { hasText: 'Could not load the runs' }).waitFor({ timeout: 10_000 });
+      await bare.goto(`${guarded.url}/#/run/${run.id}`);
+      const form = bare.locator('[data-testid="token-form"]');
+      await form.waitFor({ timeout: 10_000 });
+      expect(await form.textContent()).toContain('This server asks for a token');
+      expect(await bare.textContent('[data-testid="connection"]')).toBe('needs a token');
+      await bare.fill('[data-testid="token-input"]', 'e2e-token-123456');
+      await bare.click('[data-testid="token-form"] button');
+      await bare.locator('[data-testid="run-name"]', { hasText: 'gearbox-e2e' }).waitFor({ timeout: 10_000 });
+      expect(new URL(bare.url()).searchParams.get('token')).toBe('e2e-token-123456');
+      // A wrong token is said to be wrong.
+      await bare.goto(`${guarded.url}/?token=wrong-token-0000#/`);
+      await bare.locator('[data-testid="token-form"]', { hasText: 'The server refused this token' }).waitFor({ timeout: 10_000 });
       await bare.close();
       await page.close();
     } finally {
