@@ -249,7 +249,19 @@ export class LineChart {
       if (key !== 'x') return;
       this.box.dataset.steps = `${Math.round(u.scales.x?.min ?? 0)}-${Math.round(u.scales.x?.max ?? 0)}`;
     };
-    opts.hooks = { ...opts.hooks, setScale: [...(opts.hooks?.setScale ?? []), mark] };
+    // The legend shows the latest values while the pointer is elsewhere (uPlot shows "--" then).
+    const latest = (u: uPlot): void => {
+      if (u.cursor.idx != null) return;
+      const n = u.data[0]?.length ?? 0;
+      if (n > 0) u.setLegend({ idx: n - 1 });
+    };
+    opts.hooks = {
+      ...opts.hooks,
+      setScale: [...(opts.hooks?.setScale ?? []), mark],
+      ready: [...(opts.hooks?.ready ?? []), latest],
+      setData: [...(opts.hooks?.setData ?? []), latest],
+      setCursor: [...(opts.hooks?.setCursor ?? []), latest],
+    };
     this.plot = new uPlot({ ...opts, width: this.width(), height: this.height }, data, this.box);
     this.zoom?.add(this.plot);
   }

@@ -110,6 +110,10 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     const orange = await countColour(page, canvas, [0xe6, 0x9f, 0x00]);
     expect(blue).toBeGreaterThan(50);
     expect(orange).toBeGreaterThan(50);
+    // The legend shows the latest window's values without hovering (it showed "--" until the pointer came by).
+    const legendValues = await page.$$eval('[data-testid="snr-chart"] .u-legend .u-value', (vs) => vs.map((v) => v.textContent ?? ''));
+    expect(legendValues.length).toBeGreaterThan(1);
+    expect(legendValues.filter((v) => v.trim() === '--')).toEqual([]);
     expect(await page.textContent('[data-testid="advice"]')).toContain('may be near');
     // The tab title carries the run's state: the network entered diffusion at step 40 (fakeMarkers), advice may-stop.
     expect(await page.title()).toBe('gearbox-e2e · step 96 · diffusion · may-stop — tidemark');
