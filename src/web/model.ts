@@ -470,13 +470,23 @@ export function currentPhase(row: PhaseRow): PhaseName {
  * those runs differ, or else the start of the id.
  */
 export function compareLabels(runs: readonly { id: string; name: string; tags: Record<string, string> }[]): string[] {
-  return runs.map((r) => {
+  const first = runs.map((r) => {
     const twins = runs.filter((o) => o.name === r.name);
     if (twins.length < 2) return r.name;
     const keys = [...new Set(twins.flatMap((t) => Object.keys(t.tags)))].sort();
     const differing = keys.filter((k) => new Set(twins.map((t) => t.tags[k])).size > 1);
     if (differing.length > 0) return `${r.name} (${differing.map((k) => `${k}=${r.tags[k] ?? '–'}`).join(' ')})`;
     return `${r.name} (${r.id.slice(0, 8)})`;
+  });
+  // Runs alike in name and in their differing tags still need labels of their own: add the id's start,
+  // longer until the labels differ.
+  return first.map((label, i) => {
+    if (first.filter((l) => l === label).length < 2) return label;
+    const same = runs.filter((_, j) => first[j] === label);
+    let n = 8;
+    while (n < 36 && new Set(same.map((r) => r.id.slice(0, n))).size < same.length) n += 4;
+    const id = runs[i]!.id.slice(0, n);
+    return label.endsWith(`(${runs[i]!.id.slice(0, 8)})`) ? label.replace(/\([^()]*\)$/, `(${id})`) : `${label} · ${id}`;
   });
 }
 

@@ -295,6 +295,19 @@ describe('page model', () => {
     ];
     expect(compareLabels(runs)).toEqual(['gearbox (lr=0.01)', 'gearbox (lr=0.05)', 'other']);
     expect(compareLabels([runs[2]!, { ...runs[2]!, id: 'dddddddd-4' }])).toEqual(['other (cccccccc)', 'other (dddddddd)']);
+    // Two of six alike in name and tags (a repeated seed) still get labels of their own.
+    const six = [
+      { id: 'aaaaaaaa-1', name: 'gearbox', tags: { lr: '0.01' } },
+      { id: 'bbbbbbbb-2', name: 'gearbox', tags: { lr: '0.01' } },
+      { id: 'cccccccc-3', name: 'gearbox', tags: { lr: '0.05' } },
+      { id: 'dddddddd-4', name: 'other', tags: {} },
+      { id: 'eeeeeeee-5', name: 'other', tags: {} },
+      { id: 'eeeeeeee-6', name: 'other', tags: {} },
+    ];
+    const labels = compareLabels(six);
+    expect(new Set(labels).size).toBe(6);
+    expect(labels.slice(0, 3)).toEqual(['gearbox (lr=0.01) · aaaaaaaa', 'gearbox (lr=0.01) · bbbbbbbb', 'gearbox (lr=0.05)']);
+    expect(labels.slice(3)).toEqual(['other (dddddddd)', 'other (eeeeeeee-5)', 'other (eeeeeeee-6)']);
   });
 
   it('gives a wide model and a shared page fewer windows, within 200 to 2,000', () => {
