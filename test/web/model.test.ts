@@ -296,7 +296,7 @@ describe('page model', () => {
     expect(compareLabels(runs)).toEqual(['gearbox (lr=0.01)', 'gearbox (lr=0.05)', 'other']);
     expect(compareLabels([runs[2]!, { ...runs[2]!, id: 'dddddddd-4' }])).toEqual(['other (cccccccc)', 'other (dddddddd)']);
     // Two of six alike in name and tags (a repeated seed) still get labels of their own.
-    const six = [
+    const six: { id: string; name: string; tags: Record<string, string> }[] = [
       { id: 'aaaaaaaa-1', name: 'gearbox', tags: { lr: '0.01' } },
       { id: 'bbbbbbbb-2', name: 'gearbox', tags: { lr: '0.01' } },
       { id: 'cccccccc-3', name: 'gearbox', tags: { lr: '0.05' } },
