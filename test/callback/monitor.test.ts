@@ -162,7 +162,7 @@ describe('monitor faults', () => {
     expect(lb.nonfinite).toBe(0);
     expect(lb.batches).toBe(4);
     expect(Number.isFinite(w.network.grad_snr)).toBe(true);
-    expect(mon.markers()).toMatchObject([{ kind: 'nonfinite', layer: model.layers[0]!.name, detected_step: 4 }]);
+    expect(mon.markers().filter((m) => m.kind !== 'advice')).toMatchObject([{ kind: 'nonfinite', layer: model.layers[0]!.name, detected_step: 4 }]);
     expect(c.warnings.map((x) => x.code)).toEqual(['TIDEMARK_ERR_NONFINITE']);
   });
 
@@ -321,11 +321,15 @@ describe('monitor records', () => {
     await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
     const records: SinkRecord[] = readFileSync(file, 'utf8').trim().split('\n').map(decodeRecord);
-    // The phase detector's markers go out right after the window that revealed them.
-    expect(records.map((r) => r.type)).toEqual(['run', 'window', 'window', 'window', 'marker', 'marker', 'marker', 'window', 'end']);
+    // Markers go out right after the window that revealed them: the first advice (continue, with its reason) after
+    // the first window; the phase detector's markers, and the advice's new stage, after the third.
+    expect(records.map((r) => r.type)).toEqual(['run', 'window', 'marker', 'window', 'window', 'marker', 'marker', 'marker', 'marker', 'window', 'end']);
     const markers = records.filter((r) => r.type === 'marker').map((r) => r.marker);
     expect(markers).toEqual(mon.markers());
-    for (const m of markers) expect(m.detected_step).toBe((records[3] as Extract<SinkRecord, { type: 'window' }>).window.step);
+    const windowSteps = records.filter((r) => r.type === 'window').map((r) => r.window.step);
+    expect(markers[0]).toMatchObject({ kind: 'advice', detected_step: windowSteps[0], details: { verdict: 'continue', stage: 'phase-unknown' } });
+    for (const m of markers.slice(1)) expect(m.detected_step).toBe(windowSteps[2]);
+    expect(markers.filter((m) => m.kind !== 'advice')).toHaveLength(3);
     expect(records[0]).toMatchObject({ run: { group: 'g1', tags: { seed: '3' }, layers: [{ params: 30 }, { params: 14 }] } });
     const w = records[1] as Extract<SinkRecord, { type: 'window' }>;
     expect(w.window).toEqual(mon.windows()[0]);

@@ -1,4 +1,4 @@
-import { describe, expect, it } from 'vitest';
+import { describe, expect, it, vi } from 'vitest';
 import type { RunInfo, SinkRecord } from '../../src/protocol/records.js';
 import type { Store } from '../../src/storage/store.js';
 import { StoreSink } from '../../src/storage/store-sink.js';
@@ -68,15 +68,24 @@ describe('store sink', () => {
     expect(state.appended.map((r) => (r as { step: number }).step)).toEqual([2, 3, 4]);
   });
 
-  it('heartbeats and flushes in the background', async () => {
-    const { store, state } = fakeStore();
-    const sink = new StoreSink(() => store, { heartbeatIntervalMs: 20 });
-    await sink.open(run);
-    sink.write(note(0));
-    await new Promise((r) => setTimeout(r, 120));
-    expect(state.heartbeats).toBeGreaterThanOrEqual(2);
-    expect(state.appended.length).toBe(1);
-    await sink.close();
+  it('heartbeats and flushes in the background, once per interval (fake timers: no sleeping, no durations)', async () => {
+    vi.useFakeTimers();
+    try {
+      const { store, state } = fakeStore();
+      const sink = new StoreSink(() => store, { heartbeatIntervalMs: 20 });
+      await sink.open(run);
+      sink.write(note(0));
+      const before = state.heartbeats;
+      await vi.advanceTimersByTimeAsync(19);
+      expect(state.heartbeats).toBe(before);
+      expect(state.appended.length).toBe(0);
+      await vi.advanceTimersByTimeAsync(41);
+      expect(state.heartbeats - before).toBe(3);
+      expect(state.appended.length).toBe(1);
+      await sink.close();
+    } finally {
+      vi.useRealTimers();
+    }
   });
 
   it('reports a store that cannot be opened from open()', async () => {
