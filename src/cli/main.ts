@@ -175,7 +175,8 @@ function renderShow(store: Store, run: RunDetail): string {
     // Online markers came from the run as it trained; offline ones from 'tidemark analyze --write' with other settings.
     const rows = [['marker', 'layer', 'step', 'known at', 'confidence', 'source', 'detail']];
     for (const m of markers) {
-      const verdict = m.kind === 'advice' && typeof m.details.verdict === 'string' ? m.details.verdict : '';
+      const stage = typeof m.details.stage === 'string' ? ` (${m.details.stage})` : '';
+      const verdict = m.kind === 'advice' && typeof m.details.verdict === 'string' ? `${m.details.verdict}${stage}` : '';
       rows.push([
         m.kind,
         m.layer === null ? '(network)' : printable(m.layer, 40),

@@ -256,7 +256,7 @@ describe('tidemark analyze', () => {
     const markerLines = shown.out.split('\n').filter((l) => /^\s+(drift-start|diffusion-start|advice)\s/.test(l));
     expect(markerLines.some((l) => /\sonline(\s|$)/.test(l))).toBe(true);
     expect(markerLines.some((l) => /\soffline(\s|$)/.test(l))).toBe(true);
-    for (const l of markerLines.filter((x) => x.trim().startsWith('advice'))) expect(l).toMatch(/(continue|may-stop|stop)\s*$/);
+    for (const l of markerLines.filter((x) => x.trim().startsWith('advice'))) expect(l).toMatch(/(continue|may-stop|stop)( \([a-z-]+\))?\s*$/);
   });
 });
 
