@@ -203,7 +203,8 @@ function renderSummary(s: RunSummary): string {
     rows.push([printable(name, 40), fmtDb(l.grad_snr_db), fmt(l.noise_scale, 1), fmt(l.weight_travel), fmt(l.travel_exponent, 2), String(l.batches)]);
   }
   const floor = w.snr_floor > 0 ? `${fmt(20 * Math.log10(w.snr_floor), 1)} dB` : '0 (whole epoch)';
-  return `${head}\n  step ${w.step}, epoch ${w.epoch ?? '—'}, SNR floor ${floor}\n${table(rows, '  ')}`;
+  // Epochs are counted from 1 wherever a person reads them (the stored field, as fit counts, starts at 0).
+  return `${head}\n  step ${w.step}, epoch ${w.epoch === null ? '—' : w.epoch + 1}, SNR floor ${floor}\n${table(rows, '  ')}`;
 }
 
 function renderAnalysis(run: RunDetail, r: AnalyzeResult, written: boolean): string {

@@ -117,7 +117,7 @@ function marked(text: string, flag: number | null, mark: string): string {
 
 /** The probe section of `tidemark show`, as lines. */
 export function renderProbe(p: ProbeLatest): string[] {
-  const rows = [['layer', 'probe step', 'I(X;T) bits', 'I(T;Y) bits', 'I(X;T) bounds', 'act. at limit', 'rows']];
+  const rows = [['layer', 'probe step', 'I(X;T) bits', 'I(T;Y) bits', 'I(X;T) bounds', 'at limit', 'rows']];
   let sat = false;
   let boundsSat = false;
   for (const { layer, step, values: v } of p.layers) {
@@ -130,7 +130,8 @@ export function renderProbe(p: ProbeLatest): string[] {
       marked(fmt(v.mi_input), v.mi_saturated, SATURATED_MARK),
       marked(fmt(v.mi_label), v.mi_saturated, SATURATED_MARK),
       marked(bounds, v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
-      fmt(v.act_saturation),
+      // A percentage, as the demo prints it: the share of activations pinned near the ends of their range.
+      v.act_saturation === null ? '—' : `${(100 * v.act_saturation).toFixed(1)}%`,
       v.probe_rows === null ? '—' : String(v.probe_rows),
     ]);
   }

@@ -89,7 +89,8 @@ describe('tidemark show with probe values', () => {
       expect(cells[3]).toBe(fmt(v('mi_label')) + mark);
       const boundsMark = v('mi_bounds_saturated') === 1 ? '†' : '';
       expect(cells[4]).toBe(`${fmt(v('mi_input_lower'))}–${fmt(v('mi_input_upper'))}${boundsMark}`);
-      expect(cells[5]).toBe(fmt(v('act_saturation')));
+      // The share of activations at their limit, in per cent as the demo prints it.
+      expect(cells[5]).toBe(`${(100 * v('act_saturation')!).toFixed(1)}%`);
       expect(cells[6]).toBe('64');
     }
     // The first (6-unit tanh) layer is saturated at 30 bins here; the mark and its legend must show.
@@ -186,7 +187,7 @@ describe('tidemark show with partial probe values', () => {
       '  probe    binned-plugin, 12 bins per unit, 256 rows; bounds pairwise-kolchinsky-tracey, σ² 0.25, 128 rows; every: auto (at most 3.0% of training time)',
     );
     expect(probeRow(r.out, 'dense_Dense1')).toEqual(['dense_Dense1', '24', '3.250', '0.750', '6.990–7.000†', '—', '250']);
-    expect(probeRow(r.out, 'dense_Dense2')).toEqual(['dense_Dense2', '8', '8.000*', '1.500*', '—', '0.125', '256']);
+    expect(probeRow(r.out, 'dense_Dense2')).toEqual(['dense_Dense2', '8', '8.000*', '1.500*', '—', '12.5%', '256']);
     // dense_Dense3 appears in the gradient table only.
     expect(r.out.split('\n').filter((l) => l.trim().startsWith('dense_Dense3'))).toHaveLength(1);
     expect(r.out).toContain(LEGEND);
