@@ -217,6 +217,13 @@ export function formatNumber(v: number): string {
   return a >= 100 ? v.toPrecision(3) : v.toFixed(2);
 }
 
+/** The last step with a noise floor when later windows have none (the floor is 0 once a window is an epoch); else null. */
+export function floorEnd(steps: readonly number[], floor: readonly (number | null)[]): number | null {
+  let last = -1;
+  for (let i = 0; i < floor.length; i++) if (floor[i] !== null && floor[i] !== undefined) last = i;
+  return last >= 0 && last < floor.length - 1 ? steps[last]! : null;
+}
+
 /** Steps to label on the strip's log axis: 1, 2, 5 × powers of ten inside the range, at least 48 px apart. */
 export function stripTicks(min: number, max: number, plotWidth: number): number[] {
   if (!(min > 0) || !(max > min) || !(plotWidth > 0)) return [];

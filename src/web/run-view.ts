@@ -11,6 +11,7 @@ import {
   adviceSentence,
   currentPhase,
   detailsText,
+  floorEnd,
   formatNumber,
   infoTrajectories,
   latestAdvice,
@@ -52,6 +53,9 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       'The same at any batch size when the learning rate scales with it. An estimate from the window\'s minibatches.',
   );
   const chartBox = el('div', { class: 'chart', 'data-testid': 'snr-chart' });
+  // Said only once the dashed line has ended, so a reader does not take its end for missing data.
+  const floorNote = el('p', { class: 'note', 'data-testid': 'floor-note' });
+  floorNote.hidden = true;
   const chartNote = el(
     'p',
     { class: 'note' },
@@ -124,6 +128,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     levelNote,
     el('h3', {}, 'Window gradient SNR (dB) per layer'),
     chartBox,
+    floorNote,
     chartNote,
     el('h3', {}, 'Weight travel per layer'),
     travelBox,
@@ -209,6 +214,13 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       hooks: { draw: [(u) => drawStrip(u), zeroDbLine] },
     }));
     const cols = snrColumns(layerNames(), windows());
+    const end = floorEnd(cols.steps, cols.floor);
+    floorNote.hidden = end === null;
+    if (end !== null) {
+      floorNote.textContent =
+        `The dashed line ends after step ${end}: from there each window holds a whole epoch, every minibatch of it, ` +
+        'so its mean has no sampling noise left to compare with (the finite-population factor 1 − K/M is 0).';
+    }
     snr.update([cols.steps, ...cols.series, cols.floor], () => ({
       ...stepChart('window gradient SNR (dB)'),
       series: [{ label: 'step' }, ...cols.labels.map((l, i) => lineSeries(l, i)), { label: 'noise floor', stroke: REFERENCE_GREY, dash: [4, 4], width: 1 }],

@@ -3,6 +3,7 @@ import type { Marker } from '../../src/protocol/records.js';
 import {
   CAUTION,
   adviceSentence,
+  floorEnd,
   formatNumber,
   stripTicks,
   compareHash,
@@ -106,6 +107,13 @@ describe('page model', () => {
     expect(cols.series[0]![1]).toBeCloseTo(ws[1]!.layers.dense_Dense1!.grad_snr_db, 12);
     expect(cols.series[3]![1]).toBeCloseTo(ws[1]!.network.grad_snr_db, 12);
     expect(cols.floor[0]).toBeCloseTo(20 * Math.log10(1 / Math.sqrt(8)), 12);
+  });
+
+  it('finds where the noise floor ends (windows of a whole epoch have none), to say why on the page', () => {
+    expect(floorEnd([8, 16, 24, 32], [-5, -6, null, null])).toBe(16);
+    expect(floorEnd([8, 16], [-5, -6])).toBeNull();
+    expect(floorEnd([8, 16], [null, null])).toBeNull();
+    expect(floorEnd([], [])).toBeNull();
   });
 
   it('labels the phase strip\'s log step axis at 1, 2, 5 × 10^k inside the range, never closer than 48 px', () => {
