@@ -4,7 +4,7 @@
  */
 import uPlot from 'uplot';
 import { formatNumber, NETWORK_LABEL, stripTicks, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
-import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY, layerStyle } from './palette.js';
+import { NETWORK_STYLE, OKABE_ITO, PHASE_FILL, REFERENCE_GREY, layerStyle } from './palette.js';
 
 const SVG_NS = 'http://www.w3.org/2000/svg';
 
@@ -15,12 +15,6 @@ function svg<K extends keyof SVGElementTagNameMap>(tag: K, attrs: Record<string,
   return e;
 }
 
-/** Fill of each phase; diffusion is also hatched and undetermined pale, so the phases differ without colour. */
-export const PHASE_FILL: Record<PhaseName, string> = {
-  drift: OKABE_ITO.orange,
-  diffusion: OKABE_ITO.skyBlue,
-  undetermined: '#e4e4e4',
-};
 
 export const PHASE_WORDS: Record<PhaseName, string> = {
   drift: 'drift: the mean gradient outweighs its noise, weights move steadily',

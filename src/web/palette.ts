@@ -37,3 +37,20 @@ export function layerStyle(i: number): { stroke: string; dash: number[] } {
 export const NETWORK_STYLE = { stroke: OKABE_ITO.black, width: 2.5 };
 /** The noise floor and the 0 dB reference: grey, dashed. */
 export const REFERENCE_GREY = '#777777';
+
+/**
+ * Fill of each phase: greys, so that no phase shares a colour with a layer, a run or a metric line (drift
+ * was orange, the second layer's and the second run's colour). Diffusion is also hatched, so the phases
+ * differ without relying on shade alone.
+ */
+export const PHASE_FILL: Record<'drift' | 'diffusion' | 'undetermined', string> = {
+  drift: '#4d4d4d',
+  diffusion: '#b0b0b0',
+  undetermined: '#ececec',
+};
+
+/** val_loss beside loss: the loss's black, dashed, with hollow points (vermillion was the fourth layer's colour). */
+export const VAL_LOSS_STYLE = { stroke: OKABE_ITO.black, dash: [6, 3], width: 1.5, pointFill: '#ffffff' };
+
+/** Every colour a line can take: layers and runs (LAYER_ORDER), the network and the reference grey. */
+export const LINE_COLOURS: readonly string[] = [...LAYER_ORDER, NETWORK_STYLE.stroke, REFERENCE_GREY];

@@ -24,7 +24,7 @@ import {
   travelColumns,
   type StepRange,
 } from './model.js';
-import { NETWORK_STYLE, OKABE_ITO, REFERENCE_GREY } from './palette.js';
+import { NETWORK_STYLE, REFERENCE_GREY, VAL_LOSS_STYLE } from './palette.js';
 import { LineChart, drawInfoPlane, drawPhaseStrip, infoLegend, lineSeries, phaseLegend, stepChart, stripAxisOf, zeroDbLine } from './charts.js';
 import { RunFeed, type FeedChange } from './run-feed.js';
 import { viewZoom } from './view-zoom.js';
@@ -266,7 +266,9 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       series: [
         { label: 'step' },
         { label: 'loss (training, window mean)', stroke: NETWORK_STYLE.stroke, width: 2, spanGaps: false },
-        ...(cols.hasVal ? [{ label: 'val_loss (end of epoch)', stroke: OKABE_ITO.vermillion, dash: [6, 3], width: 1.5, spanGaps: true, points: { show: true, size: 7, fill: OKABE_ITO.vermillion } }] : []),
+        ...(cols.hasVal
+          ? [{ label: 'val_loss (end of epoch)', stroke: VAL_LOSS_STYLE.stroke, dash: VAL_LOSS_STYLE.dash, width: VAL_LOSS_STYLE.width, spanGaps: true, points: { show: true, size: 7, fill: VAL_LOSS_STYLE.pointFill } }]
+          : []),
       ],
     }));
   };

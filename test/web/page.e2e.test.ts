@@ -171,11 +171,13 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(exps.every((t) => /\d\.\d\d/.test(t))).toBe(true);
     expect(await page.textContent('[data-testid="travel-chart"] .u-legend')).toContain('slope ½');
 
-    // Loss: the training line in black and the one val_loss point (window 9) in vermillion.
+    // Loss: the training line in black and val_loss (window 9) as a dashed black series with hollow points; no
+    // layer colour (vermillion, the fourth layer's, used to mean val_loss here).
     const loss = '[data-testid="loss-chart"] canvas';
     await page.waitForSelector(loss);
     expect(await countColour(page, loss, [0, 0, 0], 30)).toBeGreaterThan(50);
-    expect(await countColour(page, loss, [0xd5, 0x5e, 0x00], 30)).toBeGreaterThan(10);
+    expect(await countColour(page, loss, [0xd5, 0x5e, 0x00], 30)).toBe(0);
+    expect(await page.textContent('[data-testid="loss-chart"] .u-legend')).toContain('val_loss (end of epoch)');
 
     // Noise scale: drawn, with the sentence comparing it to the batch size and calling it an estimate.
     const noise = '[data-testid="noise-chart"] canvas';
