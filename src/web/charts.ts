@@ -101,8 +101,9 @@ export function drawPhaseStrip(box: HTMLElement, rows: readonly PhaseRow[], axis
           'text-anchor': inside ? 'start' : 'end',
           'font-size': 11,
           'font-weight': row.label === NETWORK_LABEL ? 700 : 400,
-          fill: '#1a1a1a',
-          ...(inside ? { stroke: '#ffffff', 'stroke-width': 3, 'paint-order': 'stroke' } : {}),
+          // Inside the band: white on a dark halo, readable on the dark drift shade and on the pale ones alike.
+          fill: inside ? '#ffffff' : '#1a1a1a',
+          ...(inside ? { stroke: '#1a1a1a', 'stroke-width': 3, 'paint-order': 'stroke' } : {}),
         },
         label,
       ),
@@ -308,7 +309,7 @@ export const xLog: uPlot.Scale = { time: false, distr: 3, range: (_u, min, max) 
 export function stepChart(yLabel: string, logWidth?: number): Pick<uPlot.Options, 'scales' | 'axes'> {
   return {
     scales: { x: xLog, y: logWidth === undefined ? { auto: true } : { distr: 3 } },
-    axes: [{ label: 'step (log scale)', values: tickValues }, logWidth === undefined ? { label: yLabel, values: tickValues } : { label: yLabel, values: tickValues, size: logWidth }],
+    axes: [{ label: 'step (log scale)', values: tickValues }, logWidth === undefined ? { label: yLabel, values: tickValues, size: 60 } : { label: yLabel, values: tickValues, size: logWidth }],
   };
 }
 
