@@ -211,9 +211,10 @@ export class ShiftedMoments {
     if (block.length === 4) {
       const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
       let start = 0;
-      if (this.fold !== null && a instanceof Float32Array && b instanceof Float32Array && c instanceof Float32Array && e instanceof Float32Array && this.fold.holds(a, b, c, e)) {
+      const fold = this.fold;
+      if (fold !== null && fold.owns(a) && fold.owns(b) && fold.owns(c) && fold.owns(e)) {
         // The kernel does the same sums two coordinates at a time; the loop below finishes what it left.
-        const done = this.fold.fold4([a, b, c, e], ref, s1, end, sign);
+        const done = fold.fold4([a, b, c, e], ref, s1, end, sign);
         start = done.stop;
         y = done.y;
         q = done.q;

@@ -84,6 +84,11 @@ export class SimdFold {
     return true;
   }
 
+  /** True for a float32 vector in this arena's memory: one the kernel can fold. No allocation (per block). */
+  owns(v: ArrayLike<number>): v is Float32Array {
+    return v instanceof Float32Array && v.buffer === this.buffer;
+  }
+
   /**
    * The kernel's fold over coordinates [0, end) of four float32 vectors held by this arena (see
    * simd-fold.wat): returns where it stopped and the sums of squares of the coordinates done.
