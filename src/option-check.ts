@@ -48,7 +48,8 @@ export function closestName(name: string, known: readonly string[]): string | nu
 export type OptionRule =
   | { type: 'number'; integer?: boolean; min?: number; max?: number; above?: number; below?: number }
   | { type: 'boolean' }
-  | { type: 'string'; oneOf?: readonly string[]; nonEmpty?: boolean }
+  /** `nullable`: null is accepted too, meaning "none" (a server without a token). */
+  | { type: 'string'; oneOf?: readonly string[]; nonEmpty?: boolean; nullable?: boolean }
   | { type: 'function' }
   /** Checked by the caller (objects, unions); only the name is checked here. */
   | { type: 'any' };
@@ -71,9 +72,10 @@ export function describeRule(rule: OptionRule): string {
       return 'a function';
     case 'any':
       return 'a value';
-    case 'string':
-      if (rule.oneOf !== undefined) return `one of ${rule.oneOf.map((s) => `'${s}'`).join(', ')}`;
-      return rule.nonEmpty === true ? 'a non-empty string' : 'a string';
+    case 'string': {
+      const what = rule.oneOf !== undefined ? `one of ${rule.oneOf.map((s) => `'${s}'`).join(', ')}` : rule.nonEmpty === true ? 'a non-empty string' : 'a string';
+      return rule.nullable === true ? `${what} or null` : what;
+    }
   }
   const what = rule.integer === true ? 'an integer' : 'a number';
   const low = rule.min !== undefined ? { v: rule.min, open: false } : rule.above !== undefined ? { v: rule.above, open: true } : null;
@@ -106,6 +108,7 @@ export function satisfies(rule: OptionRule, value: unknown): boolean {
     case 'function':
       return typeof value === 'function';
     case 'string':
+      if (value === null && rule.nullable === true) return true;
       return (
         typeof value === 'string' &&
         (rule.oneOf === undefined || rule.oneOf.includes(value)) &&

@@ -95,3 +95,13 @@ describe('describeRule', () => {
     expect(describeRule({ type: 'number' })).toBe('a finite number');
   });
 });
+
+describe('nullable strings', () => {
+  it('take null as none, and say so in the range', () => {
+    const rules: OptionSchema = { token: { type: 'string', nonEmpty: true, nullable: true } };
+    expect(checkOptions({ token: null }, rules)).toEqual({ token: null });
+    expect(checkOptions({ token: 'abc' }, rules)).toEqual({ token: 'abc' });
+    expect(() => checkOptions({ token: '' }, rules)).toThrow("Option 'token' must be a non-empty string or null; received ''.");
+    expect(() => checkOptions({ token: 5 }, rules)).toThrow(TypeError);
+  });
+});

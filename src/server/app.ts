@@ -19,7 +19,7 @@ import { windowPoints } from '../protocol/points.js';
 import { markerKey, type SinkRecord } from '../protocol/records.js';
 import { exportLines, type ExportFormat } from '../storage/export.js';
 import { decodeJson, encodeJson } from '../storage/sink.js';
-import type { RunFilter, Store, WindowQuery } from '../storage/store.js';
+import type { RunFilter, SeriesKey, Store, WindowQuery } from '../storage/store.js';
 import { originAllowed, tokenMatches, tokenOf } from './auth.js';
 import { LiveHub, type Viewer } from './live.js';
 import { metricsText } from './metrics.js';
@@ -149,6 +149,20 @@ export const FAVICON_SVG =
 
 const bad = (message: string): TidemarkError => new TidemarkError('TIDEMARK_ERR_REQUEST_INVALID', message);
 
+/** Refuses a metric, or a metric and layer, that the run has no series for (a run with no series yet: nothing to say). */
+function checkSeriesKey(keys: readonly SeriesKey[], metric: string, layer: string | null): void {
+  if (keys.length === 0) return;
+  if (!keys.some((k) => k.metric === metric)) {
+    const metrics = [...new Set(keys.map((k) => k.metric))].sort();
+    const best = closestName(metric, metrics);
+    throw bad(`Query parameter 'metric': this run has no series '${metric}'.${best !== null ? ` Did you mean '${best}'?` : ''} Its metrics: ${metrics.join(', ')}.`);
+  }
+  if (!keys.some((k) => k.metric === metric && k.layer === layer)) {
+    const layers = keys.filter((k) => k.metric === metric).map((k) => (k.layer === null ? '(none: the network)' : k.layer));
+    throw bad(`Query parameter 'layer': '${metric}' has no series for ${layer === null ? 'the network' : `layer '${layer}'`}. It has: ${layers.join(', ')}.`);
+  }
+}
+
 /** `from` after `to` selects nothing by construction: a caller's mistake, said as such. */
 function checkRange(from: number | undefined, to: number | undefined): void {
   if (from !== undefined && to !== undefined && from > to) {
@@ -156,12 +170,11 @@ function checkRange(from: number | undefined, to: number | undefined): void {
   }
 }
 
-/** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
 /** Names, types and ranges of the server's options (the store is checked by its own type). */
 export const SERVER_RULES: OptionSchema = Object.freeze({
   store: { type: 'any' },
-  token: { type: 'any' },
-  cors: { type: 'any' },
+  token: { type: 'string', nonEmpty: true, nullable: true },
+  cors: { type: 'string', nonEmpty: true, nullable: true },
   bodyLimit: { type: 'number', integer: true, min: 1024, max: 2 ** 31 - 1 },
   maxFrameBytes: { type: 'number', integer: true, min: 1024, max: 2 ** 31 - 1 },
   ingestRate: { type: 'number', above: 0 },
@@ -174,14 +187,9 @@ export const SERVER_RULES: OptionSchema = Object.freeze({
   now: { type: 'function' },
 });
 
+/** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
 export async function buildServer(options: ServerOptions): Promise<TidemarkServer> {
   checkOptions(options, SERVER_RULES, {}, { owner: 'buildServer' });
-  for (const k of ['token', 'cors'] as const) {
-    const v = options[k];
-    if (v !== undefined && v !== null && (typeof v !== 'string' || v.length === 0)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `Option '${k}' of buildServer must be a non-empty string or null; received ${typeof v}.`);
-    }
-  }
   const store = options.store;
   if (store === null || typeof store !== 'object' || typeof (store as { runs?: unknown }).runs !== 'function') {
     throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'store' of buildServer must be a Store (openStore(path)).");
@@ -315,26 +323,15 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
       const run = store.resolveRun((req.params as { id: string }).id);
       const q = req.query as { metric: string; layer?: string; from?: number; to?: number; points?: number };
       checkRange(q.from, q.to);
-      // An unknown metric or layer is a mistake of the caller, not an empty series (docs/protocol.md).
-      const keys = store.seriesKeys(run.id);
-      if (keys.length > 0) {
-        const layer = q.layer ?? null;
-        if (!keys.some((k) => k.metric === q.metric)) {
-          const metrics = [...new Set(keys.map((k) => k.metric))].sort();
-          const best = closestName(q.metric, metrics);
-          throw bad(`Query parameter 'metric': this run has no series '${q.metric}'.${best !== null ? ` Did you mean '${best}'?` : ''} Its metrics: ${metrics.join(', ')}.`);
-        }
-        if (!keys.some((k) => k.metric === q.metric && k.layer === layer)) {
-          const layers = keys.filter((k) => k.metric === q.metric).map((k) => (k.layer === null ? '(none: the network)' : k.layer));
-          throw bad(`Query parameter 'layer': '${q.metric}' has no series for ${layer === null ? 'the network' : `layer '${layer}'`}. It has: ${layers.join(', ')}.`);
-        }
-      }
       const points = store.series(run.id, q.metric, {
         layer: q.layer ?? null,
         ...(q.from !== undefined ? { from: q.from } : {}),
         ...(q.to !== undefined ? { to: q.to } : {}),
         ...(q.points !== undefined ? { points: q.points } : {}),
       });
+      // Only an empty answer needs the run's series listed: to tell an unknown metric or layer (a caller's
+      // mistake, 400 per docs/protocol.md) from a known series with no points in the range.
+      if (points.length === 0) checkSeriesKey(store.seriesKeys(run.id), q.metric, q.layer ?? null);
       return { run: run.id, metric: q.metric, layer: q.layer ?? null, points };
     },
   );
