@@ -64,7 +64,7 @@ interface Batch {
   spill: { offset: number; length: number } | null;
   /** A spill write of this batch is queued. */
   spilling: boolean;
-/** Sent at least once: from then on its seq and content are fixed. */
+  /** Sent at least once: from then on its seq and content are fixed. */
   sent: boolean;
 }
 
@@ -72,8 +72,8 @@ const ms = { type: 'number', integer: true, min: 1, max: 2 ** 31 - 1 } as const;
 const REMOTE_SINK_RULES: OptionSchema = Object.freeze({
   url: { type: 'any' },
   token: { type: 'string', nonEmpty: true },
-  maxBatchRecords: { type: 'number', integer: true, min: 1 },
-  maxMemoryBytes: { type: 'number', integer: true, min: 0 },
+  maxBatchRecords: { type: 'number', integer: true, min: 1, max: Number.MAX_SAFE_INTEGER },
+  maxMemoryBytes: { type: 'number', integer: true, min: 0, max: Number.MAX_SAFE_INTEGER },
   spillDir: { type: 'string', nonEmpty: true },
   closeTimeoutMs: { type: 'number', integer: true, min: 0, max: 2 ** 31 - 1 },
   backoff: { type: 'any' },
@@ -149,23 +149,30 @@ export class RemoteSink implements Sink {
     if (typeof options !== 'object' || options === null) {
       throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `RemoteSink needs an options object with a url; received ${String(options)}.`);
     }
-    // Names, types and ranges; the defaults and the cross-field rule (maxMs ≥ initialMs) follow below.
-    checkOptions(options, REMOTE_SINK_RULES, {}, { owner: 'new RemoteSink()' });
-    checkOptions(options.backoff, BACKOFF_RULES, {}, { owner: 'new RemoteSink()', prefix: 'backoff.' });
+    const o = checkOptions<Required<Omit<RemoteSinkOptions, 'token' | 'backoff'>> & Pick<RemoteSinkOptions, 'token'>>(
+      options,
+      REMOTE_SINK_RULES,
+      { maxBatchRecords: 500, maxMemoryBytes: 32 * 1024 * 1024, closeTimeoutMs: 10_000, flushIntervalMs: 1000, ackTimeoutMs: 30_000, spillDir: tmpdir(), onError: () => {} },
+      { owner: 'new RemoteSink()' },
+    );
+    const backoff = checkOptions<{ initialMs: number; maxMs?: number }>(options.backoff, BACKOFF_RULES, { initialMs: 250 }, { owner: 'new RemoteSink()', prefix: 'backoff.' });
     const url = parseIngestUrl(options.url);
     if (options.token !== undefined) url.searchParams.set('token', options.token);
     this.url = url.href;
     if (url.searchParams.has('token')) url.searchParams.set('token', '***');
     this.shownUrl = url.href;
-    this.maxBatchRecords = integerOption('maxBatchRecords', options.maxBatchRecords, 500, 1);
-    this.maxMemoryBytes = integerOption('maxMemoryBytes', options.maxMemoryBytes, 32 * 1024 * 1024, 0);
-    this.closeTimeoutMs = integerOption('closeTimeoutMs', options.closeTimeoutMs, 10_000, 0);
-    this.initialMs = integerOption('backoff.initialMs', options.backoff?.initialMs, 250, 1);
-    this.maxMs = integerOption('backoff.maxMs', options.backoff?.maxMs, Math.max(10_000, this.initialMs), this.initialMs);
-    this.flushIntervalMs = integerOption('flushIntervalMs', options.flushIntervalMs, 1000, 1);
-    this.ackTimeoutMs = integerOption('ackTimeoutMs', options.ackTimeoutMs, 30_000, 1);
-    this.spillDir = options.spillDir ?? tmpdir();
-    this.onError = options.onError ?? (() => {});
+    this.maxBatchRecords = o.maxBatchRecords;
+    this.maxMemoryBytes = o.maxMemoryBytes;
+    this.closeTimeoutMs = o.closeTimeoutMs;
+    this.initialMs = backoff.initialMs;
+    this.maxMs = backoff.maxMs ?? Math.max(10_000, this.initialMs);
+    if (this.maxMs < this.initialMs) {
+      throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `Option 'backoff.maxMs' of new RemoteSink() must be at least backoff.initialMs (${this.initialMs}); received ${this.maxMs}.`);
+    }
+    this.flushIntervalMs = o.flushIntervalMs;
+    this.ackTimeoutMs = o.ackTimeoutMs;
+    this.spillDir = o.spillDir;
+    this.onError = o.onError;
   }
 
   /** The server's address without the token, for commands to print. */
@@ -779,8 +786,10 @@ export class RemoteSink implements Sink {
   }
 }
 
-/** Accepts `ws:` and `wss:` URLs with a host and without a fragment (RFC 6455 §3 forbids fragments). */
-/** The ingest URL for a server address: ws(s)://, or the http(s):// address `serve` prints; path /ingest by default. */
+/**
+ * The ingest URL for a server address: ws(s)://, or the http(s):// address `serve` prints; path /ingest by
+ * default. It needs a host and no fragment (RFC 6455 §3 forbids fragments).
+ */
 export function parseIngestUrl(raw: unknown): URL {
   const bad = (why: string) =>
     new TidemarkTypeError('TIDEMARK_ERR_REMOTE_URL', `RemoteSink url ${JSON.stringify(raw)} ${why}; expected ws://host:port or wss://host:port, or the server's http(s):// address (path /ingest by default).`);
@@ -799,13 +808,5 @@ export function parseIngestUrl(raw: unknown): URL {
   if (url.username !== '' || url.password !== '') throw bad('carries a user name or password; pass the token option instead');
   if (url.pathname === '/' || url.pathname === '') url.pathname = '/ingest';
   return url;
-}
-
-function integerOption(name: string, value: number | undefined, fallback: number, min: number): number {
-  if (value === undefined) return fallback;
-  const message = `RemoteSink option ${name} must be an integer ≥ ${min}; received ${String(value)}.`;
-  if (typeof value !== 'number') throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', message);
-  if (!Number.isSafeInteger(value) || value < min) throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', message);
-  return value;
 }
 
