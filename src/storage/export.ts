@@ -172,14 +172,16 @@ export interface ImportReport {
 interface FileScan {
   runs: string[];
   windowsInFile: Map<string, number>;
-  withRunRecord: Set<string>;
+  /** Per run with a run record: its start; per run with windows: the time of its last one (an unended run's heartbeat). */
+  startedAt: Map<string, number>;
+  lastTime: Map<string, number>;
   ended: Set<string>;
   tornLastLine: boolean;
 }
 
 /** Reads the whole file once without writing: what it holds, and whether it is complete. */
 async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: number) => void): Promise<FileScan> {
-  const scan: FileScan = { runs: [], windowsInFile: new Map(), withRunRecord: new Set(), ended: new Set(), tornLastLine: false };
+  const scan: FileScan = { runs: [], windowsInFile: new Map(), startedAt: new Map(), lastTime: new Map(), ended: new Set(), tornLastLine: false };
   let pendingError: { line: number; error: unknown } | null = null;
   let lineNo = 0;
   const see = (run: unknown): void => {
@@ -205,13 +207,15 @@ async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: num
       for (const record of records) {
         if (record.type === 'run' && typeof record.run?.id === 'string') {
           see(record.run.id);
-          scan.withRunRecord.add(record.run.id);
+          if (!scan.startedAt.has(record.run.id)) scan.startedAt.set(record.run.id, record.run.started_at);
         } else if (record.type === 'end') {
           see(record.run);
           scan.ended.add(record.run);
         } else if (record.type === 'window') {
-          see(record.window?.run);
-          scan.windowsInFile.set(record.window.run, (scan.windowsInFile.get(record.window.run) ?? 0) + 1);
+          const run = record.window?.run;
+          see(run);
+          scan.windowsInFile.set(run, (scan.windowsInFile.get(run) ?? 0) + 1);
+          if (typeof record.window?.time === 'number') scan.lastTime.set(run, Math.max(scan.lastTime.get(run) ?? -Infinity, record.window.time));
         }
         onRecord?.(record, lineNo);
       }
@@ -263,7 +267,7 @@ export async function importJsonl(store: Store, path: string, options: { partial
     );
   }
   for (const id of scan.runs) {
-    if (!scan.withRunRecord.has(id) && windowsStored(store, id) === null) {
+    if (!scan.startedAt.has(id) && windowsStored(store, id) === null) {
       throw new TidemarkTypeError(
         'TIDEMARK_ERR_RECORD_INVALID',
         `${path} holds records of run ${id} but not its run record, and this store does not know the run: it is a spill file whose first batches reached the server. Send it there with 'tidemark resend ${path} --to <server address>'.`,
@@ -271,8 +275,6 @@ export async function importJsonl(store: Store, path: string, options: { partial
     }
   }
   const before = new Map(scan.runs.map((id) => [id, windowsStored(store, id) ?? 0]));
-  const lastTime = new Map<string, number>();
-  const started = new Map<string, number>();
   let batch: SinkRecord[] = [];
   let batchLine = 0;
   let lineNo = 0;
@@ -288,21 +290,16 @@ export async function importJsonl(store: Store, path: string, options: { partial
     }
     batch = [];
   };
+  // The second pass writes; what the file holds is known from the first.
   await scanJsonl(path, (record, line) => {
     lineNo = line;
     if (batch.length === 0) batchLine = line;
-    if (record.type === 'run') {
-      // The store creates a run from its run record; a resent run record is a no-op.
-      if (!started.has(record.run.id)) started.set(record.run.id, record.run.started_at);
-    } else if (record.type === 'window' && typeof record.window?.time === 'number') {
-      lastTime.set(record.window.run, Math.max(lastTime.get(record.window.run) ?? -Infinity, record.window.time));
-    }
     batch.push(record);
     if (batch.length >= IMPORT_BATCH) flush();
   });
   flush();
   for (const id of unended) {
-    const at = lastTime.get(id) ?? started.get(id);
+    const at = scan.lastTime.get(id) ?? scan.startedAt.get(id);
     if (at !== undefined) store.heartbeat(id, at);
   }
   const windows: ImportReport['windows'] = {};
