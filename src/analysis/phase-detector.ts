@@ -201,14 +201,12 @@ export class PhaseDetector {
   private networkSince: number | null = null;
   /** Floor-corrected squared SNR below which levels are clamped: 10^(floorClampDb/10). */
   private readonly lowestSq: number;
-  /** Successive differences in the noise estimate, and the length of each layer's ring buffers. */
-  private readonly noiseWindows: number;
+  /** The length of each layer's ring buffers. */
   private readonly cap: number;
 
   constructor(options: PhaseOptions = {}) {
     this.o = checkOptions(options, PHASE_RULES, PHASE_DEFAULTS, { owner: 'PhaseDetector' }) as Required<PhaseOptions>;
-    this.noiseWindows = this.o.noiseWindows;
-    this.cap = Math.max(HISTORY, this.noiseWindows + 1);
+    this.cap = Math.max(HISTORY, this.o.noiseWindows + 1);
     this.lowestSq = 10 ** (this.o.floorClampDb / 10);
   }
 
@@ -303,7 +301,7 @@ export class PhaseDetector {
       centers: new Float64Array(this.cap),
       levels: new Float64Array(this.cap),
       zs: new Float64Array(this.cap),
-      diffs: new RollingMedian(this.noiseWindows),
+      diffs: new RollingMedian(this.o.noiseWindows),
       n: 0,
       changedAt: -1,
       params,
@@ -353,7 +351,7 @@ export class PhaseDetector {
   private noise(t: LayerTrack, i: number): number {
     const o = this.o;
     const cap = this.cap;
-    const w = this.noiseWindows;
+    const w = this.o.noiseWindows;
     if (i > 0) t.diffs.push(Math.abs(t.levels[i % cap]! - t.levels[(i - 1) % cap]!));
     if (Math.min(i, w) < 5) return o.noiseDb;
     const med = t.diffs.median();

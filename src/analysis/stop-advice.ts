@@ -44,9 +44,12 @@ export interface AdviceOptions {
 
 export const ADVICE_DEFAULTS = Object.freeze({ patience: 10, minGain: 0.05, diffusionRatio: 1 });
 
+/** Fewest values a trend test takes: the least `patience` may be. */
+const MIN_VALUES = 5;
+
 /** The range of each option; checked by the StopAdvisor, monitor() and `tidemark analyze` alike. */
 export const ADVICE_RULES: OptionSchema = Object.freeze({
-  patience: { type: 'number', integer: true, min: 5, max: 100_000 },
+  patience: { type: 'number', integer: true, min: MIN_VALUES, max: 100_000 },
   minGain: { type: 'number', above: 0, below: 1 },
   diffusionRatio: { type: 'number', min: 0, max: 1000 },
   watch: { type: 'string', nonEmpty: true },
@@ -129,7 +132,6 @@ export function zeroGradients(w: AdviceInput): { network: boolean; layers: strin
 const ACCURACY_NAMES = ['val_acc', 'val_accuracy'];
 /** Quantities where larger is better (accuracy, area under a curve, precision, recall, F1). */
 const HIGHER_IS_BETTER = /acc|auc|precision|recall|f1/i;
-const MIN_VALUES = 5;
 const HISTORY = 4096;
 
 /** Least squares of ys on ln(steps): gain per doubling and its one-sided 95 % upper bound. */
@@ -219,7 +221,7 @@ export class StopAdvisor {
     this.lastNetwork = phase.network;
     const higher = watch !== null && HIGHER_IS_BETTER.test(watch);
     const value = watch === null ? undefined : w.logs[watch];
-    const p = Math.max(MIN_VALUES, Math.round(this.o.patience));
+    const p = this.o.patience;
     const fresh = value !== undefined && Number.isFinite(value);
     if (fresh) {
       this.steps.push(w.step);

@@ -3,7 +3,6 @@
  * minibatch gradients into a WindowRecord. Everything that can fail during training is caught and
  * reported (unless `strict`), because monitoring must never break the run it watches.
  */
-import { closestName } from '../option-check.js';
 import { randomUUID } from 'node:crypto';
 import * as tf from '@tensorflow/tfjs';
 import { snrFloor } from '../analysis/gradient-stats.js';
@@ -12,6 +11,7 @@ import { PhaseDetector } from '../analysis/phase-detector.js';
 import { adviceChanged, StopAdvisor, zeroGradients, type Advice } from '../analysis/stop-advice.js';
 import { CompressionDetector, type CompressionEvent } from '../analysis/compression-detector.js';
 import { codeOf, describeCause, TidemarkError, type ErrorCode, type MonitorWarning } from '../errors.js';
+import { closestName } from '../option-check.js';
 import type {
   LayerStats,
   Marker,

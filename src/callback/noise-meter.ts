@@ -12,11 +12,11 @@
  * the last estimate, so that the rows drawn are a few times the noise scale. It is synchronous, so no
  * optimizer step can run in between, even in a custom loop.
  */
-import { checkOptions, invalidOption, satisfies, type OptionSchema } from '../option-check.js';
 import * as tf from '@tensorflow/tfjs';
 import { addGrams, noiseFromGram, type FixedWeightNoise, type NoiseDesign } from '../analysis/fixed-weight-noise.js';
 import { mulberry32 } from '../analysis/random.js';
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
+import { checkOptions, invalidOption, satisfies, type OptionSchema } from '../option-check.js';
 import type { NoiseSample } from '../protocol/records.js';
 import type { ModelView } from './model-layers.js';
 import { TrainingRows, type RowSet } from './training-rows.js';

@@ -105,12 +105,12 @@ const KNOWN = [
 
 /** In design.md's contract, built in later versions. */
 
-/** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
 /** A tidemark server's address: ws(s):// for ingest, or the http(s):// address `serve` prints. */
 export function isServerUrl(store: string): boolean {
   return /^(wss?|https?):\/\//i.test(store);
 }
 
+/** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
 export function defaultStore(): string {
   const env = process.env.TIDEMARK_DB;
   return env !== undefined && env !== '' ? env : 'tidemark.db';

@@ -4,13 +4,13 @@
  * information estimates (binned I(X;T), I(T;Y); pairwise bounds on I(X;T) for the layer plus Gaussian
  * noise). It runs between windows, after the optimizer step has returned, never inside the tap.
  */
-import { unknownOption } from '../option-check.js';
 import * as tf from '@tensorflow/tfjs';
 import { binnedInformation } from '../analysis/binned-information.js';
 import { labelClasses, type LabelKind } from '../analysis/label-bins.js';
 import { pairwiseInformationBounds } from '../analysis/pairwise-information.js';
 import { mulberry32 } from '../analysis/random.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.js';
+import { unknownOption } from '../option-check.js';
 import type { ModelView } from './model-layers.js';
 
 export interface ProbeOptions {

@@ -242,9 +242,9 @@ function parseTag(value: string, previous: Record<string, string> = {}): Record<
 
 /**
  * Says what is wrong with a store path before SQLite does (it would answer SQLITE_CANTOPEN or an I/O error):
- * a directory, or a file that does not exist where one is needed. Only `import` creates a store.
+ * a directory, or a file that does not exist where one is needed (`create` false). Returns whether it exists.
  */
-function checkStorePath(db: string, create: boolean): void {
+function checkStorePath(db: string, create: boolean): boolean {
   let isDir = false;
   let exists = false;
   try {
@@ -266,6 +266,7 @@ function checkStorePath(db: string, create: boolean): void {
       `There is no store at ${db}. A monitored training run creates one (monitor(model) writes tidemark.db in its working directory; 'npm run demo' makes one to look at), 'tidemark import FILE --db ${db}' creates one from a JSON Lines file, or point --db (or TIDEMARK_DB) at an existing store.`,
     );
   }
+  return exists;
 }
 
 /** Writes an output file, with a coded error that says what is wrong with the path. */
@@ -286,8 +287,8 @@ function writeOut(path: string, text: string): void {
   }
 }
 
-function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T, create = false): T {
-  checkStorePath(db, create);
+function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T): T {
+  checkStorePath(db, false);
   const store = openStore(db, { readonly });
   try {
     return fn(store);
@@ -517,13 +518,7 @@ export function buildProgram(io: Io): Command {
     .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate', SERVER_RULES.ingestRate))
     .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
       const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
-      checkStorePath(db(), true);
-      let fresh = false;
-      try {
-        statSync(db());
-      } catch {
-        fresh = true;
-      }
+      const fresh = !checkStorePath(db(), true);
       const running = await startServer({
         db: db(),
         ...(o.port !== undefined ? { port: o.port } : {}),

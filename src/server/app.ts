@@ -3,7 +3,6 @@
  * JSON schema per route), the live stream for viewers and the ingest endpoint for remote writers (ws, on
  * the same HTTP server), and `/metrics` in the OpenMetrics text format.
  */
-import { checkOptions, closestName, type OptionSchema } from '../option-check.js';
 import { existsSync } from 'node:fs';
 import { readFile, stat } from 'node:fs/promises';
 import type { IncomingMessage } from 'node:http';
@@ -14,6 +13,7 @@ import { Ajv } from 'ajv';
 import Fastify, { type FastifyInstance, type FastifyReply, type FastifyRequest } from 'fastify';
 import { WebSocketServer, type RawData, type WebSocket } from 'ws';
 import { codeOf, ERROR_CODES, TidemarkError, TidemarkTypeError, type ErrorCode } from '../errors.js';
+import { checkOptions, closestName, type OptionSchema } from '../option-check.js';
 import { MAX_FRAME_BYTES, type BackfillMessage, type ErrorMessage, type IngestReply } from '../protocol/messages.js';
 import { windowPoints } from '../protocol/points.js';
 import { markerKey, type SinkRecord } from '../protocol/records.js';

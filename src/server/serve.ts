@@ -2,8 +2,8 @@
  * Starting the server: safe defaults first (loopback unless a token is set), then listen. Used by
  * `tidemark serve` and by `monitor(model, { serve: port })`.
  */
-import { checkOptions, type OptionSchema } from '../option-check.js';
 import { TidemarkError, TidemarkRangeError } from '../errors.js';
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { openStore } from '../storage/sqlite-store.js';
 import type { Store } from '../storage/store.js';
 import { buildServer, SERVER_RULES, type ServerOptions, type TidemarkServer } from './app.js';

@@ -6,12 +6,12 @@
  * batches move to a spill file and are read back from there. Nothing here throws into training: problems
  * go to `onError`, and records given up are counted in `dropped`.
  */
-import { checkOptions, type OptionSchema } from '../option-check.js';
 import { mkdir, open, rename, unlink, type FileHandle } from 'node:fs/promises';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import WebSocket, { type RawData } from 'ws';
 import { describeCause, TidemarkError, TidemarkRangeError, TidemarkTypeError, type ErrorCode } from '../errors.js';
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { MAX_FRAME_BYTES } from '../protocol/messages.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
 import { encodeRecord, type Sink } from './sink.js';
