@@ -104,9 +104,12 @@ export async function resendSpill(path: string, url: string, options: ResendOpti
   });
   const connectFailure = (why: string): TidemarkError =>
     new TidemarkError('TIDEMARK_ERR_REMOTE_CONNECT', `resend: ${shown.href} ${why}. Nothing after the last acknowledged batch was sent; run the same command again once the server is up (batches it already has are skipped).`);
-  const waitFor = async (done: () => boolean): Promise<void> => {
+  /** Resolves with what `probe` finds, waking on every socket event; throws when the socket fails or time runs out. */
+  const waitFor = async <T>(probe: () => T | undefined): Promise<T> => {
     const deadline = Date.now() + o.timeoutMs;
-    while (!done()) {
+    for (;;) {
+      const found = probe();
+      if (found !== undefined) return found;
       if (closed !== null) throw connectFailure(`could not be reached or closed the connection (${(closed as Error).message})`);
       const left = deadline - Date.now();
       if (left <= 0) throw connectFailure(`did not answer within ${o.timeoutMs} ms`);
@@ -121,21 +124,18 @@ export async function resendSpill(path: string, url: string, options: ResendOpti
     }
   };
   try {
-    await waitFor(() => ws.readyState === WebSocket.OPEN);
+    await waitFor(() => (ws.readyState === WebSocket.OPEN ? true : undefined));
     for (const frame of frames) {
       const msg = decodeJson(frame) as BatchMessage;
-      let reply: IngestReply | undefined;
+      let answer: IngestReply;
       // A refusal with retry (the store was busy, the rate limit) is tried again a few times after a pause.
       for (let attempt = 0; ; attempt++) {
         replies.length = 0;
-        reply = undefined;
         ws.send(frame);
-        await waitFor(() => (reply = replies.find((r) => r.seq === undefined || (r.seq === msg.seq && r.run === msg.run))) !== undefined);
-        const got = reply as IngestReply | undefined;
-        if (got === undefined || got.type !== 'error' || !got.retry || attempt >= 5) break;
+        answer = await waitFor(() => replies.find((r) => r.seq === undefined || (r.seq === msg.seq && r.run === msg.run)));
+        if (answer.type !== 'error' || !answer.retry || attempt >= 5) break;
         await new Promise((resolve) => setTimeout(resolve, 250 * 2 ** attempt));
       }
-      const answer = reply as unknown as IngestReply;
       if (answer.type === 'error') {
         throw new TidemarkError(
           'TIDEMARK_ERR_REMOTE_REFUSED',
