@@ -365,44 +365,37 @@ describe('monitor with a store that keeps refusing writes', () => {
 describe('gradients that are exactly zero', () => {
   // ReLU units whose bias is far below any input never fire: their gradient, and that of every weight
   // feeding them, is exactly zero (tfjs' ReLU gradient is the step x > 0).
-  function deadModel(outputBias: boolean, classes = 2): tf.Sequential {
+  /** Trains a model whose hidden layer is dead for two epochs; the monitor, and its gradient-zero warnings. */
+  async function trainDead(outputBias: boolean, classes: number) {
+    const c = collect();
     const model = tf.sequential();
     model.add(tf.layers.dense({ units: 6, inputShape: [4], activation: 'relu', biasInitializer: tf.initializers.constant({ value: -100 }), name: 'dead_hidden' }));
     model.add(tf.layers.dense({ units: classes, activation: 'softmax', useBias: outputBias, name: 'out' }));
     model.compile({ optimizer: tf.train.sgd(0.1), loss: 'categoricalCrossentropy' });
-    return model;
-  }
-
-  it('says once that the whole network no longer learns, and the advice gives that reason', async () => {
-    const c = collect();
-    const model = deadModel(false);
     const mon = await monitor(model, { store: 'memory', window: 4, noise: false, onWarning: c.onWarning });
-    const { xs, ys } = blobTensors(64, 4, 2);
+    const { xs, ys } = blobTensors(64, 4, classes);
     await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
     await mon.close();
     tf.dispose([xs, ys]);
-    const zero = c.warnings.filter((w) => w.code === 'TIDEMARK_ERR_GRADIENTS_ZERO');
+    model.dispose();
+    return { mon, zero: c.warnings.filter((w) => w.code === 'TIDEMARK_ERR_GRADIENTS_ZERO') };
+  }
+
+  it('says once that the whole network no longer learns, and the advice gives that reason', async () => {
+    const { mon, zero } = await trainDead(false, 2);
     expect(zero).toHaveLength(1);
     expect(zero[0]!.message).toContain('every gradient of the network was exactly zero: it no longer learns');
     expect(mon.advice()).toMatchObject({ verdict: 'continue', stage: 'gradients-zero' });
     expect(mon.markers().find((m) => m.kind === 'advice')?.details.reason).toContain('no longer learns');
-    model.dispose();
   });
 
   it('names dead layers while the rest learns, and they do not hold the advice back', async () => {
-    const c = collect();
     // Three classes in batches of 8 are never balanced, so the output bias always gets a gradient.
-    const model = deadModel(true, 3);
-    const mon = await monitor(model, { store: 'memory', window: 4, noise: false, onWarning: c.onWarning });
-    const { xs, ys } = blobTensors(64, 4, 3);
-    await model.fit(xs, ys, { epochs: 2, batchSize: 8, shuffle: false, verbose: 0, callbacks: [mon.callback] });
-    await mon.close();
-    tf.dispose([xs, ys]);
-    const zero = c.warnings.filter((w) => w.code === 'TIDEMARK_ERR_GRADIENTS_ZERO');
+    const { mon, zero } = await trainDead(true, 3);
     expect(zero).toHaveLength(1);
     expect(zero[0]!.message).toContain('every gradient of layer dead_hidden was exactly zero: it no longer learns (dead units)');
     expect(mon.advice()!.stage).not.toBe('gradients-zero');
     expect(mon.advice()!.reason).not.toContain('dead_hidden is not known');
-    model.dispose();
   });
 });
+

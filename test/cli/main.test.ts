@@ -9,6 +9,7 @@ import { monitor } from '../../src/index.js';
 import { startServer } from '../../src/server/serve.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
+import { BUILT_BIN, builtCli } from '../helpers/cli.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-cli-'));
@@ -22,6 +23,17 @@ async function run(...args: string[]) {
 }
 
 const db = join(dir, 'runs.db');
+
+/** A small two-class run (lr 0.2, windows of 4, batch 16, fit's shuffle off) trained into a store; its monitor. */
+async function trainInto(file: string, run: string, samples: number, epochs: number) {
+  const { xs, ys } = blobTensors(samples, 4, 2);
+  const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
+  const mon = await monitor(model, { store: file, run, window: 4 });
+  await model.fit(xs, ys, { epochs, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
+  await mon.close();
+  tf.dispose([xs, ys]);
+  return mon;
+}
 const jsonl = join(dir, 'runs.jsonl');
 const runIds: string[] = [];
 
@@ -217,12 +229,7 @@ describe('tidemark binary', () => {
 describe('tidemark analyze', () => {
   it('reproduces the online markers with the same settings, and writes offline ones only with --write', async () => {
     const file = join(dir, 'analyze.db');
-    const { xs, ys } = blobTensors(256, 4, 2);
-    const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
-    const mon = await monitor(model, { store: file, run: 'to-analyze', window: 4 });
-    await model.fit(xs, ys, { epochs: 12, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
-    await mon.close();
-    tf.dispose([xs, ys]);
+    const mon = await trainInto(file, 'to-analyze', 256, 12);
     const online = mon.markers().filter((m) => m.kind === 'drift-start' || m.kind === 'diffusion-start');
     expect(online.length).toBeGreaterThan(0);
 
@@ -261,17 +268,11 @@ describe('tidemark analyze', () => {
 });
 
 describe('tidemark analyze: settings are range-checked (the built command)', () => {
-  // The built binary, as a user runs it (npm install builds dist/ through `prepare`).
-  const cli = (...args: string[]) => spawnSync(process.execPath, ['dist/cli/bin.js', ...args], { encoding: 'utf8' });
+  const cli = builtCli;
   let file = '';
   beforeAll(async () => {
     file = join(dir, 'ranges.db');
-    const { xs, ys } = blobTensors(128, 4, 2);
-    const model = denseModel({ inputs: 4, hidden: [6], outputs: 2, lr: 0.2 });
-    const mon = await monitor(model, { store: file, run: 'ranges', window: 4 });
-    await model.fit(xs, ys, { epochs: 3, batchSize: 16, shuffle: false, verbose: 0, callbacks: [mon.callback] });
-    await mon.close();
-    tf.dispose([xs, ys]);
+    await trainInto(file, 'ranges', 128, 3);
   });
 
   it.each([
@@ -304,7 +305,7 @@ describe('tidemark analyze: settings are range-checked (the built command)', () 
 });
 
 describe('messages for a wrong path or address (the built command)', () => {
-  const cli = (...args: string[]) => spawnSync(process.execPath, ['dist/cli/bin.js', ...args], { encoding: 'utf8', cwd: process.cwd() });
+  const cli = builtCli;
 
   it('says there is no store at a path that does not exist, and creates nothing', () => {
     const missing = join(dir, 'nothing-here.db');
@@ -335,7 +336,7 @@ describe('messages for a wrong path or address (the built command)', () => {
 
   it('serve says when its store is new and empty, and prints the page link with its token', async () => {
     const fresh = join(dir, 'typo.db');
-    const child = spawn(process.execPath, ['dist/cli/bin.js', 'serve', '--db', fresh, '--port', '0', '--token', 'tok-en/12345'], { stdio: ['ignore', 'pipe', 'pipe'] });
+    const child = spawn(process.execPath, [BUILT_BIN, 'serve', '--db', fresh, '--port', '0', '--token', 'tok-en/12345'], { stdio: ['ignore', 'pipe', 'pipe'] });
     let out = '';
     child.stdout.on('data', (d: Buffer) => void (out += d.toString()));
     const deadline = Date.now() + 20_000;

@@ -3,7 +3,6 @@
  * message with the commands that read it, goes into a local store (`tidemark import`) or to the server once
  * it is up (`tidemark resend`), whole, and a second time without doubling anything.
  */
-import { spawnSync } from 'node:child_process';
 import { mkdtempSync, rmSync } from 'node:fs';
 import { createServer } from 'node:net';
 import { tmpdir } from 'node:os';
@@ -16,6 +15,7 @@ import { summarizeJsonl } from '../../src/storage/jsonl-reader.js';
 import { RemoteSink } from '../../src/storage/remote-sink.js';
 import { resendSpill } from '../../src/storage/resend.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
+import { builtCli } from '../helpers/cli.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-resend-'));
@@ -105,7 +105,7 @@ describe('a run whose server was down the whole time', () => {
   });
 
   it('works from the built command line: import prints what was new, resend refuses an export', () => {
-    const cli = (...args: string[]) => spawnSync(process.execPath, ['dist/cli/bin.js', ...args], { encoding: 'utf8' });
+    const cli = builtCli;
     const db = join(dir, 'cli.db');
     const first = cli('import', spill, '--db', db);
     expect(first.status).toBe(0);
