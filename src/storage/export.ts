@@ -57,7 +57,8 @@ export const CSV_WINDOW_COLUMNS = [
  * `scope` is `network`, `layer` or `variable` (then `layer` is the owning layer). `window_batches`
  * is the window's K; the metric `batches` counts the gradients that entered the statistics. What
  * `fit` logged (loss, val_loss, …) is repeated on every row of its window, so any filtered view keeps
- * it; a log whose name clashes with another column gets the prefix `log_`. Empty fields are missing
+ * it; a log whose name clashes with another column gets the prefix `log_`. `epoch` counts from 1
+ * (the window records keep fit's 0-based index). Empty fields are missing
  * values (null, or a log not recorded in that window); NaN and ±Infinity are written as `NaN`,
  * `Infinity` and `-Infinity`, numbers with round-trip precision.
  */
@@ -102,7 +103,8 @@ export function* csvLines(store: Store, runId: string): Generator<string> {
       w.index,
       w.first_step,
       w.step,
-      w.epoch,
+      // Counted from 1, as fit's own progress lines, the demo and `summary` count; records keep fit's index.
+      w.epoch == null ? null : w.epoch + 1,
       w.batches,
       w.batch_size,
       w.batches_per_epoch,
