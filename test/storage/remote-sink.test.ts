@@ -9,7 +9,7 @@ import { createServer, type Server } from 'node:http';
 import type { AddressInfo } from 'node:net';
 import { tmpdir } from 'node:os';
 import { basename, dirname, join } from 'node:path';
-import { afterAll, afterEach, describe, expect, it } from 'vitest';
+import { afterAll, afterEach, describe, expect, it, vi } from 'vitest';
 import WebSocket, { WebSocketServer } from 'ws';
 import { MAX_FRAME_BYTES, type BatchMessage } from '../../src/protocol/messages.js';
 import type { RunInfo, SinkRecord } from '../../src/protocol/records.js';
@@ -22,6 +22,9 @@ afterAll(() => rmSync(dir, { recursive: true, force: true }));
 const run: RunInfo = { id: 'run-1', name: 'n', group: null, tags: {}, started_at: 0, config: {}, layers: [] };
 const warning = (i: number, message = `m${i}`): SinkRecord => ({ type: 'warning', run: run.id, code: 'X', message, step: i, time: i });
 const warnings = (from: number, n: number): SinkRecord[] => Array.from({ length: n }, (_, i) => warning(from + i));
+/** Real event-loop time for socket and file I/O while the sink's timers are faked (captured before any faking). */
+const realSetTimeout = globalThis.setTimeout;
+const realTurns = (ms = 50): Promise<void> => new Promise((r) => realSetTimeout(r, ms));
 /** Small delays so reconnects happen within a test's few seconds. */
 const FAST = { initialMs: 20, maxMs: 100 };
 
@@ -147,6 +150,7 @@ class FakeIngest {
 const servers: FakeIngest[] = [];
 const sinks: RemoteSink[] = [];
 afterEach(async () => {
+  vi.useRealTimers();
   await Promise.all(sinks.splice(0).map((s) => s.close()));
   await Promise.all(servers.splice(0).map((s) => s.stop()));
 });
@@ -360,11 +364,20 @@ describe('RemoteSink', () => {
     const written = warnings(0, 9);
     for (const r of written) sink.write(r);
 
-    const started = performance.now();
-    await sink.close();
-    const elapsed = performance.now() - started;
-    expect(elapsed).toBeGreaterThanOrEqual(390);
-    expect(elapsed).toBeLessThan(400 + 1500);
+    // The sink's clock (Date, timers) is faked from here, so the timeout is checked on that clock,
+    // not on the shared machine's; socket and file I/O stay real and get real turns to finish.
+    vi.useFakeTimers({ toFake: ['Date', 'setTimeout', 'clearTimeout', 'setInterval', 'clearInterval'] });
+    let closed = false;
+    const closing = sink.close().then(() => (closed = true));
+    await vi.advanceTimersByTimeAsync(399);
+    await realTurns();
+    expect(closed).toBe(false);
+    await vi.advanceTimersByTimeAsync(1);
+    // Past the timeout the socket gets no grace (deadline − now = 0): what is left is the spill file's I/O.
+    for (let i = 0; i < 200 && !closed; i++) await realTurns(5);
+    vi.useRealTimers();
+    await closing;
+    expect(closed).toBe(true);
 
     expect(sink.dropped).toBe(10);
     expect(codes(errors)).toEqual(['TIDEMARK_ERR_REMOTE_CONNECT', 'TIDEMARK_ERR_REMOTE_UNSENT']);
