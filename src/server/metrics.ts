@@ -115,7 +115,7 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
 
 /**
  * OpenMetrics unless the client asks for the older Prometheus text format only (an Accept header naming
- * text/plain and not application/openmetrics-text): Prometheus itself asks for both and gets OpenMetrics.
+ * text/plain and not application/openmetrics-text): a scraper that accepts both gets OpenMetrics.
  */
 export function metricsText(store: Store, ctx: MetricsContext, accept = ''): { contentType: string; text: string } {
   const families = metricsFamilies(store, ctx);

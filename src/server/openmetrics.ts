@@ -20,10 +20,9 @@
  * surrogates, which cannot be encoded as UTF-8 and become U+FFFD.
  *
  * Enumerations such as a layer's phase: OpenMetrics has the `stateset` type for them, and this
- * writer renders it, but promtool 2.42 (Debian bookworm), whose `check metrics` reads the
- * Prometheus 0.0.4 text format, refuses the `stateset` type. The server therefore exposes phases as
- * a `gauge` with a state label (1 for the current state, 0 for the others), which both formats and
- * every Prometheus version accept.
+ * writer renders it, but the 0.0.4 text format has no such type. The server therefore exposes phases
+ * as a `gauge` with a state label (1 for the current state, 0 for the others), which reads the same
+ * in both formats.
  */
 
 /** The HTTP Content-Type of {@link renderOpenMetrics} output (OpenMetrics 1.0, "Overall Structure"). */
