@@ -2,7 +2,10 @@
  * Where a monitor's records go. A sink's `write` is called from training hooks, so it must return
  * at once and buffer; the slow part happens in `flush`, off the training path.
  */
+import { decodeJson, encodeJson } from '../protocol/json-codec.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
+
+export { decodeJson, encodeJson };
 
 export interface Sink {
   /** Called once before any record. May reject: the monitor then degrades to memory only. */
@@ -17,20 +20,8 @@ export interface Sink {
   readonly dropped: number;
 }
 
-/** JSON cannot hold NaN or ±Infinity; we write them as the strings "NaN", "Infinity", "-Infinity". */
-export function encodeJson(value: unknown): string {
-  return JSON.stringify(value, (_key, v: unknown) => (typeof v === 'number' && !Number.isFinite(v) ? String(v) : v));
-}
-
 export function encodeRecord(record: SinkRecord): string {
   return encodeJson(record);
-}
-
-const NON_FINITE: Record<string, number> = { NaN: Number.NaN, Infinity: Infinity, '-Infinity': -Infinity };
-
-/** Inverse of {@link encodeJson}. */
-export function decodeJson(text: string): unknown {
-  return JSON.parse(text, (_key, value: unknown) => (typeof value === 'string' && value in NON_FINITE ? NON_FINITE[value] : value));
 }
 
 /** Inverse of {@link encodeRecord}. */

@@ -6,24 +6,57 @@
  * Every SQLite failure is rethrown as a coded TidemarkError with the original as `cause`: SQLite's
  * own messages can quote SQL and never reach users as they are.
  */
-import { checkOptions, unknownOption, type OptionSchema } from '../option-check.js';
+import { checkOptions, type OptionSchema } from '../option-check.js';
 import { mkdirSync } from 'node:fs';
 import { dirname } from 'node:path';
 import Database from 'better-sqlite3';
-import { lttb } from '../analysis/lttb.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError, type ErrorCode } from '../errors.js';
 import type {
   LayerInfo,
-  LayerStats,
   Marker,
-  MarkerKind,
   RunInfo,
-  RunStatus,
   SinkRecord,
-  VariableStats,
   WindowRecord,
 } from '../protocol/records.js';
+import { decodeJson } from '../protocol/json-codec.js';
+import {
+  checkBatch,
+  checkRecords,
+  checkRun,
+  show,
+  type CheckedRecord,
+  type EndRowIn,
+  type MarkerRowIn,
+  type RunRowIn,
+  type WarningRowIn,
+  type WindowRowIn,
+} from './record-check.js';
 import { APPLICATION_ID, migrate, readSchemaState, SCHEMA_VERSION } from './schema.js';
+import {
+  ambiguousRun,
+  assembleWindows,
+  checkCursor,
+  checkFilter,
+  checkPruneBefore,
+  checkRunId,
+  checkRunRef,
+  checkSeriesQuery,
+  checkWindowQuery,
+  downsample,
+  markerOf,
+  num,
+  runNotFound,
+  runRefNotFound,
+  stepClash,
+  thinEvenly,
+  toRunRow,
+  WINDOW_SERIES,
+  type MarkerDbRow,
+  type RunDbRow,
+  type SeriesDbRow,
+  type WindowDbRow,
+  type WindowSeries,
+} from './store-reading.js';
 import type {
   RunDetail,
   RunFilter,
@@ -66,35 +99,9 @@ export function openStore(path: string, options: StoreOptions = {}): SqliteStore
   return new SqliteStore(path, options);
 }
 
-// ---------------------------------------------------------------------------------------------
-// JSON columns and numbers
-
-const NON_FINITE: Record<string, number> = { NaN: Number.NaN, Infinity: Infinity, '-Infinity': -Infinity };
-
-/** JSON.stringify, with NaN and ±Infinity as strings, as the JSON Lines sink writes them. */
-function toJson(value: unknown): string {
-  return JSON.stringify(value, (_k, v: unknown) => (typeof v === 'number' && !Number.isFinite(v) ? String(v) : v));
-}
-
-function fromJson<T>(text: string): T {
-  return JSON.parse(text, (_k, v: unknown) => (typeof v === 'string' && v in NON_FINITE ? NON_FINITE[v] : v)) as T;
-}
-
 /** SQLite turns a bound NaN into NULL anyway; saying so keeps the mapping visible. */
 function real(x: number): number | null {
   return Number.isNaN(x) ? null : x;
-}
-
-/** The inverse of {@link real} for columns that are never null in the record. */
-function num(x: number | null): number {
-  return x === null ? Number.NaN : x;
-}
-
-// ---------------------------------------------------------------------------------------------
-// Validation of options and arguments
-
-function checkKeys(where: string, given: object, known: readonly string[]): void {
-  for (const key of Object.keys(given)) if (!known.includes(key)) throw unknownOption(key, known, { owner: where });
 }
 
 const STORE_RULES: OptionSchema = Object.freeze({
@@ -105,51 +112,12 @@ const STORE_RULES: OptionSchema = Object.freeze({
   now: { type: 'function' },
 });
 
-function show(value: unknown): string {
-  if (typeof value === 'string') return JSON.stringify(value.length > 60 ? `${value.slice(0, 60)}…` : value);
-  if (typeof value === 'number' || typeof value === 'boolean' || value === null || value === undefined) return String(value);
-  return Array.isArray(value) ? 'an array' : `a ${typeof value}`;
-}
-
-function invalidOption(where: string, name: string, expected: string, got: unknown): TidemarkTypeError {
-  return new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option '${name}' must be ${expected}; received ${show(got)}.`);
-}
-
 function resolveOptions(path: unknown, options: unknown): Required<StoreOptions> {
   if (typeof path !== 'string' || path.length === 0) {
     throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `openStore: path must be a non-empty string; received ${show(path)}.`);
   }
   return checkOptions<Required<StoreOptions>>(options, STORE_RULES, DEFAULTS, { owner: 'openStore' });
 }
-
-function badRecord(message: string): TidemarkTypeError {
-  return new TidemarkTypeError('TIDEMARK_ERR_RECORD_INVALID', `append: ${message}`);
-}
-
-function isObject(x: unknown): x is Record<string, unknown> {
-  return typeof x === 'object' && x !== null && !Array.isArray(x);
-}
-
-function requireString(what: string, x: unknown): string {
-  if (typeof x !== 'string') throw badRecord(`${what} must be a string; received ${show(x)}.`);
-  return x;
-}
-
-function requireFinite(what: string, x: unknown): number {
-  if (typeof x !== 'number' || !Number.isFinite(x)) throw badRecord(`${what} must be a finite number; received ${show(x)}.`);
-  return x;
-}
-
-function requireNumber(what: string, x: unknown): number {
-  if (typeof x !== 'number') throw badRecord(`${what} must be a number (NaN and ±Infinity allowed); received ${show(x)}.`);
-  return x;
-}
-
-function optionalFinite(what: string, x: unknown): number | null {
-  return x === null ? null : requireFinite(what, x);
-}
-
-const RUN_STATUSES: readonly RunStatus[] = ['running', 'finished', 'failed', 'interrupted'];
 
 // ---------------------------------------------------------------------------------------------
 // SQLite errors → coded errors
@@ -185,52 +153,6 @@ function wrap(code: ErrorCode, doing: string, e: unknown): Error {
 // ---------------------------------------------------------------------------------------------
 // Row shapes
 
-interface RunDbRow {
-  id: string;
-  name: string;
-  group_name: string | null;
-  tags: string;
-  status: RunStatus;
-  created_at: number;
-  ended_at: number | null;
-  end_step: number | null;
-  heartbeat_at: number;
-  last_step: number | null;
-  window_count: number;
-  config: string;
-}
-
-interface WindowDbRow {
-  idx: number;
-  first_step: number;
-  step: number;
-  epoch: number | null;
-  batches: number;
-  batch_size: number | null;
-  batches_per_epoch: number | null;
-  pass_batches: string;
-  snr_floor: number | null;
-  time: number;
-  noise: string | null;
-}
-
-interface SeriesDbRow {
-  id: number;
-  scope: SeriesScope;
-  layer: string | null;
-  variable: string | null;
-  metric: string;
-}
-
-interface MarkerDbRow {
-  layer: string | null;
-  kind: MarkerKind;
-  step: number | null;
-  detected_step: number | null;
-  confidence: number | null;
-  details: string;
-}
-
 /** Series ids of one run, by scope, so a point costs two Map lookups rather than a query. */
 interface RunSeriesIds {
   network: Map<string, number>;
@@ -239,19 +161,12 @@ interface RunSeriesIds {
   variable: Map<string, Map<string, number>>;
 }
 
-/** Window fields that read as run-level series, served from the windows table. */
-const WINDOW_SERIES = ['snr_floor', 'epoch', 'batch_size'] as const;
-/** Layer and network statistics a record carries as null (not yet estimable) rather than leaving out. */
-const NULLABLE_METRICS: ReadonlySet<string> = new Set(['noise_scale', 'travel_exponent']);
-type WindowSeries = (typeof WINDOW_SERIES)[number];
 
 const RUN_COLUMNS =
   'id, name, group_name, tags, status, created_at, ended_at, end_step, heartbeat_at, last_step, window_count, config';
 /** The stored status, or `interrupted` for a running run whose writer stopped heartbeating. */
 const STATUS_EXPR = "CASE WHEN status = 'running' AND heartbeat_at < @cutoff THEN 'interrupted' ELSE status END";
 
-const SERIES_QUERY_KEYS = ['layer', 'from', 'to', 'points', 'last'] as const;
-const FILTER_KEYS = ['name', 'group', 'tags', 'status', 'limit'] as const;
 
 type Stmt = Database.Statement<unknown[], unknown>;
 
@@ -482,29 +397,25 @@ export class SqliteStore implements Store {
   // Writing
 
   beginRun(run: RunInfo): void {
-    this.write('beginRun', () => this.insertRun(run));
+    const checked = checkRun(run);
+    this.write('beginRun', () => this.insertRun(checked));
   }
 
   append(records: readonly SinkRecord[]): void {
-    if (!Array.isArray(records)) throw badRecord(`expected an array of records; received ${show(records)}.`);
-    this.write('append', () => this.appendRecords(records));
+    const checked = checkRecords(records);
+    this.write('append', () => this.appendRecords(checked));
   }
 
   appendBatch(runId: string, seq: number, records: readonly SinkRecord[]): { duplicate: boolean } {
-    if (typeof runId !== 'string' || runId.length === 0) throw badRecord(`appendBatch: run must be a non-empty string; received ${show(runId)}.`);
-    if (!Number.isSafeInteger(seq) || seq < 0) throw badRecord(`appendBatch: seq must be an integer ≥ 0; received ${show(seq)}.`);
-    if (!Array.isArray(records)) throw badRecord(`expected an array of records; received ${show(records)}.`);
-    records.forEach((r, i) => {
-      const owner = !isObject(r) ? undefined : r.type === 'run' ? (r.run as { id?: unknown } | undefined)?.id : r.type === 'window' ? (r.window as { run?: unknown } | undefined)?.run : r.type === 'marker' ? (r.marker as { run?: unknown } | undefined)?.run : r.run;
-      if (owner !== runId) throw badRecord(`record ${i} of batch ${seq} belongs to run ${show(owner)}, not to the batch's run ${show(runId)}.`);
-    });
+    checkBatch(runId, seq, records);
+    const checked = checkRecords(records);
     let duplicate = false;
     this.write('appendBatch', () => {
       if (this.stmt('findBatch').get(runId, seq) !== undefined) {
         duplicate = true;
         return;
       }
-      this.appendRecords(records);
+      this.appendRecords(checked);
       if (this.stmt('runExists').get(runId) === undefined) {
         throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `appendBatch: run ${show(runId)} is not in the store; its first batch must hold its run record.`);
       }
@@ -513,18 +424,16 @@ export class SqliteStore implements Store {
     return { duplicate };
   }
 
-  private appendRecords(records: readonly SinkRecord[]): void {
+  private appendRecords(records: readonly CheckedRecord[]): void {
     const now = this.opts.now();
     const touched = new Map<string, { count: number; last: number }>();
-    for (let i = 0; i < records.length; i++) {
-      const r: unknown = records[i];
-      if (!isObject(r)) throw badRecord(`record ${i} is ${show(r)}, not an object.`);
+    records.forEach((r, i) => {
       switch (r.type) {
         case 'run':
-          this.insertRun(r.run as RunInfo);
+          this.insertRun(r.run);
           break;
         case 'window': {
-          const w = r.window as WindowRecord;
+          const w = r.window;
           if (this.insertWindow(w, i)) {
             const t = touched.get(w.run) ?? { count: 0, last: w.step };
             t.count++;
@@ -534,137 +443,67 @@ export class SqliteStore implements Store {
           break;
         }
         case 'marker':
-          this.insertMarker(r.marker as Marker, i);
+          this.insertMarker(r.marker);
           break;
         case 'warning':
-          this.insertWarning(r, i);
+          this.insertWarning(r.warning);
           break;
         case 'end':
-          this.endRun(r, i);
+          this.endRun(r.end);
           break;
-        default:
-          throw badRecord(`record ${i} has type ${show(r.type)}; expected run, window, marker, warning or end.`);
       }
-    }
+    });
     for (const [runId, t] of touched) this.stmt('countWindows').run(t.count, t.last, t.last, now, runId);
   }
 
   heartbeat(runId: string, now: number = this.opts.now()): void {
     this.write('heartbeat', () => {
-      if (this.stmt('touchRun').run(now, runId).changes === 0) throw this.notFound(runId);
+      if (this.stmt('touchRun').run(now, runId).changes === 0) throw runNotFound(runId);
     });
   }
 
-  private insertRun(run: RunInfo): void {
-    if (!isObject(run)) throw badRecord(`a run record needs a 'run' object; received ${show(run)}.`);
-    const id = requireString('run.id', run.id);
-    if (id.length === 0) throw badRecord('run.id must not be empty.');
-    const name = requireString('run.name', run.name);
-    const group = run.group === null ? null : requireString('run.group', run.group);
-    if (!isObject(run.tags) || !Object.values(run.tags).every((v) => typeof v === 'string')) {
-      throw badRecord(`run.tags must be an object of strings; received ${show(run.tags)}.`);
-    }
-    const started = requireFinite('run.started_at', run.started_at);
-    if (!isObject(run.config)) throw badRecord(`run.config must be an object; received ${show(run.config)}.`);
-    if (!Array.isArray(run.layers)) throw badRecord(`run.layers must be an array; received ${show(run.layers)}.`);
-    const inserted = this.stmt('insertRun').run(id, name, group, toJson(run.tags), started, this.opts.now(), toJson(run.config));
+  private insertRun(run: RunRowIn): void {
+    const inserted = this.stmt('insertRun').run(run.id, run.name, run.group, run.tags, run.started, this.opts.now(), run.config);
     if (inserted.changes === 0) {
       // The same run begun again (a resumed writer): it is alive.
-      this.stmt('touchRun').run(this.opts.now(), id);
+      this.stmt('touchRun').run(this.opts.now(), run.id);
       return;
     }
-    run.layers.forEach((l: LayerInfo, position) => {
-      if (!isObject(l)) throw badRecord(`run.layers[${position}] must be an object.`);
-      this.stmt('insertLayer').run(
-        id,
-        position,
-        requireString(`run.layers[${position}].name`, l.name),
-        requireString(`run.layers[${position}].class_name`, l.class_name),
-        requireFinite(`run.layers[${position}].params`, l.params),
-        toJson(l.variables ?? []),
-      );
-    });
+    for (const l of run.layers) this.stmt('insertLayer').run(run.id, l.position, l.name, l.class_name, l.params, l.variables);
   }
 
   /** Returns false when the window was already stored (a resend). */
-  private insertWindow(w: WindowRecord, i: number): boolean {
-    if (!isObject(w)) throw badRecord(`record ${i}: a window record needs a 'window' object.`);
-    const runId = requireString(`record ${i}: window.run`, w.run);
-    const index = requireFinite(`record ${i}: window.index`, w.index);
-    const step = requireFinite(`record ${i}: window.step`, w.step);
-    if (!Array.isArray(w.pass_batches) || !w.pass_batches.every((k) => typeof k === 'number')) {
-      throw badRecord(`record ${i}: window.pass_batches must be an array of numbers.`);
-    }
-    if (w.noise != null && (!isObject(w.noise) || typeof (w.noise as { status?: unknown }).status !== 'string')) {
-      throw badRecord(`record ${i}: window.noise must be null or an object with a status.`);
-    }
-    if (!isObject(w.layers) || !isObject(w.network) || !isObject(w.logs)) {
-      throw badRecord(`record ${i}: window ${index} of run ${show(runId)} needs 'layers', 'network' and 'logs' objects.`);
-    }
+  private insertWindow(w: WindowRowIn, i: number): boolean {
     let res: Database.RunResult;
     try {
       res = this.stmt('insertWindow').run(
-        runId,
-        index,
-        requireFinite(`record ${i}: window.first_step`, w.first_step),
-        step,
-        optionalFinite(`record ${i}: window.epoch`, w.epoch),
-        requireFinite(`record ${i}: window.batches`, w.batches),
-        optionalFinite(`record ${i}: window.batch_size`, w.batch_size),
-        optionalFinite(`record ${i}: window.batches_per_epoch`, w.batches_per_epoch),
-        JSON.stringify(w.pass_batches),
-        real(requireNumber(`record ${i}: window.snr_floor`, w.snr_floor)),
-        requireFinite(`record ${i}: window.time`, w.time),
-        w.noise == null ? null : toJson(w.noise),
+        w.run,
+        w.index,
+        w.first_step,
+        w.step,
+        w.epoch,
+        w.batches,
+        w.batch_size,
+        w.batches_per_epoch,
+        w.pass_batches,
+        real(w.snr_floor),
+        w.time,
+        w.noise,
       );
     } catch (e) {
       const code = sqliteCode(e);
-      if (code === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw this.notFound(runId, 'append');
-      if (code === 'SQLITE_CONSTRAINT_UNIQUE') {
-        throw badRecord(`record ${i}: window ${index} of run ${show(runId)} has step ${step}, which another stored window of that run already has; steps must differ between windows.`);
-      }
+      if (code === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw runNotFound(w.run, 'append');
+      if (code === 'SQLITE_CONSTRAINT_UNIQUE') throw stepClash(i, w.index, w.run, w.step);
       throw e;
     }
     if (res.changes === 0) return false;
-
-    const ids = this.idsOf(runId);
-    this.metricPoints(ids, runId, 'network', null, null, w.network, step, i);
-    for (const [layer, stats] of Object.entries(w.layers)) {
-      if (!isObject(stats)) throw badRecord(`record ${i}: window.layers[${show(layer)}] must be an object.`);
-      this.metricPoints(ids, runId, 'layer', layer, null, stats, step, i);
-      const vars = stats.variables;
-      if (vars === undefined) continue;
-      if (!isObject(vars)) throw badRecord(`record ${i}: window.layers[${show(layer)}].variables must be an object.`);
-      for (const [variable, vstats] of Object.entries(vars)) {
-        if (!isObject(vstats)) throw badRecord(`record ${i}: variables[${show(variable)}] must be an object.`);
-        this.metricPoints(ids, runId, 'variable', layer, variable, vstats, step, i);
-      }
-    }
-    this.metricPoints(ids, runId, 'run', null, null, w.logs, step, i);
-    return true;
-  }
-
-  private metricPoints(
-    ids: RunSeriesIds,
-    runId: string,
-    scope: SeriesScope,
-    layer: string | null,
-    variable: string | null,
-    stats: object,
-    step: number,
-    i: number,
-  ): void {
+    const ids = this.idsOf(w.run);
     const insert = this.stmt('insertPoint');
-    for (const [metric, value] of Object.entries(stats)) {
-      if (metric === 'variables' && (scope === 'layer' || scope === 'network')) continue;
-      if (value !== null && typeof value !== 'number') {
-        throw badRecord(`record ${i}: metric ${show(metric)} of ${scope} ${show(variable ?? layer ?? '')} must be a number or null; received ${show(value)}.`);
-      }
-      // A null metric (noise_scale before it can be estimated) is no point, but its series exists,
-      // so the windows read back hold the key with null.
-      const id = this.seriesId(ids, runId, scope, layer, variable, metric);
-      if (value !== null) insert.run(id, step, real(value));
+    for (const p of w.points) {
+      const id = this.seriesId(ids, w.run, p.scope, p.layer, p.variable, p.metric);
+      if (p.value !== null) insert.run(id, w.step, real(p.value));
     }
+    return true;
   }
 
   private idsOf(runId: string): RunSeriesIds {
@@ -716,57 +555,27 @@ export class SqliteStore implements Store {
     if (ids !== undefined) this.mapFor(ids, scope, owner, false)?.delete(metric);
   }
 
-  private insertMarker(m: Marker, i: number): void {
-    if (!isObject(m)) throw badRecord(`record ${i}: a marker record needs a 'marker' object.`);
-    const runId = requireString(`record ${i}: marker.run`, m.run);
-    const layer = m.layer === null ? null : requireString(`record ${i}: marker.layer`, m.layer);
-    const details = m.details === undefined ? {} : m.details;
-    if (!isObject(details)) throw badRecord(`record ${i}: marker.details must be an object.`);
+  private insertMarker(m: MarkerRowIn): void {
     try {
-      this.stmt('insertMarker').run(
-        runId,
-        layer,
-        requireString(`record ${i}: marker.kind`, m.kind),
-        real(requireNumber(`record ${i}: marker.step`, m.step)),
-        real(requireNumber(`record ${i}: marker.detected_step`, m.detected_step)),
-        real(requireNumber(`record ${i}: marker.confidence`, m.confidence)),
-        toJson(details),
-      );
+      this.stmt('insertMarker').run(m.run, m.layer, m.kind, real(m.step), real(m.detected_step), real(m.confidence), m.details);
     } catch (e) {
-      if (sqliteCode(e) === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw this.notFound(runId, 'append');
+      if (sqliteCode(e) === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw runNotFound(m.run, 'append');
       throw e;
     }
   }
 
-  private insertWarning(r: Record<string, unknown>, i: number): void {
-    const runId = requireString(`record ${i}: warning.run`, r.run);
+  private insertWarning(w: WarningRowIn): void {
     try {
-      this.stmt('insertWarning').run(
-        runId,
-        requireString(`record ${i}: warning.code`, r.code),
-        requireString(`record ${i}: warning.message`, r.message),
-        optionalFinite(`record ${i}: warning.step`, r.step),
-        requireFinite(`record ${i}: warning.time`, r.time),
-      );
+      this.stmt('insertWarning').run(w.run, w.code, w.message, w.step, w.time);
     } catch (e) {
-      if (sqliteCode(e) === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw this.notFound(runId, 'append');
+      if (sqliteCode(e) === 'SQLITE_CONSTRAINT_FOREIGNKEY') throw runNotFound(w.run, 'append');
       throw e;
     }
   }
 
-  private endRun(r: Record<string, unknown>, i: number): void {
-    const runId = requireString(`record ${i}: end.run`, r.run);
-    const status = r.status as RunStatus;
-    if (!RUN_STATUSES.includes(status)) {
-      throw badRecord(`record ${i}: end.status must be one of ${RUN_STATUSES.join(', ')}; received ${show(r.status)}.`);
-    }
-    const res = this.stmt('endRun').run(
-      status,
-      requireFinite(`record ${i}: end.time`, r.time),
-      real(requireNumber(`record ${i}: end.step`, r.step)),
-      runId,
-    );
-    if (res.changes === 0) throw this.notFound(runId, 'append');
+  private endRun(e: EndRowIn): void {
+    const res = this.stmt('endRun').run(e.status, e.time, real(e.step), e.run);
+    if (res.changes === 0) throw runNotFound(e.run, 'append');
   }
 
   deleteRun(runId: string): boolean {
@@ -778,9 +587,7 @@ export class SqliteStore implements Store {
   }
 
   prune(before: number): string[] {
-    if (typeof before !== 'number' || Number.isNaN(before)) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `prune: 'before' must be a time in ms since the epoch; received ${show(before)}.`);
-    }
+    checkPruneBefore(before);
     const ids: string[] = [];
     this.write('prune', () => {
       // A live run (running, heartbeat fresh) is never pruned, however old.
@@ -810,37 +617,26 @@ export class SqliteStore implements Store {
   // Reading
 
   runs(filter: RunFilter = {}): RunRow[] {
-    if (typeof filter !== 'object' || filter === null) throw invalidOption('runs', 'filter', 'an object', filter);
-    checkKeys('runs', filter, FILTER_KEYS);
+    const f = checkFilter(filter);
     const where: string[] = [];
-    const params: Record<string, unknown> = { cutoff: this.cutoff() };
-    if (filter.name !== undefined) {
-      if (typeof filter.name !== 'string') throw invalidOption('runs', 'name', 'a string', filter.name);
+    const params: Record<string, unknown> = { cutoff: this.cutoff(), limit: f.limit };
+    if (f.name !== undefined) {
       where.push('instr(lower(name), lower(@name)) > 0');
-      params.name = filter.name;
+      params.name = f.name;
     }
-    if (filter.group !== undefined) {
-      if (typeof filter.group !== 'string') throw invalidOption('runs', 'group', 'a string', filter.group);
+    if (f.group !== undefined) {
       where.push('group_name = @group');
-      params.group = filter.group;
+      params.group = f.group;
     }
-    if (filter.tags !== undefined) {
-      if (!isObject(filter.tags)) throw invalidOption('runs', 'tags', 'an object of strings', filter.tags);
-      Object.entries(filter.tags).forEach(([k, v], n) => {
-        if (typeof v !== 'string') throw invalidOption('runs', `tags.${k}`, 'a string', v);
-        where.push(`EXISTS (SELECT 1 FROM json_each(runs.tags) WHERE key = @tk${n} AND value = @tv${n})`);
-        params[`tk${n}`] = k;
-        params[`tv${n}`] = v;
-      });
-    }
-    if (filter.status !== undefined) {
-      if (!RUN_STATUSES.includes(filter.status)) throw invalidOption('runs', 'status', RUN_STATUSES.join(', '), filter.status);
+    f.tags.forEach(([k, v], n) => {
+      where.push(`EXISTS (SELECT 1 FROM json_each(runs.tags) WHERE key = @tk${n} AND value = @tv${n})`);
+      params[`tk${n}`] = k;
+      params[`tv${n}`] = v;
+    });
+    if (f.status !== undefined) {
       where.push(`${STATUS_EXPR} = @status`);
-      params.status = filter.status;
+      params.status = f.status;
     }
-    const limit = filter.limit ?? 1000;
-    if (!Number.isInteger(limit) || limit < 1) throw invalidOption('runs', 'limit', 'a positive integer', limit);
-    params.limit = limit;
     const sql = `SELECT ${RUN_COLUMNS}, ${STATUS_EXPR} AS status FROM runs${where.length > 0 ? ` WHERE ${where.join(' AND ')}` : ''}
       ORDER BY created_at DESC, id LIMIT @limit`;
     return this.read('runs', () => (this.prepared(sql).all(params) as RunDbRow[]).map(toRunRow));
@@ -857,9 +653,7 @@ export class SqliteStore implements Store {
   }
 
   resolveRun(ref: string): RunDetail {
-    if (typeof ref !== 'string' || ref.length === 0) {
-      throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `resolveRun: expected a run id, id prefix or name; received ${show(ref)}.`);
-    }
+    checkRunRef(ref);
     return this.read('resolveRun', () => {
       const params = { ref, cutoff: this.cutoff() };
       const exact = this.stmt('runById').get(params) as RunDbRow | undefined;
@@ -869,43 +663,22 @@ export class SqliteStore implements Store {
       for (const r of this.stmt('runsByName').all(params) as RunDbRow[]) found.set(r.id, r);
       const candidates = [...found.values()];
       if (candidates.length === 1) return this.detail(candidates[0]!);
-      if (candidates.length > 1) {
-        throw new TidemarkError(
-          'TIDEMARK_ERR_RUN_AMBIGUOUS',
-          `${show(ref)} matches ${candidates.length > 10 ? 'more than 10' : candidates.length} runs; name one by its id or a longer id prefix:\n${listRuns(candidates.slice(0, 10))}`,
-        );
-      }
+      if (candidates.length > 1) throw ambiguousRun(ref, candidates);
       const like = this.stmt('runsLike').all(params) as RunDbRow[];
-      const recent = like.length > 0 ? like : (this.stmt('runsRecent').all(params) as RunDbRow[]);
-      throw new TidemarkError(
-        'TIDEMARK_ERR_RUN_NOT_FOUND',
-        `No run has the id, id prefix (4 characters or more) or name ${show(ref)}.` +
-          (recent.length === 0
-            ? ' The store has no runs.'
-            : ` ${like.length > 0 ? 'Runs with similar names' : 'The most recent runs'}:\n${listRuns(recent)}`),
-      );
+      throw runRefNotFound(ref, like, like.length > 0 ? [] : (this.stmt('runsRecent').all(params) as RunDbRow[]));
     });
   }
 
   private detail(row: RunDbRow): RunDetail {
     const layers = (this.stmt('layersOf').all(row.id) as { name: string; class_name: string; params: number; variables: string }[]).map(
-      (l): LayerInfo => ({ name: l.name, class_name: l.class_name, params: l.params, variables: fromJson(l.variables) }),
+      (l): LayerInfo => ({ name: l.name, class_name: l.class_name, params: l.params, variables: decodeJson(l.variables) as LayerInfo['variables'] }),
     );
     return { ...toRunRow(row), layers };
   }
 
-  private notFound(runId: string, doing?: string): TidemarkError {
-    return new TidemarkError(
-      'TIDEMARK_ERR_RUN_NOT_FOUND',
-      doing === 'append'
-        ? `append: the records name run ${show(runId)}, which the store does not have; send its run record (or call beginRun) first.`
-        : `No run has the id ${show(runId)}; find it with runs() or resolveRun().`,
-    );
-  }
-
   private requireRun(runId: string): void {
-    if (typeof runId !== 'string') throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `expected a run id; received ${show(runId)}.`);
-    if (this.stmt('runExists').get(runId) === undefined) throw this.notFound(runId);
+    checkRunId(runId);
+    if (this.stmt('runExists').get(runId) === undefined) throw runNotFound(runId);
   }
 
   seriesKeys(runId: string): SeriesKey[] {
@@ -923,26 +696,12 @@ export class SqliteStore implements Store {
   }
 
   series(runId: string, metric: string, query: SeriesQuery = {}): SeriesPoint[] {
-    if (typeof metric !== 'string') throw invalidOption('series', 'metric', 'a metric name', metric);
-    if (typeof query !== 'object' || query === null) throw invalidOption('series', 'query', 'an object', query);
-    checkKeys('series', query, SERIES_QUERY_KEYS);
-    const layer = query.layer ?? null;
-    if (layer !== null && typeof layer !== 'string') throw invalidOption('series', 'layer', 'a layer or variable name, or null', layer);
-    const from = query.from ?? -Infinity;
-    const to = query.to ?? Infinity;
-    if (typeof from !== 'number' || Number.isNaN(from)) throw invalidOption('series', 'from', 'a step number', from);
-    if (typeof to !== 'number' || Number.isNaN(to)) throw invalidOption('series', 'to', 'a step number', to);
-    const limit = query.points;
-    if (limit !== undefined && (!Number.isInteger(limit) || limit < 2)) {
-      throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `series: option 'points' must be an integer of at least 2; received ${show(limit)}.`);
-    }
-    const last = query.last;
-    if (last !== undefined && (!Number.isInteger(last) || last < 1)) throw invalidOption('series', 'last', 'an integer ≥ 1', last);
+    const q = checkSeriesQuery(metric, query);
     return this.read('series', () => {
-      const read = this.seriesReader(runId, metric, layer);
+      const read = this.seriesReader(runId, metric, q.layer);
       if (read === null) return [];
-      const [steps, values] = read(from, to, last);
-      return downsample(steps, values, limit);
+      const [steps, values] = read(q.from, q.to, q.last);
+      return downsample(steps, values, q.points);
     });
   }
 
@@ -985,7 +744,7 @@ export class SqliteStore implements Store {
   }
 
   markersSince(runId: string, cursor: number): { markers: Marker[]; cursor: number } {
-    if (!Number.isSafeInteger(cursor) || cursor < 0) throw invalidOption('markersSince', 'cursor', 'an integer ≥ 0 (0 for all)', cursor);
+    checkCursor(cursor);
     return this.read('markersSince', () => {
       this.requireRun(runId);
       const rows = this.stmt('markersSince').all(runId, cursor) as (MarkerDbRow & { id: number })[];
@@ -1001,62 +760,29 @@ export class SqliteStore implements Store {
   }
 
   windows(runId: string, query: WindowQuery = {}): WindowRecord[] {
-    if (!isObject(query as unknown)) throw invalidOption('windows', 'query', 'an object { after, from, to, points, variables }', query);
-    for (const key of ['after', 'from', 'to'] as const) {
-      const v = query[key];
-      if (v !== undefined && (typeof v !== 'number' || Number.isNaN(v))) throw invalidOption('windows', key, 'a step number', v);
-    }
-    const after = query.after ?? null;
-    const points = query.points ?? null;
-    if (points !== null && (!Number.isInteger(points) || points < 2)) throw invalidOption('windows', 'points', 'an integer ≥ 2', points);
-    if (query.variables !== undefined && typeof query.variables !== 'boolean') throw invalidOption('windows', 'variables', 'true or false', query.variables);
-    const ranged = after !== null || query.from !== undefined || query.to !== undefined;
-    // `after` is exclusive and `from` inclusive; both bound from below, so the larger one holds.
-    const lo = Math.max(query.from ?? -Infinity, after === null ? -Infinity : nextAbove(after));
-    const hi = query.to ?? Infinity;
+    const q = checkWindowQuery(query);
     return this.read('windows', () => {
       this.requireRun(runId);
       let rows: WindowDbRow[];
-      let partial = ranged;
-      if (points !== null) {
+      let partial = q.ranged;
+      if (q.points !== null) {
         // Thinning reads only the steps first (one integer per window, from the (run, step) index) and then
         // the chosen windows by key: a run of a million windows opens without reading a million rows.
-        const steps = this.stmt('windowStepsRange').all(runId, lo, hi) as number[];
-        if (steps.length > points) {
-          rows = this.stmt('windowsAt').all(runId, JSON.stringify(thinEvenly(steps, points))) as WindowDbRow[];
+        const steps = this.stmt('windowStepsRange').all(runId, q.lo, q.hi) as number[];
+        if (steps.length > q.points) {
+          rows = this.stmt('windowsAt').all(runId, JSON.stringify(thinEvenly(steps, q.points))) as WindowDbRow[];
           partial = true;
         } else {
-          rows = this.stmt('windowsRange').all(runId, lo, hi) as WindowDbRow[];
+          rows = this.stmt('windowsRange').all(runId, q.lo, q.hi) as WindowDbRow[];
         }
       } else {
         // The windows after a step come from the (run, step) index: a live poll or a scrape reads only what is new.
-        rows = (ranged ? this.stmt('windowsRange').all(runId, lo, hi) : this.stmt('windowsOf').all(runId)) as WindowDbRow[];
+        rows = (q.ranged ? this.stmt('windowsRange').all(runId, q.lo, q.hi) : this.stmt('windowsOf').all(runId)) as WindowDbRow[];
       }
       const stepsJson = JSON.stringify(rows.map((r) => r.step));
-      const records = rows.map((r): WindowRecord => {
-        const w: WindowRecord = {
-          run: runId,
-          index: r.idx,
-          step: r.step,
-          first_step: r.first_step,
-          epoch: r.epoch,
-          batches: r.batches,
-          batch_size: r.batch_size,
-          batches_per_epoch: r.batches_per_epoch,
-          pass_batches: JSON.parse(r.pass_batches) as number[],
-          snr_floor: num(r.snr_floor),
-          time: r.time,
-          ...(r.noise === null ? {} : { noise: fromJson<NonNullable<WindowRecord['noise']>>(r.noise) }),
-          layers: {},
-          network: {} as LayerStats,
-          logs: {},
-        };
-        return w;
-      });
-      // Series come in creation order, which is the key order of the first window that had them.
       const all = this.stmt('seriesOf').all(runId) as SeriesDbRow[];
       // Without the per-variable statistics a wide model's windows are read and sent at a third of the cost.
-      const series = query.variables === false ? all.filter((s) => s.scope !== 'variable') : all;
+      const series = q.variables ? all : all.filter((s) => s.scope !== 'variable');
       const values = new Map<number, Map<number, number>>();
       const pointsAll = this.stmt('pointsAll');
       const pointsAt = this.stmt('pointsAt');
@@ -1067,113 +793,7 @@ export class SqliteStore implements Store {
         for (const [step, value] of rowsOf) m.set(step, num(value));
         values.set(s.id, m);
       }
-      const has = (ids: number[], step: number): boolean => ids.some((id) => values.get(id)!.has(step));
-      // Only the statistics that can be null in a record come back as null; a missing probe value stays absent.
-      const fill = (target: Record<string, number | null>, list: SeriesDbRow[], step: number, nullable: boolean): void => {
-        for (const s of list) {
-          const v = values.get(s.id)!.get(step);
-          if (v !== undefined) target[s.metric] = v;
-          else if (nullable && NULLABLE_METRICS.has(s.metric)) target[s.metric] = null;
-        }
-      };
-      const network = series.filter((s) => s.scope === 'network');
-      const logs = series.filter((s) => s.scope === 'run');
-      const layers = groupBy(series.filter((s) => s.scope === 'layer'), (s) => s.layer!);
-      const variables = groupBy(series.filter((s) => s.scope === 'variable'), (s) => s.layer!);
-      const variableGroups = new Map([...variables].map(([layer, list]) => [layer, groupBy(list, (s) => s.variable!)]));
-      for (const w of records) {
-        fill(w.network as unknown as Record<string, number | null>, network, w.step, true);
-        fill(w.logs as unknown as Record<string, number | null>, logs, w.step, false);
-        for (const [layer, list] of layers) {
-          if (!has(list.map((s) => s.id), w.step)) continue;
-          const stats = {} as LayerStats;
-          fill(stats as unknown as Record<string, number | null>, list, w.step, true);
-          const vars = variableGroups.get(layer);
-          if (vars !== undefined) {
-            stats.variables = {};
-            for (const [variable, vlist] of vars) {
-              if (!has(vlist.map((s) => s.id), w.step)) continue;
-              const v = {} as VariableStats;
-              fill(v as unknown as Record<string, number | null>, vlist, w.step, true);
-              stats.variables[variable] = v;
-            }
-          }
-          w.layers[layer] = stats;
-        }
-      }
-      return records;
+      return assembleWindows(runId, rows, series, values);
     });
   }
-}
-
-function markerOf(runId: string, m: MarkerDbRow): Marker {
-  return {
-    run: runId,
-    layer: m.layer,
-    kind: m.kind,
-    step: num(m.step),
-    detected_step: num(m.detected_step),
-    confidence: num(m.confidence),
-    details: fromJson(m.details),
-  };
-}
-
-/** The smallest step greater than `v` (steps are integers). */
-function nextAbove(v: number): number {
-  return Number.isInteger(v) ? v + 1 : Math.ceil(v);
-}
-
-/** `n` of the items, evenly spread, the first and the last included. */
-function thinEvenly<T>(items: T[], n: number): T[] {
-  const out: T[] = [];
-  for (let k = 0; k < n; k++) out.push(items[Math.round((k * (items.length - 1)) / (n - 1))]!);
-  return out;
-}
-
-function groupBy<T>(items: T[], key: (t: T) => string): Map<string, T[]> {
-  const m = new Map<string, T[]>();
-  for (const it of items) {
-    const k = key(it);
-    const list = m.get(k);
-    if (list === undefined) m.set(k, [it]);
-    else list.push(it);
-  }
-  return m;
-}
-
-function toRunRow(r: RunDbRow): RunRow {
-  return {
-    id: r.id,
-    name: r.name,
-    group: r.group_name,
-    tags: fromJson(r.tags),
-    status: r.status,
-    created_at: r.created_at,
-    ended_at: r.ended_at,
-    end_step: r.end_step,
-    heartbeat_at: r.heartbeat_at,
-    last_step: r.last_step,
-    windows: r.window_count,
-    config: fromJson(r.config),
-  };
-}
-
-function listRuns(rows: RunDbRow[]): string {
-  return rows
-    .map((r) => `  ${r.id}  ${show(r.name)}  ${r.status}  started ${Number.isFinite(r.created_at) ? new Date(r.created_at).toISOString() : String(r.created_at)}`)
-    .join('\n');
-}
-
-/** Steps and values (NULL is NaN) as points, downsampled with LTTB when there are more than `limit`. */
-function downsample(steps: number[], values: (number | null)[], limit: number | undefined): SeriesPoint[] {
-  const n = steps.length;
-  if (limit === undefined || n <= limit) {
-    const out = new Array<SeriesPoint>(n);
-    for (let i = 0; i < n; i++) out[i] = { step: steps[i]!, value: num(values[i]!) };
-    return out;
-  }
-  const ys = new Float64Array(n);
-  // A Float64Array would turn null into 0: map it to NaN first.
-  for (let i = 0; i < n; i++) ys[i] = num(values[i]!);
-  return lttb(steps, ys, limit).map((i) => ({ step: steps[i]!, value: ys[i]! }));
 }

@@ -5,6 +5,7 @@
  */
 import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
 import { displacementLevelDb } from '../analysis/phase-detector.js';
+import { decodeJson } from '../protocol/json-codec.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 
@@ -12,12 +13,7 @@ import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 export const CAUTION =
   'These numbers are statistical estimates from minibatches, not guarantees about the model; confirm any decision to stop training on held-out data.';
 
-const NON_FINITE: Record<string, number> = { NaN: Number.NaN, Infinity: Infinity, '-Infinity': -Infinity };
-
-/** JSON.parse that turns the protocol's "NaN", "Infinity" and "-Infinity" strings back into numbers. */
-export function decodeJson(text: string): unknown {
-  return JSON.parse(text, (_key, value: unknown) => (typeof value === 'string' && value in NON_FINITE ? NON_FINITE[value] : value));
-}
+export { decodeJson };
 
 /** A run in the list: the live summary, plus whatever else the HTTP list sent. */
 export type RunRowView = RunSummary & { heartbeat_at?: number | null };
