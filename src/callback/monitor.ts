@@ -24,7 +24,7 @@ import type {
 import { JsonlSink } from '../storage/jsonl-sink.js';
 import { MemorySink } from '../storage/memory-sink.js';
 import type { Sink } from '../storage/sink.js';
-import { openStore } from '../storage/sqlite-store.js';
+import { connectStore } from '../storage/connect-store.js';
 import { RemoteSink } from '../storage/remote-sink.js';
 import { StoreSink } from '../storage/store-sink.js';
 import { startServer, type RunningServer } from '../server/serve.js';
@@ -103,7 +103,7 @@ function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
     return new RemoteSink({ url: store, ...(token !== undefined && token !== '' && !/[?&]token=/.test(store) ? { token } : {}), onError });
   }
   if (store.endsWith('.jsonl')) return new JsonlSink(store, { onError });
-  return new StoreSink(() => openStore(store), { onError });
+  return new StoreSink(() => connectStore(store), { onError });
 }
 
 function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {

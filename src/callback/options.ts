@@ -148,11 +148,11 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
   if (typeof store === 'string') {
     if (store.length === 0) throw invalid('store', "a file path, 'memory', or a Sink object", store);
     const scheme = /^([a-z][a-z0-9+.-]*):\/\//i.exec(store);
-    if (scheme !== null && !isServerUrl(store)) {
+    if (scheme !== null && !isServerUrl(store) && !/^postgres(ql)?$/i.test(scheme[1]!)) {
       // A URL must never become a folder named after its scheme.
       throw new TidemarkTypeError(
         'TIDEMARK_ERR_OPTION_INVALID',
-        `Option 'store' is a ${scheme[1]}:// URL, which tidemark cannot write to. Use a server's address (http://, https://, ws:// or wss://, as 'tidemark serve' prints it), a SQLite file path, a .jsonl path, or 'memory'.`,
+        `Option 'store' is a ${scheme[1]}:// URL, which tidemark cannot write to. Use a server's address (http://, https://, ws:// or wss://, as 'tidemark serve' prints it), a postgres:// database URL, a SQLite file path, a .jsonl path, or 'memory'.`,
       );
     }
   } else if (!isSink(store)) {

@@ -7,7 +7,7 @@ import { closestName } from '../option-check.js';
 import { detectPhases, type PhaseChange, type PhaseOptions } from '../analysis/phase-detector.js';
 import { adviceChanged, adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
 import type { Marker } from '../protocol/records.js';
-import type { Store } from '../storage/store.js';
+import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
 
 export interface AnalyzeResult {
   runId: string;
@@ -55,8 +55,9 @@ export function compareMarkers(offline: PhaseChange[], online: Marker[]): Pick<A
   return { added, missing, matched };
 }
 
-export function analyzeRun(store: Store, runId: string, phases: PhaseOptions, advice: AdviceOptions): AnalyzeResult {
-  const windows = store.windows(runId);
+export async function analyzeRun(anyStore: AnyStore, runId: string, phases: PhaseOptions, advice: AdviceOptions): Promise<AnalyzeResult> {
+  const store = toAsyncStore(anyStore);
+  const windows = await store.windows(runId);
   if (advice.watch !== undefined && windows.length > 0 && !windows.some((w) => advice.watch! in w.logs)) {
     const names = [...new Set(windows.flatMap((w) => Object.keys(w.logs)))].sort();
     const best = closestName(advice.watch, names);
@@ -67,7 +68,7 @@ export function analyzeRun(store: Store, runId: string, phases: PhaseOptions, ad
   }
   const { states, changes } = detectPhases(windows, phases);
   const advices = adviseStop(windows, states, advice);
-  const online = store.markers(runId).filter((m) => PHASE_KINDS.has(m.kind) && m.details.source !== 'offline');
+  const online = (await store.markers(runId)).filter((m) => PHASE_KINDS.has(m.kind) && m.details.source !== 'offline');
   const adviceChanges = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a));
   return {
     runId,

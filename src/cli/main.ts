@@ -10,8 +10,9 @@ import type { RunStatus } from '../protocol/records.js';
 import { summarizeJsonl, type RunSummary } from '../storage/jsonl-reader.js';
 import { exportRun, importJsonl } from '../storage/export.js';
 import { resendSpill } from '../storage/resend.js';
-import { openStore } from '../storage/sqlite-store.js';
-import type { RunDetail, RunRow, Store } from '../storage/store.js';
+import type { AsyncStore } from '../storage/async-store.js';
+import { connectStore, isPostgresUrl } from '../storage/connect-store.js';
+import type { RunDetail, RunRow } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
 import { ADVICE_DEFAULTS, ADVICE_RULES, zeroGradients } from '../analysis/stop-advice.js';
 import { describeRule, satisfies, type OptionRule } from '../option-check.js';
@@ -99,37 +100,38 @@ interface LatestRow {
   noise: { value: number; step: number } | null;
 }
 
-function latest(store: Store, run: RunDetail): { step: number | null; rows: LatestRow[]; logs: Record<string, number>; zero: { network: boolean; layers: string[] } } {
+async function latest(store: AsyncStore, run: RunDetail): Promise<{ step: number | null; rows: LatestRow[]; logs: Record<string, number>; zero: { network: boolean; layers: string[] } }> {
   const step = run.last_step;
   if (step === null) return { step, rows: [], logs: {}, zero: { network: false, layers: [] } };
-  const at = (metric: string, layer: string | null): number | null => {
-    const pts = store.series(run.id, metric, { layer, from: step, to: step });
+  const at = async (metric: string, layer: string | null): Promise<number | null> => {
+    const pts = await store.series(run.id, metric, { layer, from: step, to: step });
     return pts.length > 0 ? pts[pts.length - 1]!.value : null;
   };
   const layers = [...run.layers.map((l) => l.name), null];
-  const last = store.windows(run.id, { after: step - 1 }).at(-1);
-  const rows = layers.map((layer): LatestRow => {
+  const last = (await store.windows(run.id, { after: step - 1 })).at(-1);
+  const rows: LatestRow[] = [];
+  for (const layer of layers) {
     const values: LatestRow['values'] = {};
-    for (const m of SHOW_METRICS) values[m] = at(m, layer);
+    for (const m of SHOW_METRICS) values[m] = await at(m, layer);
     const stats = last === undefined ? undefined : layer === null ? last.network : last.layers[layer];
     const db = last === undefined || stats === undefined ? Number.NaN : displacementLevelDb(last, stats);
     const level = Number.isFinite(db) ? db : null;
-    const n = store.series(run.id, 'noise_scale', { layer, last: 1 })[0];
-    return { layer: layer ?? '(network)', values, level, noise: n === undefined ? null : { value: n.value, step: n.step } };
-  });
+    const n = (await store.series(run.id, 'noise_scale', { layer, last: 1 }))[0];
+    rows.push({ layer: layer ?? '(network)', values, level, noise: n === undefined ? null : { value: n.value, step: n.step } });
+  }
   const logs: Record<string, number> = {};
   const layerNames = new Set(run.layers.map((l) => l.name));
-  for (const key of store.seriesKeys(run.id)) {
+  for (const key of await store.seriesKeys(run.id)) {
     if (key.layer !== null || layerNames.has(key.metric)) continue;
     if (['loss', 'val_loss', 'acc', 'val_acc', 'accuracy', 'val_accuracy'].includes(key.metric)) {
-      const v = at(key.metric, null);
+      const v = await at(key.metric, null);
       if (v !== null) logs[key.metric] = v;
     }
   }
   return { step, rows, logs, zero: last === undefined ? { network: false, layers: [] } : zeroGradients(last) };
 }
 
-function renderShow(store: Store, run: RunDetail): string {
+async function renderShow(store: AsyncStore, run: RunDetail): Promise<string> {
   const out: string[] = [];
   out.push(`${printable(run.name, 200)}`);
   out.push(`  id       ${run.id}`);
@@ -138,7 +140,7 @@ function renderShow(store: Store, run: RunDetail): string {
   if (run.group !== null) out.push(`  group    ${printable(run.group)}`);
   const tags = Object.entries(run.tags);
   if (tags.length > 0) out.push(`  tags     ${tags.map(([k, v]) => `${printable(k)}=${printable(v)}`).join(', ')}`);
-  const l = latest(store, run);
+  const l = await latest(store, run);
   out.push(`  windows  ${run.windows}${l.step !== null ? `, last at step ${l.step}` : ''}`);
   const logs = Object.entries(l.logs);
   if (logs.length > 0) out.push(`  logs     ${logs.map(([k, v]) => `${k} ${fmt(v, 4)}`).join(', ')}`);
@@ -166,9 +168,9 @@ function renderShow(store: Store, run: RunDetail): string {
       '  now and then at fixed weights; "—" where none was resolved.',
     );
   }
-  const probe = latestProbe(store, run);
+  const probe = await latestProbe(store, run);
   if (probe !== null) out.push('', ...renderProbe(probe));
-  const markers = store.markers(run.id);
+  const markers = await store.markers(run.id);
   out.push('');
   if (markers.length === 0) out.push('  no markers');
   else {
@@ -287,13 +289,14 @@ function writeOut(path: string, text: string): void {
   }
 }
 
-function withStore<T>(db: string, readonly: boolean, fn: (store: Store) => T): T {
-  checkStorePath(db, false);
-  const store = openStore(db, { readonly });
+/** Opens the store at `db` (a SQLite file, or a postgres:// URL), runs `fn`, and closes it. */
+async function withStore<T>(db: string, readonly: boolean, fn: (store: AsyncStore) => Promise<T>): Promise<T> {
+  if (!isPostgresUrl(db)) checkStorePath(db, false);
+  const store = await connectStore(db, { readonly });
   try {
-    return fn(store);
+    return await fn(store);
   } finally {
-    store.close();
+    await store.close();
   }
 }
 
@@ -315,7 +318,7 @@ export function buildProgram(io: Io): Command {
     .name('tidemark')
     .description('Per-layer gradient signal-to-noise, noise scale and weight travel of TensorFlow.js runs, kept in a SQLite store.')
     .version(version(), '-v, --version')
-    .addOption(new Option('--db <file>', 'SQLite store (default: $TIDEMARK_DB or tidemark.db)'))
+    .addOption(new Option('--db <file|url>', 'the store: a SQLite file, or a postgres:// URL (default: $TIDEMARK_DB or tidemark.db)'))
     .configureOutput({ writeOut: io.out, writeErr: io.err })
     .showHelpAfterError()
     .exitOverride();
@@ -330,8 +333,8 @@ export function buildProgram(io: Io): Command {
     .addOption(new Option('--status <status>', 'only runs with this status').choices(['running', 'finished', 'failed', 'interrupted']))
     .option('--limit <n>', 'at most n runs', num('--limit', { type: 'number', integer: true, min: 1, max: 1_000_000 }), 1000)
     .option('--json', 'machine-readable output')
-    .action((o: { name?: string; group?: string; tag?: Record<string, string>; status?: RunStatus; limit: number; json?: boolean }) => {
-      const rows = withStore(db(), true, (s) =>
+    .action(async (o: { name?: string; group?: string; tag?: Record<string, string>; status?: RunStatus; limit: number; json?: boolean }) => {
+      const rows = await withStore(db(), true, (s) =>
         s.runs({
           ...(o.name !== undefined && { name: o.name }),
           ...(o.group !== undefined && { group: o.group }),
@@ -349,15 +352,15 @@ export function buildProgram(io: Io): Command {
     .description("a run's latest per-layer numbers, its latest probe values and its markers")
     .argument('<run>', 'run id, unique id prefix, or name')
     .option('--json', 'machine-readable output')
-    .action((ref: string, o: { json?: boolean }) => {
-      withStore(db(), true, (s) => {
-        const run = s.resolveRun(ref);
+    .action(async (ref: string, o: { json?: boolean }) => {
+      await withStore(db(), true, async (s) => {
+        const run = await s.resolveRun(ref);
         if (o.json) {
-          const l = latest(s, run);
+          const l = await latest(s, run);
           // probe is null when the run has no probe values, so scripts can test for it without a key check.
-          const probe = latestProbe(s, run);
-          io.out(`${JSON.stringify({ run, latest: l, probe, markers: s.markers(run.id), caution: CAUTION }, null, 2)}\n`);
-        } else io.out(`${renderShow(s, run)}\n`);
+          const probe = await latestProbe(s, run);
+          io.out(`${JSON.stringify({ run, latest: l, probe, markers: await s.markers(run.id), caution: CAUTION }, null, 2)}\n`);
+        } else io.out(`${await renderShow(s, run)}\n`);
       });
     });
 
@@ -367,8 +370,8 @@ export function buildProgram(io: Io): Command {
     .argument('<run>', 'run id, unique id prefix, or name')
     .addOption(new Option('--format <format>', 'output format').choices(['csv', 'jsonl']).makeOptionMandatory())
     .option('--out <file>', 'write to a file instead of standard output')
-    .action((ref: string, o: { format: 'csv' | 'jsonl'; out?: string }) => {
-      const text = withStore(db(), true, (s) => exportRun(s, s.resolveRun(ref).id, o.format));
+    .action(async (ref: string, o: { format: 'csv' | 'jsonl'; out?: string }) => {
+      const text = await withStore(db(), true, async (s) => exportRun(s, (await s.resolveRun(ref)).id, o.format));
       if (o.out !== undefined) writeOut(o.out, text);
       else io.out(text);
     });
@@ -379,8 +382,8 @@ export function buildProgram(io: Io): Command {
     .argument('<file>', 'JSON Lines file')
     .option('--partial', 'import a file that is incomplete (a run without an end record, a cut last line); such runs read as interrupted')
     .action(async (file: string, o: { partial?: boolean }) => {
-      checkStorePath(db(), true);
-      const store = openStore(db());
+      if (!isPostgresUrl(db())) checkStorePath(db(), true);
+      const store = await connectStore(db());
       try {
         const report = await importJsonl(store, file, { partial: o.partial === true });
         for (const id of report.runs) {
@@ -394,7 +397,7 @@ export function buildProgram(io: Io): Command {
         if (report.runs.length === 0) io.out('The file holds no runs.\n');
         if (report.tornLastLine) io.out('The last line was cut off and was skipped.\n');
       } finally {
-        store.close();
+        await store.close();
       }
     });
 
@@ -418,9 +421,9 @@ export function buildProgram(io: Io): Command {
     .description('delete a run and everything stored for it')
     .argument('<run>', 'run id, unique id prefix, or name')
     .option('--force', 'delete it even while it is still training')
-    .action((ref: string, o: { force?: boolean }) => {
-      withStore(db(), false, (s) => {
-        const run = s.resolveRun(ref);
+    .action(async (ref: string, o: { force?: boolean }) => {
+      await withStore(db(), false, async (s) => {
+        const run = await s.resolveRun(ref);
         if (run.status === 'running' && o.force !== true) {
           const ago = Math.max(0, Math.round((Date.now() - run.heartbeat_at) / 1000));
           throw new TidemarkError(
@@ -428,7 +431,7 @@ export function buildProgram(io: Io): Command {
             `${printable(run.name)} (${run.id}) is still training (its writer was alive ${ago} s ago). Nothing was deleted. Stop the training first, or pass --force to delete it anyway (its writer will then fail to store what follows).`,
           );
         }
-        s.deleteRun(run.id);
+        await s.deleteRun(run.id);
         io.out(`Deleted ${printable(run.name)} (${run.id}).\n`);
       });
     });
@@ -438,18 +441,18 @@ export function buildProgram(io: Io): Command {
     .description('delete runs started before a date or older than an age')
     .requiredOption('--before <date|age>', 'a date (2026-11-01) or an age: 90min, 12h, 30d, 2w')
     .option('--dry-run', 'list what would be deleted, and delete nothing')
-    .action((o: { before: string; dryRun?: boolean }) => {
+    .action(async (o: { before: string; dryRun?: boolean }) => {
       const before = parseBefore(o.before);
       const plural = (n: number): string => `${n} run${n === 1 ? '' : 's'}`;
-      withStore(db(), o.dryRun === true, (s) => {
-        const old = s.runs({ limit: 1_000_000 }).filter((r) => r.created_at < before);
+      await withStore(db(), o.dryRun === true, async (s) => {
+        const old = (await s.runs({ limit: 1_000_000 })).filter((r) => r.created_at < before);
         // A live run is never pruned, however old: its writer is still sending.
         const live = old.filter((r) => r.status === 'running');
         const doomed = old.filter((r) => r.status !== 'running');
         let deleted = doomed.map((r) => r.id);
         if (o.dryRun === true) io.out(`Would delete ${plural(doomed.length)} started before ${fmtTime(before)} (dry run: nothing deleted)${doomed.length > 0 ? ':' : '.'}\n`);
         else {
-          deleted = s.prune(before);
+          deleted = await s.prune(before);
           io.out(`Deleted ${plural(deleted.length)} started before ${fmtTime(before)}${deleted.length > 0 ? ':' : '.'}\n`);
         }
         for (const r of doomed) if (deleted.includes(r.id)) io.out(`  ${printable(r.name)} (${r.id}, ${r.status})\n`);
@@ -475,7 +478,7 @@ export function buildProgram(io: Io): Command {
     .option('--watch <metric>', 'logged quantity the advice watches (default the validation accuracy, else val_loss, else loss)')
     .option('--write', 'store the offline markers next to the online ones (marked as offline)')
     .option('--json', 'machine-readable output')
-    .action((ref: string, o: Record<string, number | string | boolean | undefined>) => {
+    .action(async (ref: string, o: Record<string, number | string | boolean | undefined>) => {
       const phases = Object.fromEntries(
         (
           [
@@ -498,10 +501,10 @@ export function buildProgram(io: Io): Command {
           ] as const
         ).filter(([, v]) => v !== undefined),
       );
-      withStore(db(), !o.write, (s) => {
-        const run = s.resolveRun(ref);
-        const result = analyzeRun(s, run.id, phases, advice);
-        if (o.write) s.append(offlineMarkers(result, { phases, advice }).map((marker) => ({ type: 'marker' as const, marker })));
+      await withStore(db(), !o.write, async (s) => {
+        const run = await s.resolveRun(ref);
+        const result = await analyzeRun(s, run.id, phases, advice);
+        if (o.write) await s.append(offlineMarkers(result, { phases, advice }).map((marker) => ({ type: 'marker' as const, marker })));
         if (o.json) io.out(`${JSON.stringify({ ...result, caution: CAUTION }, null, 2)}\n`);
         else io.out(`${renderAnalysis(run, result, Boolean(o.write))}\n`);
       });
@@ -518,7 +521,7 @@ export function buildProgram(io: Io): Command {
     .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate', SERVER_RULES.ingestRate))
     .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
       const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
-      const fresh = !checkStorePath(db(), true);
+      const fresh = !isPostgresUrl(db()) && !checkStorePath(db(), true);
       const running = await startServer({
         db: db(),
         ...(o.port !== undefined ? { port: o.port } : {}),

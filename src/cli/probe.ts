@@ -2,7 +2,8 @@
  * The activation probe's latest values per layer for `tidemark show`. The probe runs only in some
  * windows, so each layer's values come from the last step where it ran, not from the run's last step.
  */
-import type { RunDetail, Store } from '../storage/store.js';
+import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
+import type { RunDetail } from '../storage/store.js';
 import { fmt, printable, table } from './format.js';
 
 export const PROBE_METRICS = [
@@ -75,19 +76,20 @@ export function probeSettings(config: Record<string, unknown>): ProbeSettings {
 }
 
 /** Each probed layer's values at its last probe step, in the model's layer order; null when the run has no probe values. */
-export function latestProbe(store: Store, run: RunDetail): ProbeLatest | null {
+export async function latestProbe(anyStore: AnyStore, run: RunDetail): Promise<ProbeLatest | null> {
+  const store = toAsyncStore(anyStore);
   // One seriesKeys call tells which layers were probed, so runs without a probe cost no further queries.
-  const probed = new Set(store.seriesKeys(run.id).filter((k) => k.scope === 'layer' && k.metric === 'mi_input').map((k) => k.layer));
+  const probed = new Set((await store.seriesKeys(run.id)).filter((k) => k.scope === 'layer' && k.metric === 'mi_input').map((k) => k.layer));
   if (probed.size === 0) return null;
   const layers: ProbeLayerLatest[] = [];
   for (const { name } of run.layers) {
     if (!probed.has(name)) continue;
     // mi_input is written at every probe step, so its last point is the layer's latest probe window.
-    const last = store.series(run.id, 'mi_input', { layer: name }).at(-1);
+    const last = (await store.series(run.id, 'mi_input', { layer: name })).at(-1);
     if (last === undefined) continue;
     const values = {} as Record<ProbeMetric, number | null>;
     for (const m of PROBE_METRICS) {
-      const pts = m === 'mi_input' ? [last] : store.series(run.id, m, { layer: name, from: last.step, to: last.step });
+      const pts = m === 'mi_input' ? [last] : await store.series(run.id, m, { layer: name, from: last.step, to: last.step });
       values[m] = pts.length > 0 ? pts[pts.length - 1]!.value : null;
     }
     layers.push({ layer: name, step: last.step, values });

@@ -17,9 +17,10 @@ import { checkOptions, closestName, type OptionSchema } from '../option-check.js
 import { MAX_FRAME_BYTES, type BackfillMessage, type ErrorMessage, type IngestReply } from '../protocol/messages.js';
 import { windowPoints } from '../protocol/points.js';
 import { markerKey, type SinkRecord } from '../protocol/records.js';
-import { exportLines, type ExportFormat } from '../storage/export.js';
+import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
+import { exportRun, type ExportFormat } from '../storage/export.js';
 import { decodeJson, encodeJson } from '../storage/sink.js';
-import type { RunFilter, SeriesKey, Store, WindowQuery } from '../storage/store.js';
+import type { RunFilter, SeriesKey, WindowQuery } from '../storage/store.js';
 import { originAllowed, tokenMatches, tokenOf } from './auth.js';
 import { LiveHub, type Viewer } from './live.js';
 import { metricsText } from './metrics.js';
@@ -28,7 +29,7 @@ import { StoreWatcher, summaryOf } from './watcher.js';
 
 export interface ServerOptions {
   /** The store to serve and to write ingested runs into (opened writable). */
-  store: Store;
+  store: AnyStore;
   /** Required on every API request, live and ingest connection when set (`Authorization: Bearer T` or `?token=T`). Default none. */
   token?: string | null;
   /** An origin allowed to call the API from a browser (CORS) and open the live stream; `'*'` for any. Default none. */
@@ -190,10 +191,10 @@ export const SERVER_RULES: OptionSchema = Object.freeze({
 /** Builds the server without listening. Call `app.listen()` (or use `startServer`) to serve. */
 export async function buildServer(options: ServerOptions): Promise<TidemarkServer> {
   checkOptions(options, SERVER_RULES, {}, { owner: 'buildServer' });
-  const store = options.store;
-  if (store === null || typeof store !== 'object' || typeof (store as { runs?: unknown }).runs !== 'function') {
-    throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'store' of buildServer must be a Store (openStore(path)).");
+  if (options.store === null || typeof options.store !== 'object' || typeof (options.store as { runs?: unknown }).runs !== 'function') {
+    throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', "Option 'store' of buildServer must be a Store (openStore(path), or connectStore(address)).");
   }
+  const store = toAsyncStore(options.store);
   const token = options.token ?? null;
   const cors = options.cors ?? null;
   const maxFrame = options.maxFrameBytes ?? MAX_FRAME_BYTES;
@@ -300,7 +301,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     },
   );
 
-  app.get('/api/runs/:id', { schema: { params: idParams, querystring: queryOf({}) } }, async (req) => store.resolveRun((req.params as { id: string }).id));
+  app.get('/api/runs/:id', { schema: { params: idParams, querystring: queryOf({}) } }, async (req) => await store.resolveRun((req.params as { id: string }).id));
 
   app.get(
     '/api/runs/:id/series',
@@ -320,10 +321,10 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
       },
     },
     async (req) => {
-      const run = store.resolveRun((req.params as { id: string }).id);
+      const run = await store.resolveRun((req.params as { id: string }).id);
       const q = req.query as { metric: string; layer?: string; from?: number; to?: number; points?: number };
       checkRange(q.from, q.to);
-      const points = store.series(run.id, q.metric, {
+      const points = await store.series(run.id, q.metric, {
         layer: q.layer ?? null,
         ...(q.from !== undefined ? { from: q.from } : {}),
         ...(q.to !== undefined ? { to: q.to } : {}),
@@ -331,7 +332,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
       });
       // Only an empty answer needs the run's series listed: to tell an unknown metric or layer (a caller's
       // mistake, 400 per docs/protocol.md) from a known series with no points in the range.
-      if (points.length === 0) checkSeriesKey(store.seriesKeys(run.id), q.metric, q.layer ?? null);
+      if (points.length === 0) checkSeriesKey(await store.seriesKeys(run.id), q.metric, q.layer ?? null);
       return { run: run.id, metric: q.metric, layer: q.layer ?? null, points };
     },
   );
@@ -351,28 +352,28 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
       },
     },
     async (req) => {
-      const run = store.resolveRun((req.params as { id: string }).id);
+      const run = await store.resolveRun((req.params as { id: string }).id);
       const q = req.query as { after?: number; from?: number; to?: number; points?: number; variables?: boolean };
       checkRange(q.from, q.to);
       const query: WindowQuery = {};
       for (const key of ['after', 'from', 'to', 'points'] as const) if (q[key] !== undefined) query[key] = q[key];
       if (q.variables !== undefined) query.variables = q.variables;
-      return store.windows(run.id, query);
+      return await store.windows(run.id, query);
     },
   );
 
   app.get('/api/runs/:id/markers', { schema: { params: idParams, querystring: queryOf({}) } }, async (req) => {
-    const run = store.resolveRun((req.params as { id: string }).id);
-    return store.markers(run.id);
+    const run = await store.resolveRun((req.params as { id: string }).id);
+    return await store.markers(run.id);
   });
 
   app.get(
     '/api/runs/:id/export',
     { schema: { params: idParams, querystring: { ...queryOf({ format: { type: 'string', enum: ['csv', 'jsonl'] } }), required: ['format'] } } },
     async (req, reply) => {
-      const run = store.resolveRun((req.params as { id: string }).id);
+      const run = await store.resolveRun((req.params as { id: string }).id);
       const format = (req.query as { format: ExportFormat }).format;
-      const body = [...exportLines(store, run.id, format)].join('');
+      const body = await exportRun(store, run.id, format);
       const safeName = run.name.replace(/[^A-Za-z0-9._-]+/g, '_').slice(0, 100) || run.id;
       return reply
         .type(format === 'csv' ? 'text/csv; charset=utf-8' : 'application/jsonl; charset=utf-8')
@@ -383,7 +384,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
 
   app.get('/metrics', { schema: { querystring: queryOf({}) } }, async (req, reply) => {
     const ctx = { now: now(), recentMs: options.recentMs ?? 3_600_000, counters, viewers: hub.size };
-    const { contentType, text } = metricsText(store, ctx, req.headers.accept ?? '');
+    const { contentType, text } = await metricsText(store, ctx, req.headers.accept ?? '');
     return reply.type(contentType).send(text);
   });
 
@@ -437,6 +438,8 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     // Token bucket: `ingestRate` a second, bursts of twice that.
     let tokens = ingestRate * 2;
     let refilled = performance.now();
+    // Batches of one connection are stored one after another, in the order they came.
+    let chain: Promise<void> = Promise.resolve();
     ws.on('message', (data, isBinary) => {
       const t = performance.now();
       tokens = Math.min(ingestRate * 2, tokens + ((t - refilled) / 1000) * ingestRate);
@@ -458,25 +461,30 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
         const why = validateBatch.errors?.[0];
         return replyError(ws, new TidemarkError('TIDEMARK_ERR_MESSAGE_INVALID', `Not a v1 batch message: ${why?.instancePath || '(message)'} ${why?.message ?? ''}.`), extra);
       }
-      try {
-        const { duplicate } = store.appendBatch(msg.run, msg.seq, msg.records as SinkRecord[]);
-        if (duplicate) counters.duplicateBatches++;
-        else {
-          counters.batchesIngested++;
-          counters.pointsIngested += countPoints(msg.records as SinkRecord[]);
+      const batch = msg;
+      chain = chain.then(async () => {
+        try {
+          const { duplicate } = await store.appendBatch(batch.run, batch.seq, batch.records as SinkRecord[]);
+          if (duplicate) counters.duplicateBatches++;
+          else {
+            counters.batchesIngested++;
+            counters.pointsIngested += countPoints(batch.records as SinkRecord[]);
+          }
+          const ack: IngestReply = { v: 1, type: 'ack', run: batch.run, seq: batch.seq, duplicate };
+          if (ws.readyState === ws.OPEN) ws.send(encodeJson(ack));
+          if (!duplicate) watcher.nudge();
+        } catch (e) {
+          replyError(ws, e, extra);
         }
-        const ack: IngestReply = { v: 1, type: 'ack', run: msg.run, seq: msg.seq, duplicate };
-        ws.send(encodeJson(ack));
-        if (!duplicate) watcher.nudge();
-      } catch (e) {
-        replyError(ws, e, extra);
-      }
+      });
     });
     ws.on('error', () => ws.terminate());
   };
 
   const onViewer = (ws: WebSocket): void => {
     const viewer = hub.add(ws);
+    // A viewer's requests are answered in the order they came (a subscribe, then its unsubscribe).
+    let chain: Promise<void> = Promise.resolve();
     ws.on('message', (data, isBinary) => {
       let msg: unknown;
       try {
@@ -488,19 +496,22 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
         const why = validateViewer.errors?.[0];
         return replyError(ws, new TidemarkError('TIDEMARK_ERR_MESSAGE_INVALID', `Not a v1 viewer message: ${why?.instancePath || '(message)'} ${why?.message ?? ''}.`));
       }
-      try {
-        if (msg.type === 'subscribe-runs') {
-          viewer.runsList = true;
-          hub.send(viewer, { v: 1, type: 'runs', runs: store.runs().map(summaryOf) });
-        } else if (msg.type === 'unsubscribe') {
-          if (msg.run === undefined) viewer.runsList = false;
-          else forget(viewer, msg.run);
-        } else {
-          backfill(viewer, msg.run, msg.points ?? 500, msg.after ?? null, msg.variables ?? true);
+      const request = msg;
+      chain = chain.then(async () => {
+        try {
+          if (request.type === 'subscribe-runs') {
+            viewer.runsList = true;
+            hub.send(viewer, { v: 1, type: 'runs', runs: (await store.runs()).map(summaryOf) });
+          } else if (request.type === 'unsubscribe') {
+            if (request.run === undefined) viewer.runsList = false;
+            else forget(viewer, request.run);
+          } else {
+            await backfill(viewer, request.run, request.points ?? 500, request.after ?? null, request.variables ?? true);
+          }
+        } catch (e) {
+          replyError(ws, e, request.type === 'subscribe' ? { run: request.run } : {});
         }
-      } catch (e) {
-        replyError(ws, e, msg.type === 'subscribe' ? { run: msg.run } : {});
-      }
+      });
     });
     ws.on('error', () => ws.terminate());
   };
@@ -513,10 +524,10 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     viewer.lean.delete(runId);
   };
 
-  const backfill = (viewer: Viewer, ref: string, points: number, after: number | null, variables: boolean): void => {
-    const run = store.resolveRun(ref);
-    const windows = store.windows(run.id, { points, variables, ...(after !== null ? { after } : {}) });
-    const markers = store.markers(run.id);
+  const backfill = async (viewer: Viewer, ref: string, points: number, after: number | null, variables: boolean): Promise<void> => {
+    const run = await store.resolveRun(ref);
+    const windows = await store.windows(run.id, { points, variables, ...(after !== null ? { after } : {}) });
+    const markers = await store.markers(run.id);
     const message: BackfillMessage = {
       v: 1,
       type: 'backfill',
@@ -531,6 +542,9 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
     viewer.lastStep.set(run.id, windows.at(-1)?.step ?? after);
     viewer.markerKeys.set(run.id, new Set(markers.map(markerKey)));
     if (!hub.send(viewer, message)) viewer.behind.set(run.id, after);
+    // What was stored while the backfill was read (and published before this viewer followed the run) comes
+    // with the next poll: the watcher reads from the earliest step its viewers have, and all markers again.
+    watcher.resync(run.id);
   };
 
   // Everything the server runs besides fastify stops inside fastify's own lifecycle, so `app.close()` is the one

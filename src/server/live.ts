@@ -83,11 +83,14 @@ export class LiveHub {
     return out;
   }
 
-  /** The earliest last step sent of this run over the viewers that follow it (null: one of them has no window yet). */
+  /**
+   * The earliest last step sent of this run over the viewers that follow it and are not behind (those fetch
+   * what they missed themselves after a gap); null when one of them has no window yet.
+   */
   earliestStep(runId: string): number | null {
     let out: number | null = null;
     for (const v of this.viewers) {
-      if (!v.runs.has(runId)) continue;
+      if (!v.runs.has(runId) || v.behind.has(runId)) continue;
       const last = v.lastStep.get(runId) ?? null;
       if (last === null) return null;
       out = out === null ? last : Math.min(out, last);

@@ -4,7 +4,8 @@
  * labels (any UTF-8 is fine in a label value), so names never need sanitising.
  */
 import type { Marker, Phase } from '../protocol/records.js';
-import type { RunRow, Store } from '../storage/store.js';
+import { toAsyncStore, type AnyStore, type AsyncStore } from '../storage/async-store.js';
+import type { RunRow } from '../storage/store.js';
 import type { ServerCounters } from './app.js';
 import { OPENMETRICS_CONTENT_TYPE, PROMETHEUS_TEXT_CONTENT_TYPE, renderOpenMetrics, renderPrometheusText, type Family, type Sample } from './openmetrics.js';
 
@@ -30,8 +31,8 @@ export interface MetricsContext {
   viewers: number;
 }
 
-function shownRuns(store: Store, now: number, recentMs: number): RunRow[] {
-  return store.runs().filter((r) => r.status === 'running' || (r.ended_at ?? r.heartbeat_at) >= now - recentMs);
+async function shownRuns(store: AsyncStore, now: number, recentMs: number): Promise<RunRow[]> {
+  return (await store.runs()).filter((r) => r.status === 'running' || (r.ended_at ?? r.heartbeat_at) >= now - recentMs);
 }
 
 /** Each layer's current phase from the last phase marker detected for it. */
@@ -53,8 +54,9 @@ function verdictOf(markers: readonly Marker[]): string {
   return typeof v === 'string' ? v : 'continue';
 }
 
-export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
-  const runs = shownRuns(store, ctx.now, ctx.recentMs);
+export async function metricsFamilies(anyStore: AnyStore, ctx: MetricsContext): Promise<Family[]> {
+  const store = toAsyncStore(anyStore);
+  const runs = await shownRuns(store, ctx.now, ctx.recentMs);
   const gauges = new Map<string, Sample[]>([...LAYER_GAUGES, ...LATEST_GAUGES].map(([m]) => [m, []]));
   const phase: Sample[] = [];
   const advice: Sample[] = [];
@@ -62,8 +64,8 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
   for (const r of runs) {
     const base = { run: r.id, run_name: r.name };
     if (r.last_step !== null) step.push({ labels: base, value: r.last_step });
-    const detail = store.resolveRun(r.id);
-    const last = r.last_step === null ? undefined : store.windows(r.id, { after: r.last_step - 1 }).at(-1);
+    const detail = await store.resolveRun(r.id);
+    const last = r.last_step === null ? undefined : (await store.windows(r.id, { after: r.last_step - 1 })).at(-1);
     if (last !== undefined) {
       for (const [layer, stats] of [...Object.entries(last.layers), [NETWORK, last.network] as const]) {
         for (const [metric] of LAYER_GAUGES) {
@@ -74,11 +76,11 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
     }
     for (const layer of [NETWORK, ...detail.layers.map((l) => l.name)]) {
       for (const [metric] of LATEST_GAUGES) {
-        const p = store.series(r.id, metric, { layer: layer === NETWORK ? null : layer, last: 1 })[0];
+        const p = (await store.series(r.id, metric, { layer: layer === NETWORK ? null : layer, last: 1 }))[0];
         if (p !== undefined) gauges.get(metric)!.push({ labels: { ...base, layer }, value: p.value });
       }
     }
-    const markers = store.markers(r.id);
+    const markers = await store.markers(r.id);
     const phases = phasesOf(markers);
     for (const layer of [NETWORK, ...detail.layers.map((l) => l.name)]) {
       const current = phases.get(layer) ?? 'undetermined';
@@ -117,8 +119,8 @@ export function metricsFamilies(store: Store, ctx: MetricsContext): Family[] {
  * OpenMetrics unless the client asks for the older Prometheus text format only (an Accept header naming
  * text/plain and not application/openmetrics-text): a scraper that accepts both gets OpenMetrics.
  */
-export function metricsText(store: Store, ctx: MetricsContext, accept = ''): { contentType: string; text: string } {
-  const families = metricsFamilies(store, ctx);
+export async function metricsText(store: AnyStore, ctx: MetricsContext, accept = ''): Promise<{ contentType: string; text: string }> {
+  const families = await metricsFamilies(store, ctx);
   if (/text\/plain/i.test(accept) && !/application\/openmetrics-text/i.test(accept)) {
     return { contentType: PROMETHEUS_TEXT_CONTENT_TYPE, text: renderPrometheusText(families) };
   }

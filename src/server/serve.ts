@@ -4,8 +4,8 @@
  */
 import { TidemarkError, TidemarkRangeError } from '../errors.js';
 import { checkOptions, type OptionSchema } from '../option-check.js';
-import { openStore } from '../storage/sqlite-store.js';
-import type { Store } from '../storage/store.js';
+import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
+import { connectStore } from '../storage/connect-store.js';
 import { buildServer, SERVER_RULES, type ServerOptions, type TidemarkServer } from './app.js';
 import { isLoopback } from './auth.js';
 
@@ -13,8 +13,11 @@ export const DEFAULT_PORT = 7341;
 export const DEFAULT_HOST = '127.0.0.1';
 
 export interface StartOptions extends Omit<ServerOptions, 'store'> {
-  /** A store to serve; or `db`, a path the server opens (and closes). Default `$TIDEMARK_DB` or tidemark.db. */
-  store?: Store;
+  /**
+   * A store to serve; or `db`, a SQLite path or postgres:// URL the server opens (and closes). Default
+   * `$TIDEMARK_DB` or tidemark.db.
+   */
+  store?: AnyStore;
   db?: string;
   /** Default 7341; 0 picks a free port. */
   port?: number;
@@ -64,7 +67,7 @@ export async function startServer(options: StartOptions = {}): Promise<RunningSe
     );
   }
   const owned = options.store === undefined;
-  const store = options.store ?? openStore(options.db ?? process.env.TIDEMARK_DB ?? 'tidemark.db');
+  const store = options.store !== undefined ? toAsyncStore(options.store) : await connectStore(options.db ?? process.env.TIDEMARK_DB ?? 'tidemark.db');
   let built: TidemarkServer | null = null;
   try {
     const { db: _db, port: _port, host: _host, insecure: _insecure, onWarning: _onWarning, ...serverOptions } = options;
@@ -72,7 +75,7 @@ export async function startServer(options: StartOptions = {}): Promise<RunningSe
     await built.app.listen({ host, port });
   } catch (e) {
     if (built !== null) await built.close().catch(() => {});
-    if (owned) store.close();
+    if (owned) await store.close();
     const code = (e as { code?: string }).code;
     if (code === 'EADDRINUSE' || code === 'EACCES' || code === 'EADDRNOTAVAIL') {
       const what =
@@ -99,7 +102,7 @@ export async function startServer(options: StartOptions = {}): Promise<RunningSe
       if (closed) return;
       closed = true;
       await server.close();
-      if (owned) store.close();
+      if (owned) await store.close();
     },
   };
 }

@@ -1,11 +1,14 @@
 /**
- * Turns what lands in the store into live messages. Runs may be written by this server (remote ingest)
- * or by training processes writing the same SQLite file directly, so the store is the one source: the
- * watcher polls it (and is nudged at once after an ingest), and publishes each new window and marker of
- * followed runs in step order; the hub sends each to a viewer once (the backfill counts).
+ * Turns what lands in the store into live messages. Runs may be written by this server (remote ingest), by
+ * another server on the same database, or by training processes writing the same SQLite file directly, so
+ * the store is the one source: the watcher polls it (and is nudged at once after an ingest), and publishes
+ * each new window and marker of followed runs in step order; the hub sends each to a viewer once (the
+ * backfill counts). Reads start from the earliest step any viewer of the run has, so a window stored while
+ * a viewer's backfill was being read still reaches it.
  */
 import type { RunSummary } from '../protocol/messages.js';
-import type { RunRow, Store } from '../storage/store.js';
+import type { AsyncStore } from '../storage/async-store.js';
+import type { RunRow } from '../storage/store.js';
 import type { LiveHub } from './live.js';
 
 interface Seen {
@@ -31,19 +34,22 @@ export function summaryOf(r: RunRow): RunSummary {
 }
 
 export class StoreWatcher {
-  private readonly store: Store;
+  private readonly store: AsyncStore;
   private readonly hub: LiveHub;
   private readonly seen = new Map<string, Seen>();
   private timer: NodeJS.Timeout | null = null;
   private pending = false;
   private stopped = false;
+  /** A poll in progress, and whether another was asked for meanwhile. */
+  private polling = false;
+  private again = false;
   private readonly onError: (e: unknown) => void;
 
-  constructor(store: Store, hub: LiveHub, options: { intervalMs: number; onError: (e: unknown) => void }) {
+  constructor(store: AsyncStore, hub: LiveHub, options: { intervalMs: number; onError: (e: unknown) => void }) {
     this.store = store;
     this.hub = hub;
     this.onError = options.onError;
-    this.timer = setInterval(() => this.poll(), options.intervalMs);
+    this.timer = setInterval(() => void this.poll(), options.intervalMs);
     this.timer.unref();
   }
 
@@ -53,14 +59,38 @@ export class StoreWatcher {
     this.pending = true;
     setImmediate(() => {
       this.pending = false;
-      this.poll();
+      void this.poll();
     });
   }
 
-  poll(): void {
+  /** The run's markers are read from the first again at the next poll (a viewer just followed it). */
+  resync(runId: string): void {
+    const s = this.seen.get(runId);
+    if (s !== undefined) s.markerCursor = null;
+    this.nudge();
+  }
+
+  /** One look at the store; a poll asked for while one runs happens right after it, never alongside. */
+  async poll(): Promise<void> {
     if (this.stopped) return;
+    if (this.polling) {
+      this.again = true;
+      return;
+    }
+    this.polling = true;
     try {
-      const rows = this.store.runs();
+      do {
+        this.again = false;
+        await this.pollOnce();
+      } while (this.again && !this.stopped);
+    } finally {
+      this.polling = false;
+    }
+  }
+
+  private async pollOnce(): Promise<void> {
+    try {
+      const rows = await this.store.runs();
       const followed = this.hub.followedRuns();
       for (const r of rows) {
         const row = summaryOf(r);
@@ -83,12 +113,15 @@ export class StoreWatcher {
           s.markerCursor = null;
           continue;
         }
-        if (r.last_step !== null && (s.lastStep === null || r.last_step > s.lastStep)) {
-          const windows = this.store.windows(r.id, s.lastStep === null ? {} : { after: s.lastStep });
+        const behind = this.hub.earliestStep(r.id);
+        const from = s.lastStep === null || behind === null ? null : Math.min(s.lastStep, behind);
+        if (r.last_step !== null && (from === null || r.last_step > from)) {
+          const windows = await this.store.windows(r.id, from === null ? {} : { after: from });
           for (const w of windows) this.hub.publishWindow(w);
-          s.lastStep = r.last_step;
+          s.lastStep = Math.max(s.lastStep ?? -Infinity, windows.at(-1)?.step ?? r.last_step);
         }
-        this.publishMarkers(r.id, s);
+        if (this.stopped) return;
+        await this.publishMarkers(r.id, s);
       }
     } catch (e) {
       this.onError(e);
@@ -100,8 +133,8 @@ export class StoreWatcher {
    * --write`, the end of a run). A run followed since the last poll starts from the first marker, since some
    * may have been stored after a viewer's backfill; the hub sends each viewer only those it does not have.
    */
-  private publishMarkers(runId: string, s: Seen): void {
-    const { markers, cursor } = this.store.markersSince(runId, s.markerCursor ?? 0);
+  private async publishMarkers(runId: string, s: Seen): Promise<void> {
+    const { markers, cursor } = await this.store.markersSince(runId, s.markerCursor ?? 0);
     s.markerCursor = cursor;
     for (const m of markers) this.hub.publishMarker(m);
   }

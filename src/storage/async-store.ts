@@ -80,3 +80,11 @@ export function asAsyncStore(store: Store): AsyncStore {
     close: call(store.close),
   };
 }
+
+/** A store of either kind, as callers may hand one in. */
+export type AnyStore = Store | AsyncStore;
+
+/** The asynchronous view of any store: an AsyncStore as it is, a synchronous one adapted. */
+export function toAsyncStore(store: AnyStore): AsyncStore {
+  return 'backend' in store ? store : asAsyncStore(store);
+}

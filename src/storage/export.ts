@@ -16,7 +16,8 @@ import { checkOptions } from '../option-check.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
 import { csvLine, type CsvValue } from './csv.js';
 import { decodeRecord, encodeRecord, recordsOfLine } from './sink.js';
-import type { RunDetail, Store } from './store.js';
+import { toAsyncStore, type AnyStore, type AsyncStore } from './async-store.js';
+import type { RunDetail } from './store.js';
 
 export type ExportFormat = 'csv' | 'jsonl';
 
@@ -62,8 +63,8 @@ export const CSV_WINDOW_COLUMNS = [
  * values (null, or a log not recorded in that window); NaN and ±Infinity are written as `NaN`,
  * `Infinity` and `-Infinity`, numbers with round-trip precision.
  */
-export function* csvLines(store: Store, runId: string): Generator<string> {
-  const windows = store.windows(runId);
+export async function* csvLines(store: AnyStore, runId: string): AsyncGenerator<string> {
+  const windows = await toAsyncStore(store).windows(runId);
   const metrics: string[] = [];
   const logs: string[] = [];
   const seenMetric = new Set<string>();
@@ -127,32 +128,33 @@ export function* csvLines(store: Store, runId: string): Generator<string> {
 }
 
 /** The run as JSON Lines records (each line ending in `\n`): run, windows, markers, warnings, then end if it ended. */
-export function* jsonlLines(store: Store, runId: string): Generator<string> {
-  const run = store.resolveRun(runId);
+export async function* jsonlLines(anyStore: AnyStore, runId: string): AsyncGenerator<string> {
+  const store = toAsyncStore(anyStore);
+  const run = await store.resolveRun(runId);
   if (run.id !== runId) {
     throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run has the id ${JSON.stringify(runId)}; resolve a name or prefix with resolveRun() first.`);
   }
   const line = (r: SinkRecord): string => `${encodeRecord(r)}\n`;
   yield line({ type: 'run', run: runInfoOf(run) });
-  for (const window of store.windows(runId)) yield line({ type: 'window', window });
-  for (const marker of store.markers(runId)) yield line({ type: 'marker', marker });
-  for (const w of store.warnings(runId)) yield line({ type: 'warning', ...w });
+  for (const window of await store.windows(runId)) yield line({ type: 'window', window });
+  for (const marker of await store.markers(runId)) yield line({ type: 'marker', marker });
+  for (const w of await store.warnings(runId)) yield line({ type: 'warning', ...w });
   if (run.ended_at !== null) {
     yield line({ type: 'end', run: runId, status: run.status, step: run.end_step ?? Number.NaN, time: run.ended_at });
   }
 }
 
 /** The lines of {@link csvLines} or {@link jsonlLines}, for streaming a large run. */
-export function exportLines(store: Store, runId: string, format: ExportFormat): Generator<string> {
+export function exportLines(store: AnyStore, runId: string, format: ExportFormat): AsyncGenerator<string> {
   if (format === 'csv') return csvLines(store, runId);
   if (format === 'jsonl') return jsonlLines(store, runId);
   throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `export: format must be 'csv' or 'jsonl'; received ${JSON.stringify(format)}.`);
 }
 
 /** The whole export as one string. */
-export function exportRun(store: Store, runId: string, format: ExportFormat): string {
+export async function exportRun(store: AnyStore, runId: string, format: ExportFormat): Promise<string> {
   let text = '';
-  for (const l of exportLines(store, runId, format)) text += l;
+  for await (const l of exportLines(store, runId, format)) text += l;
   return text;
 }
 
@@ -182,7 +184,7 @@ interface FileScan {
 }
 
 /** Reads the whole file once without writing: what it holds, and whether it is complete. */
-async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: number) => void): Promise<FileScan> {
+async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: number) => Promise<void> | void): Promise<FileScan> {
   const scan: FileScan = { runs: [], windowsInFile: new Map(), startedAt: new Map(), lastTime: new Map(), ended: new Set(), tornLastLine: false };
   let pendingError: { line: number; error: unknown } | null = null;
   let lineNo = 0;
@@ -219,7 +221,7 @@ async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: num
           scan.windowsInFile.set(run, (scan.windowsInFile.get(run) ?? 0) + 1);
           if (typeof record.window?.time === 'number') scan.lastTime.set(run, Math.max(scan.lastTime.get(run) ?? -Infinity, record.window.time));
         }
-        onRecord?.(record, lineNo);
+        await onRecord?.(record, lineNo);
       }
     }
   } catch (e) {
@@ -231,9 +233,9 @@ async function scanJsonl(path: string, onRecord?: (record: SinkRecord, line: num
 }
 
 /** Windows the store holds for the run, or null when it does not know the run. */
-function windowsStored(store: Store, runId: string): number | null {
+async function windowsStored(store: AsyncStore, runId: string): Promise<number | null> {
   try {
-    const run = store.resolveRun(runId);
+    const run = await store.resolveRun(runId);
     return run.id === runId ? run.windows : null;
   } catch {
     return null;
@@ -254,7 +256,8 @@ function windowsStored(store: Store, runId: string): number | null {
  *   `partial`; TIDEMARK_ERR_FILE_READ when the file cannot be read; TidemarkTypeError
  *   TIDEMARK_ERR_RECORD_INVALID naming the line when a line is not a record, or a spill file's run is unknown.
  */
-export async function importJsonl(store: Store, path: string, options: { partial?: boolean } = {}): Promise<ImportReport> {
+export async function importJsonl(anyStore: AnyStore, path: string, options: { partial?: boolean } = {}): Promise<ImportReport> {
+  const store = toAsyncStore(anyStore);
   const { partial } = checkOptions<{ partial: boolean }>(options, { partial: { type: 'boolean' } }, { partial: false }, { owner: 'importJsonl' });
   const scan = await scanJsonl(path);
   const unended = scan.runs.filter((id) => !scan.ended.has(id));
@@ -269,21 +272,22 @@ export async function importJsonl(store: Store, path: string, options: { partial
     );
   }
   for (const id of scan.runs) {
-    if (!scan.startedAt.has(id) && windowsStored(store, id) === null) {
+    if (!scan.startedAt.has(id) && (await windowsStored(store, id)) === null) {
       throw new TidemarkTypeError(
         'TIDEMARK_ERR_RECORD_INVALID',
         `${path} holds records of run ${id} but not its run record, and this store does not know the run: it is a spill file whose first batches reached the server. Send it there with 'tidemark resend ${path} --to <server address>'.`,
       );
     }
   }
-  const before = new Map(scan.runs.map((id) => [id, windowsStored(store, id) ?? 0]));
+  const before = new Map<string, number>();
+  for (const id of scan.runs) before.set(id, (await windowsStored(store, id)) ?? 0);
   let batch: SinkRecord[] = [];
   let batchLine = 0;
   let lineNo = 0;
-  const flush = (): void => {
+  const flush = async (): Promise<void> => {
     if (batch.length === 0) return;
     try {
-      store.append(batch);
+      await store.append(batch);
     } catch (e) {
       if (e instanceof TidemarkTypeError && e.code === 'TIDEMARK_ERR_RECORD_INVALID') {
         throw new TidemarkTypeError('TIDEMARK_ERR_RECORD_INVALID', `${path}, lines ${batchLine}–${lineNo}: ${e.message}`);
@@ -293,20 +297,20 @@ export async function importJsonl(store: Store, path: string, options: { partial
     batch = [];
   };
   // The second pass writes; what the file holds is known from the first.
-  await scanJsonl(path, (record, line) => {
+  await scanJsonl(path, async (record, line) => {
     lineNo = line;
     if (batch.length === 0) batchLine = line;
     batch.push(record);
-    if (batch.length >= IMPORT_BATCH) flush();
+    if (batch.length >= IMPORT_BATCH) await flush();
   });
-  flush();
+  await flush();
   for (const id of unended) {
     const at = scan.lastTime.get(id) ?? scan.startedAt.get(id);
-    if (at !== undefined) store.heartbeat(id, at);
+    if (at !== undefined) await store.heartbeat(id, at);
   }
   const windows: ImportReport['windows'] = {};
   for (const id of scan.runs) {
-    windows[id] = { inFile: scan.windowsInFile.get(id) ?? 0, added: (windowsStored(store, id) ?? 0) - (before.get(id) ?? 0) };
+    windows[id] = { inFile: scan.windowsInFile.get(id) ?? 0, added: ((await windowsStored(store, id)) ?? 0) - (before.get(id) ?? 0) };
   }
   return { runs: scan.runs, windows, unended, tornLastLine: scan.tornLastLine };
 }

@@ -7,8 +7,8 @@
 import { TidemarkTypeError } from '../errors.js';
 import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { RunInfo, SinkRecord } from '../protocol/records.js';
+import { toAsyncStore, type AnyStore, type AsyncStore } from './async-store.js';
 import type { Sink } from './sink.js';
-import type { Store } from './store.js';
 
 export interface StoreSinkOptions {
   /** Milliseconds between heartbeats and background flushes (10 to 2^31 − 1). Default 2000. */
@@ -29,8 +29,10 @@ const STORE_SINK_RULES: OptionSchema = Object.freeze({
 });
 
 export class StoreSink implements Sink {
-  private readonly openStore: () => Store;
-  private store: Store | null = null;
+  private readonly openStore: () => AnyStore | Promise<AnyStore>;
+  private store: AsyncStore | null = null;
+  /** Appends and heartbeats one after another, in the order they were asked for. */
+  private chain: Promise<void> = Promise.resolve();
   private runId: string | null = null;
   private queue: SinkRecord[] = [];
   private timer: NodeJS.Timeout | null = null;
@@ -41,7 +43,7 @@ export class StoreSink implements Sink {
   private readonly closeStore: boolean;
 
   /** `open` is a function so that opening errors surface in `Sink.open`, where the monitor handles them. */
-  constructor(openStore: () => Store, options: StoreSinkOptions = {}) {
+  constructor(openStore: () => AnyStore | Promise<AnyStore>, options: StoreSinkOptions = {}) {
     if (typeof openStore !== 'function') {
       throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', 'new StoreSink(): the first argument must be a function that opens the store.');
     }
@@ -63,11 +65,11 @@ export class StoreSink implements Sink {
   }
 
   async open(run: RunInfo): Promise<void> {
-    const store = this.openStore();
+    const store = toAsyncStore(await this.openStore());
     try {
-      store.beginRun(run);
+      await store.beginRun(run);
     } catch (e) {
-      if (this.closeStore) store.close();
+      if (this.closeStore) await store.close().catch(() => undefined);
       throw e;
     }
     this.store = store;
@@ -87,17 +89,24 @@ export class StoreSink implements Sink {
     }
   }
 
-  async flush(): Promise<void> {
-    this.flushNow();
+  flush(): Promise<void> {
+    return this.serial(() => this.flushNow());
   }
 
-  private flushNow(): void {
+  /** Runs `fn` after everything asked for before it; a failure is the caller's, not the next one's. */
+  private serial(fn: () => Promise<void>): Promise<void> {
+    const next = this.chain.then(fn);
+    this.chain = next.catch(() => undefined);
+    return next;
+  }
+
+  private async flushNow(): Promise<void> {
     const store = this.store;
     if (store === null || this.queue.length === 0) return;
     const batch = this.queue;
     this.queue = [];
     try {
-      store.append(batch);
+      await store.append(batch);
     } catch (e) {
       // Keep the batch ahead of anything queued meanwhile; the store ignores windows it already has.
       this.queue = batch.concat(this.queue);
@@ -111,12 +120,10 @@ export class StoreSink implements Sink {
   }
 
   private tick(): void {
-    try {
-      this.flushNow();
-      if (this.store !== null && this.runId !== null) this.store.heartbeat(this.runId);
-    } catch (e) {
-      this.onError(e);
-    }
+    this.serial(async () => {
+      await this.flushNow();
+      if (this.store !== null && this.runId !== null) await this.store.heartbeat(this.runId);
+    }).catch((e: unknown) => this.onError(e));
   }
 
   async close(): Promise<void> {
@@ -124,12 +131,13 @@ export class StoreSink implements Sink {
       clearInterval(this.timer);
       this.timer = null;
     }
+    await this.chain;
     const store = this.store;
     try {
       // A lock held by another writer usually clears quickly; try a few times before giving up.
       for (let attempt = 0; ; attempt++) {
         try {
-          this.flushNow();
+          await this.flushNow();
           break;
         } catch (e) {
           if (attempt >= 2) throw e;
@@ -138,7 +146,7 @@ export class StoreSink implements Sink {
       }
     } finally {
       this.store = null;
-      if (store !== null && this.closeStore) store.close();
+      if (store !== null && this.closeStore) await store.close();
     }
   }
 }

@@ -104,9 +104,15 @@ describe("store given as a URL", () => {
   });
 
   it('refuses any other scheme with what to use instead', () => {
-    const e = thrown(() => resolveOptions({ store: 'postgres://db/runs' }));
+    const e = thrown(() => resolveOptions({ store: 'mysql://db/runs' }));
     expect(e.code).toBe('TIDEMARK_ERR_OPTION_INVALID');
-    expect(e.message).toContain("Option 'store' is a postgres:// URL");
+    expect(e.message).toContain("Option 'store' is a mysql:// URL");
     expect(e.message).toContain('http://');
+    expect(e.message).toContain('postgres://');
+  });
+
+  it('takes a postgres:// URL as a database store (issue 14)', () => {
+    expect(resolveOptions({ store: 'postgres://db/runs' }).store).toBe('postgres://db/runs');
+    expect(resolveOptions({ store: 'postgresql://u@db:5433/runs?schema=team' }).store).toBe('postgresql://u@db:5433/runs?schema=team');
   });
 });

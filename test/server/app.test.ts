@@ -108,7 +108,7 @@ describe('HTTP API', () => {
     for (const format of ['csv', 'jsonl'] as const) {
       const r = await server.app.inject(`/api/runs/${run.id}/export?format=${format}`);
       expect(r.statusCode).toBe(200);
-      expect(r.body).toBe(exportRun(store, run.id, format));
+      expect(r.body).toBe(await exportRun(store, run.id, format));
       expect(r.headers['content-disposition']).toBe(`attachment; filename="name-run-00000001.${format}"`);
     }
   });

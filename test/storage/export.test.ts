@@ -54,11 +54,11 @@ function comparable(r: RunDetail): Omit<RunDetail, 'heartbeat_at'> {
 }
 
 describe('CSV export', () => {
-  it('is read back by csv-parse (the reference RFC 4180 parser) to exactly the stored values', () => {
+  it('is read back by csv-parse (the reference RFC 4180 parser) to exactly the stored values', async () => {
     const s = store();
     const run = awkwardRun('csv-run-0001');
     const { ws } = filled(s, run);
-    const text = exportRun(s, run.id, 'csv');
+    const text = await exportRun(s, run.id, 'csv');
     // RFC 4180 §2.1: every record ends in CRLF, including the last.
     expect(text.endsWith('\r\n')).toBe(true);
     const rows = parse(text, { columns: true }) as Record<string, string>[];
@@ -108,14 +108,14 @@ describe('CSV export', () => {
     expect(rows.some((r) => r.layer === 'dense, "two"\r\nlines')).toBe(true);
   });
 
-  it('prefixes a logged metric whose name clashes with a column', () => {
+  it('prefixes a logged metric whose name clashes with a column', async () => {
     const s = store();
     const run = fakeRun({ id: 'clash-0001', layers: 1 });
     s.beginRun(run);
     const ws = fakeWindows(run, 2, 1, false);
     for (const w of ws) w.logs.step = 99;
     s.append(ws.map((window): SinkRecord => ({ type: 'window', window })));
-    const rows = parse(exportRun(s, run.id, 'csv'), { columns: true }) as Record<string, string>[];
+    const rows = parse(await exportRun(s, run.id, 'csv'), { columns: true }) as Record<string, string>[];
     expect(rows[0]).toMatchObject({ step: '8', log_step: '99' });
   });
 });
@@ -126,7 +126,7 @@ describe('JSON Lines export and import', () => {
     const run = awkwardRun('jsonl-run-0001');
     const { records } = filled(a, run);
     const file = join(dir, 'export.jsonl');
-    writeFileSync(file, exportRun(a, run.id, 'jsonl'));
+    writeFileSync(file, await exportRun(a, run.id, 'jsonl'));
     // The export holds the same records the JSON Lines sink would have written, grouped by type.
     const lines = readFileSync(file, 'utf8').trimEnd().split('\n').map(decodeRecord);
     const order = ['run', 'window', 'marker', 'warning', 'end'];
@@ -142,8 +142,8 @@ describe('JSON Lines export and import', () => {
     expect(b.warnings(run.id)).toEqual(a.warnings(run.id));
     expect(runInfoOf(b.resolveRun(run.id))).toEqual(run);
     // And the second export is byte-identical to the first.
-    expect(exportRun(b, run.id, 'jsonl')).toEqual(readFileSync(file, 'utf8'));
-    expect(exportRun(b, run.id, 'csv')).toEqual(exportRun(a, run.id, 'csv'));
+    expect(await exportRun(b, run.id, 'jsonl')).toEqual(readFileSync(file, 'utf8'));
+    expect(await exportRun(b, run.id, 'csv')).toEqual(await exportRun(a, run.id, 'csv'));
   });
 
   it("refuses a JSON Lines sink's own file cut mid-run unless partial; then imports it, twice without doubling, and the run reads as interrupted", async () => {
@@ -192,10 +192,10 @@ describe('JSON Lines export and import', () => {
     expect(missing).toMatchObject({ code: 'TIDEMARK_ERR_FILE_READ', message: expect.stringMatching(/could not read ".*missing\.jsonl" \(ENOENT\)/) });
   });
 
-  it('refuses an unknown format and a run that is not an exact id', () => {
+  it('refuses an unknown format and a run that is not an exact id', async () => {
     const s = store();
     filled(s, fakeRun({ id: 'fmt-0001', layers: 1 }), 1);
     expect(() => exportLines(s, 'fmt-0001', 'xml' as never)).toThrow(expect.objectContaining({ code: 'TIDEMARK_ERR_OPTION_INVALID', message: expect.stringMatching(/format must be 'csv' or 'jsonl'; received "xml"/) }));
-    expect(() => exportRun(s, 'fmt-', 'jsonl')).toThrow(expect.objectContaining({ code: 'TIDEMARK_ERR_RUN_NOT_FOUND' }));
+    await expect(exportRun(s, 'fmt-', 'jsonl')).rejects.toMatchObject({ code: 'TIDEMARK_ERR_RUN_NOT_FOUND' });
   });
 });
