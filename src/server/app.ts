@@ -550,7 +550,7 @@ export async function buildServer(options: ServerOptions): Promise<TidemarkServe
   // Everything the server runs besides fastify stops inside fastify's own lifecycle, so `app.close()` is the one
   // teardown: the watcher stops polling before the caller can close the store.
   app.addHook('preClose', async () => {
-    watcher.stop();
+    await watcher.stop();
     hub.close();
     for (const ws of ingestSockets) ws.terminate();
     wss.close();

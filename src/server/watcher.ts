@@ -43,6 +43,7 @@ export class StoreWatcher {
   /** A poll in progress, and whether another was asked for meanwhile. */
   private polling = false;
   private again = false;
+  private current: Promise<void> | null = null;
   private readonly onError: (e: unknown) => void;
 
   constructor(store: AsyncStore, hub: LiveHub, options: { intervalMs: number; onError: (e: unknown) => void }) {
@@ -78,13 +79,18 @@ export class StoreWatcher {
       return;
     }
     this.polling = true;
-    try {
+    const run = (async () => {
       do {
         this.again = false;
         await this.pollOnce();
       } while (this.again && !this.stopped);
+    })();
+    this.current = run;
+    try {
+      await run;
     } finally {
       this.polling = false;
+      this.current = null;
     }
   }
 
@@ -124,7 +130,7 @@ export class StoreWatcher {
         await this.publishMarkers(r.id, s);
       }
     } catch (e) {
-      this.onError(e);
+      if (!this.stopped) this.onError(e);
     }
   }
 
@@ -139,9 +145,11 @@ export class StoreWatcher {
     for (const m of markers) this.hub.publishMarker(m);
   }
 
-  stop(): void {
+  /** Stops polling; resolves once a poll in progress has finished, so the store can be closed after it. */
+  async stop(): Promise<void> {
     this.stopped = true;
     if (this.timer !== null) clearInterval(this.timer);
     this.timer = null;
+    await this.current;
   }
 }
