@@ -117,6 +117,108 @@ CREATE TABLE warnings (
 -- md5: a long message would not fit a btree entry.
 CREATE UNIQUE INDEX warnings_key ON warnings (run_id, time, code, md5(message));
 
+-- One call stores the records of an append in the order given, in the caller's transaction: a writer
+-- that trains in the same process gets its store work done in one round trip, however seldom the
+-- training loop lets I/O through. doc: a JSON array of checked records (src/storage/record-check.ts);
+-- numbers that JSON cannot hold are the strings "NaN", "Infinity" and "-Infinity".
+-- Errors: TM404 (message: the run id) when a record names a run the store does not have; TM409
+-- (message: the record's position) when a window's step is another stored window's.
+CREATE FUNCTION append_records(doc json, now_ms double precision) RETURNS void LANGUAGE plpgsql AS $fn$
+DECLARE
+  r json;
+  kind text;
+  rid text;
+  n integer;
+BEGIN
+  FOR r IN SELECT value FROM json_array_elements(doc) LOOP
+    kind := r->>'type';
+    IF kind = 'run' THEN
+      rid := r->>'id';
+      INSERT INTO runs (id, name, group_name, tags, status, created_at, heartbeat_at, config)
+        VALUES (rid, r->>'name', r->>'group', r->>'tags', 'running', (r->>'started')::float8, now_ms, r->>'config')
+        ON CONFLICT (id) DO NOTHING;
+      GET DIAGNOSTICS n = ROW_COUNT;
+      IF n = 0 THEN
+        -- The same run begun again (a resumed writer): it is alive.
+        UPDATE runs SET heartbeat_at = now_ms,
+          status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = rid;
+      ELSE
+        INSERT INTO layers (run_id, position, name, class_name, params, variables)
+          SELECT rid, (l->>'position')::integer, l->>'name', l->>'class_name', (l->>'params')::float8, l->>'variables'
+          FROM json_array_elements(r->'layers') AS l;
+      END IF;
+    ELSE
+      rid := r->>'run';
+      IF NOT EXISTS (SELECT 1 FROM runs WHERE id = rid) THEN
+        RAISE EXCEPTION USING ERRCODE = 'TM404', MESSAGE = rid;
+      END IF;
+      IF kind = 'window' THEN
+        IF EXISTS (SELECT 1 FROM windows WHERE run_id = rid AND step = (r->>'step')::float8 AND idx <> (r->>'index')::float8) THEN
+          RAISE EXCEPTION USING ERRCODE = 'TM409', MESSAGE = r->>'i';
+        END IF;
+        INSERT INTO windows (run_id, idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise)
+          VALUES (rid, (r->>'index')::float8, (r->>'first_step')::float8, (r->>'step')::float8, (r->>'epoch')::float8,
+            (r->>'batches')::float8, (r->>'batch_size')::float8, (r->>'batches_per_epoch')::float8, r->>'pass_batches',
+            (r->>'snr_floor')::float8, (r->>'time')::float8, r->>'noise')
+          ON CONFLICT (run_id, idx) DO NOTHING;
+        GET DIAGNOSTICS n = ROW_COUNT;
+        -- A window already stored (a resend) adds nothing.
+        IF n > 0 THEN
+          -- In the record's key order: series are read back in creation order, as the first window had them.
+          INSERT INTO series (run_id, scope, layer, variable, metric)
+            SELECT rid, p->>0, p->>1, p->>2, p->>3 FROM json_array_elements(r->'points') WITH ORDINALITY AS t (p, k)
+            ORDER BY k ON CONFLICT DO NOTHING;
+          INSERT INTO points (series_id, step, value)
+            SELECT s.id, (r->>'step')::float8, (p->>4)::float8
+            FROM json_array_elements(r->'points') AS p
+            JOIN series s ON s.run_id = rid AND s.metric = p->>3 AND s.scope = p->>0
+              AND coalesce(s.layer, '') = coalesce(p->>1, '') AND coalesce(s.variable, '') = coalesce(p->>2, '')
+            WHERE p->>4 IS NOT NULL;
+          UPDATE runs SET window_count = window_count + 1,
+            last_step = greatest(coalesce(last_step, (r->>'step')::float8), (r->>'step')::float8),
+            heartbeat_at = greatest(heartbeat_at, now_ms),
+            status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END
+            WHERE id = rid;
+        END IF;
+      ELSIF kind = 'marker' THEN
+        INSERT INTO markers (run_id, layer, kind, step, detected_step, confidence, details)
+          VALUES (rid, r->>'layer', r->>'kind', (r->>'step')::float8, (r->>'detected_step')::float8, (r->>'confidence')::float8, r->>'details')
+          ON CONFLICT DO NOTHING;
+      ELSIF kind = 'warning' THEN
+        INSERT INTO warnings (run_id, code, message, step, time)
+          VALUES (rid, r->>'code', r->>'message', (r->>'step')::float8, (r->>'time')::float8)
+          ON CONFLICT DO NOTHING;
+      ELSIF kind = 'end' THEN
+        UPDATE runs SET status = r->>'status', ended_at = (r->>'time')::float8, end_step = (r->>'step')::float8 WHERE id = rid;
+      END IF;
+    END IF;
+  END LOOP;
+END
+$fn$;
+
+-- A remote writer's numbered batch, stored once: true when (run, seq) was stored before (then nothing is
+-- written). TM404 (message: batch:<run>) when the run is not stored and the batch does not carry it; TM208 when another server
+-- stored the same batch while this call ran (the caller's transaction must then roll back).
+CREATE FUNCTION append_batch(rid text, seq bigint, records integer, doc json, now_ms double precision) RETURNS boolean LANGUAGE plpgsql AS $fn$
+DECLARE
+  n integer;
+BEGIN
+  IF EXISTS (SELECT 1 FROM ingest_batches b WHERE b.run_id = rid AND b.seq = append_batch.seq) THEN
+    RETURN true;
+  END IF;
+  PERFORM append_records(doc, now_ms);
+  IF NOT EXISTS (SELECT 1 FROM runs WHERE id = rid) THEN
+    RAISE EXCEPTION USING ERRCODE = 'TM404', MESSAGE = 'batch:' || rid;
+  END IF;
+  INSERT INTO ingest_batches (run_id, seq, records, received_at) VALUES (rid, append_batch.seq, records, now_ms) ON CONFLICT DO NOTHING;
+  GET DIAGNOSTICS n = ROW_COUNT;
+  IF n = 0 THEN
+    RAISE EXCEPTION USING ERRCODE = 'TM208', MESSAGE = 'stored meanwhile';
+  END IF;
+  RETURN false;
+END
+$fn$;
+
 CREATE TABLE ingest_batches (
   run_id       text NOT NULL REFERENCES runs (id) ON DELETE CASCADE,
   seq          bigint NOT NULL,

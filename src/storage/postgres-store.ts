@@ -6,12 +6,12 @@
  */
 import pg from 'pg';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError, type ErrorCode } from '../errors.js';
-import { decodeJson } from '../protocol/json-codec.js';
+import { decodeJson, encodeJson } from '../protocol/json-codec.js';
 import type { LayerInfo, Marker, RunInfo, SinkRecord, WindowRecord } from '../protocol/records.js';
 import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { AsyncStore } from './async-store.js';
 import { migratePg, PG_APPLICATION, PG_SCHEMA_VERSION, readPgSchemaState } from './postgres-schema.js';
-import { checkBatch, checkRecords, checkRun, show, type CheckedRecord, type RunRowIn, type WindowRowIn } from './record-check.js';
+import { checkBatch, checkRecords, checkRun, show, type CheckedRecord } from './record-check.js';
 import {
   ambiguousRun,
   assembleWindows,
@@ -126,8 +126,6 @@ const WINDOW_COLUMNS = 'idx, first_step, step, epoch, batches, batch_size, batch
 
 type Client = pg.PoolClient;
 
-/** Thrown inside a batch's transaction to roll it back when another server stored the batch first. */
-const DUPLICATE = new Error('batch already stored');
 
 /** A PostgreSQL error's SQLSTATE, or null. */
 function pgCode(e: unknown): string | null {
@@ -160,8 +158,6 @@ export class PostgresStore implements AsyncStore {
   readonly backend = 'postgres' as const;
   private pool: pg.Pool | null;
   private readonly opts: Required<PostgresStoreOptions>;
-  /** Series ids by run and key: ids never change while the run exists, so any server may cache them. */
-  private readonly seriesIds = new Map<string, Map<string, number>>();
 
   constructor(url: string, opts: Required<PostgresStoreOptions>) {
     this.path = redact(url);
@@ -267,8 +263,6 @@ export class PostgresStore implements AsyncStore {
       await client.query('ROLLBACK').catch(() => {
         broken = true;
       });
-      // A rolled-back write may have cached series ids that no longer exist.
-      if (write) this.seriesIds.clear();
       throw wrap(
         write ? 'TIDEMARK_ERR_STORE_WRITE' : 'TIDEMARK_ERR_STORE_READ',
         write ? `${doing}: could not write to ${this.path}; nothing of this call was kept` : `${doing}: could not read ${this.path}`,
@@ -284,209 +278,73 @@ export class PostgresStore implements AsyncStore {
 
   async beginRun(run: RunInfo): Promise<void> {
     const checked = checkRun(run);
-    await this.transaction('beginRun', (c) => this.insertRun(c, checked), true);
+    await this.write('beginRun', [{ type: 'run', run: checked }]);
   }
 
   async append(records: readonly SinkRecord[]): Promise<void> {
-    const checked = checkRecords(records);
-    await this.transaction('append', (c) => this.appendRecords(c, checked), true);
+    await this.write('append', checkRecords(records));
+  }
+
+  /** Stores checked records with one call of the schema's append_records (one round trip, one transaction). */
+  private async write(doing: string, records: readonly CheckedRecord[]): Promise<void> {
+    const pool = this.writable(doing);
+    try {
+      await pool.query('SELECT append_records($1::json, $2)', [documentOf(records), this.opts.now()]);
+    } catch (e) {
+      throw this.writeError(doing, records, e);
+    }
   }
 
   async appendBatch(runId: string, seq: number, records: readonly SinkRecord[]): Promise<{ duplicate: boolean }> {
     checkBatch(runId, seq, records);
     const checked = checkRecords(records);
-    const stored = await this.transaction(
-      'appendBatch',
-      async (c) => {
-        if ((await c.query('SELECT 1 FROM ingest_batches WHERE run_id = $1 AND seq = $2', [runId, seq])).rowCount !== 0) return false;
-        await this.appendRecords(c, checked);
-        let claimed: pg.QueryResult;
-        try {
-          // Another server storing the same batch at the same time waits here for its commit, then conflicts.
-          claimed = await c.query('INSERT INTO ingest_batches (run_id, seq, records, received_at) VALUES ($1, $2, $3, $4) ON CONFLICT DO NOTHING', [
-            runId,
-            seq,
-            records.length,
-            this.opts.now(),
-          ]);
-        } catch (e) {
-          if (pgCode(e) === '23503') {
-            throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `appendBatch: run ${show(runId)} is not in the store; its first batch must hold its run record.`);
-          }
-          throw e;
-        }
-        // Stored meanwhile by another server: undo this copy (the records are idempotent, but the count is not).
-        if (claimed.rowCount === 0) throw DUPLICATE;
-        return true;
-      },
-      true,
-    ).catch((e: unknown) => {
-      if ((e as { cause?: unknown }).cause === DUPLICATE) return false;
-      throw e;
-    });
-    return { duplicate: !stored };
-  }
-
-  private async appendRecords(c: Client, records: readonly CheckedRecord[]): Promise<void> {
-    const now = this.opts.now();
-    const touched = new Map<string, { count: number; last: number }>();
-    for (let i = 0; i < records.length; i++) {
-      const r = records[i]!;
-      switch (r.type) {
-        case 'run':
-          await this.insertRun(c, r.run);
-          break;
-        case 'window':
-          if (await this.insertWindow(c, r.window, i)) {
-            const t = touched.get(r.window.run) ?? { count: 0, last: r.window.step };
-            t.count++;
-            t.last = Math.max(t.last, r.window.step);
-            touched.set(r.window.run, t);
-          }
-          break;
-        case 'marker': {
-          const m = r.marker;
-          await this.guarded(m.run, () =>
-            c.query(
-              'INSERT INTO markers (run_id, layer, kind, step, detected_step, confidence, details) VALUES ($1, $2, $3, $4, $5, $6, $7) ON CONFLICT DO NOTHING',
-              [m.run, m.layer, m.kind, m.step, m.detected_step, m.confidence, m.details],
-            ),
-          );
-          break;
-        }
-        case 'warning': {
-          const w = r.warning;
-          await this.guarded(w.run, () =>
-            c.query('INSERT INTO warnings (run_id, code, message, step, time) VALUES ($1, $2, $3, $4, $5) ON CONFLICT DO NOTHING', [
-              w.run,
-              w.code,
-              w.message,
-              w.step,
-              w.time,
-            ]),
-          );
-          break;
-        }
-        case 'end': {
-          const e = r.end;
-          const res = await c.query('UPDATE runs SET status = $1, ended_at = $2, end_step = $3 WHERE id = $4', [e.status, e.time, e.step, e.run]);
-          if (res.rowCount === 0) throw runNotFound(e.run, 'append');
-          break;
-        }
-      }
-    }
-    for (const [runId, t] of touched) {
-      await c.query(
-        `UPDATE runs SET window_count = window_count + $1, last_step = greatest(coalesce(last_step, $2), $2),
-         heartbeat_at = greatest(heartbeat_at, $3),
-         status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = $4`,
-        [t.count, t.last, now, runId],
-      );
-    }
-  }
-
-  /** Runs an insert that names `runId`, turning a foreign-key failure into TIDEMARK_ERR_RUN_NOT_FOUND. */
-  private async guarded<T>(runId: string, fn: () => Promise<T>): Promise<T> {
+    const pool = this.writable('appendBatch');
     try {
-      return await fn();
+      const res = await pool.query<{ duplicate: boolean }>('SELECT append_batch($1, $2, $3, $4::json, $5) AS duplicate', [
+        runId,
+        seq,
+        records.length,
+        documentOf(checked),
+        this.opts.now(),
+      ]);
+      return { duplicate: res.rows[0]!.duplicate };
     } catch (e) {
-      if (pgCode(e) === '23503') throw runNotFound(runId, 'append');
-      throw e;
+      // Another server stored the same batch while this call ran: this copy was rolled back.
+      if (pgCode(e) === 'TM208') return { duplicate: true };
+      if (pgCode(e) === 'TM404' && (e as Error).message === `batch:${runId}`) {
+        throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `appendBatch: run ${show(runId)} is not in the store; its first batch must hold its run record.`);
+      }
+      throw this.writeError('appendBatch', checked, e);
     }
   }
 
-  private async insertRun(c: Client, run: RunRowIn): Promise<void> {
-    const now = this.opts.now();
-    const inserted = await c.query(
-      `INSERT INTO runs (id, name, group_name, tags, status, created_at, heartbeat_at, config)
-       VALUES ($1, $2, $3, $4, 'running', $5, $6, $7) ON CONFLICT (id) DO NOTHING`,
-      [run.id, run.name, run.group, run.tags, run.started, now, run.config],
-    );
-    if (inserted.rowCount === 0) {
-      // The same run begun again (a resumed writer): it is alive.
-      await this.touch(c, run.id, now);
-      return;
+  /** A failed write as a coded error: the schema's own codes name the record, others are wrapped. */
+  private writeError(doing: string, records: readonly CheckedRecord[], e: unknown): Error {
+    const state = pgCode(e);
+    if (state === 'TM404') return runNotFound((e as Error).message, 'append');
+    if (state === 'TM409') {
+      const i = Number((e as Error).message);
+      const r = records[i];
+      if (r?.type === 'window') return stepClash(i, r.window.index, r.window.run, r.window.step);
     }
-    if (run.layers.length === 0) return;
-    await c.query(
-      `INSERT INTO layers (run_id, position, name, class_name, params, variables)
-       SELECT $1, * FROM unnest($2::integer[], $3::text[], $4::text[], $5::float8[], $6::text[])`,
-      [run.id, run.layers.map((l) => l.position), run.layers.map((l) => l.name), run.layers.map((l) => l.class_name), run.layers.map((l) => l.params), run.layers.map((l) => l.variables)],
-    );
+    if (state === '23503') return runNotFound(records.map(ownerRun).find((x) => x !== null) ?? '?', 'append');
+    return wrap('TIDEMARK_ERR_STORE_WRITE', `${doing}: could not write to ${this.path}; nothing of this call was kept`, e);
   }
 
-  private touch(c: Client, runId: string, now: number): Promise<pg.QueryResult> {
-    return c.query(
-      `UPDATE runs SET heartbeat_at = $1,
-       status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = $2`,
-      [now, runId],
-    );
-  }
-
-  /** Returns false when the window was already stored (a resend). */
-  private async insertWindow(c: Client, w: WindowRowIn, i: number): Promise<boolean> {
+  /** One statement, so one round trip: a writer heartbeats while it trains. */
+  async heartbeat(runId: string, now: number = this.opts.now()): Promise<void> {
+    const pool = this.writable('heartbeat');
     let res: pg.QueryResult;
     try {
-      res = await c.query(
-        `INSERT INTO windows (run_id, idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise)
-         VALUES ($1, $2, $3, $4, $5, $6, $7, $8, $9, $10, $11, $12) ON CONFLICT (run_id, idx) DO NOTHING`,
-        [w.run, w.index, w.first_step, w.step, w.epoch, w.batches, w.batch_size, w.batches_per_epoch, w.pass_batches, w.snr_floor, w.time, w.noise],
+      res = await pool.query(
+        `UPDATE runs SET heartbeat_at = $1,
+         status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END WHERE id = $2`,
+        [now, runId],
       );
     } catch (e) {
-      const state = pgCode(e);
-      if (state === '23503') throw runNotFound(w.run, 'append');
-      if (state === '23505') throw stepClash(i, w.index, w.run, w.step);
-      throw e;
+      throw wrap('TIDEMARK_ERR_STORE_WRITE', `heartbeat: could not write to ${this.path}`, e);
     }
-    if (res.rowCount === 0) return false;
-    const ids = await this.seriesIdsFor(c, w);
-    const seriesIds: number[] = [];
-    const values: number[] = [];
-    for (const p of w.points) {
-      if (p.value === null) continue;
-      seriesIds.push(ids.get(keyOf(p.scope, p.layer, p.variable, p.metric))!);
-      values.push(p.value);
-    }
-    if (seriesIds.length > 0) {
-      await c.query('INSERT INTO points (series_id, step, value) SELECT s, $2, v FROM unnest($1::bigint[], $3::float8[]) AS t (s, v)', [
-        seriesIds,
-        w.step,
-        values.map(pgFloat),
-      ]);
-    }
-    return true;
-  }
-
-  /** The ids of every series the window names, creating the missing ones in one statement. */
-  private async seriesIdsFor(c: Client, w: WindowRowIn): Promise<Map<string, number>> {
-    let ids = this.seriesIds.get(w.run);
-    if (ids === undefined) {
-      ids = new Map();
-      this.seriesIds.set(w.run, ids);
-    }
-    const missing = w.points.filter((p) => !ids!.has(keyOf(p.scope, p.layer, p.variable, p.metric)));
-    if (missing.length > 0) {
-      // ORDER BY ordinality keeps the creation order: series are read back in it, as the first window's key order.
-      await c.query(
-        `INSERT INTO series (run_id, scope, layer, variable, metric)
-         SELECT $1, scope, layer, variable, metric FROM unnest($2::text[], $3::text[], $4::text[], $5::text[]) WITH ORDINALITY AS t (scope, layer, variable, metric, n)
-         ORDER BY n ON CONFLICT DO NOTHING`,
-        [w.run, missing.map((p) => p.scope), missing.map((p) => p.layer), missing.map((p) => p.variable), missing.map((p) => p.metric)],
-      );
-      const rows = await c.query<SeriesDbRow>('SELECT id, scope, layer, variable, metric FROM series WHERE run_id = $1', [w.run]);
-      for (const s of rows.rows) ids.set(keyOf(s.scope, s.layer, s.variable, s.metric), s.id);
-    }
-    return ids;
-  }
-
-  async heartbeat(runId: string, now: number = this.opts.now()): Promise<void> {
-    await this.transaction(
-      'heartbeat',
-      async (c) => {
-        if ((await this.touch(c, runId, now)).rowCount === 0) throw runNotFound(runId);
-      },
-      true,
-    );
+    if (res.rowCount === 0) throw runNotFound(runId);
   }
 
   async deleteRun(runId: string): Promise<boolean> {
@@ -514,16 +372,13 @@ export class PostgresStore implements AsyncStore {
   private async deleteOne(c: Client, runId: string): Promise<boolean> {
     await c.query('DELETE FROM points WHERE series_id IN (SELECT id FROM series WHERE run_id = $1)', [runId]);
     // Layers, series, windows, markers, warnings and batches go with the run (ON DELETE CASCADE).
-    const gone = ((await c.query('DELETE FROM runs WHERE id = $1', [runId])).rowCount ?? 0) > 0;
-    this.seriesIds.delete(runId);
-    return gone;
+    return ((await c.query('DELETE FROM runs WHERE id = $1', [runId])).rowCount ?? 0) > 0;
   }
 
   async close(): Promise<void> {
     const pool = this.pool;
     if (pool === null) return;
     this.pool = null;
-    this.seriesIds.clear();
     await pool.end();
   }
 
@@ -727,8 +582,42 @@ export class PostgresStore implements AsyncStore {
   }
 }
 
-function keyOf(scope: string, layer: string | null, variable: string | null, metric: string): string {
-  return `${scope}\u0000${layer ?? ''}\u0000${variable ?? ''}\u0000${metric}`;
+/** The run a checked record belongs to. */
+function ownerRun(r: CheckedRecord): string | null {
+  switch (r.type) {
+    case 'run':
+      return r.run.id;
+    case 'window':
+      return r.window.run;
+    case 'marker':
+      return r.marker.run;
+    case 'warning':
+      return r.warning.run;
+    case 'end':
+      return r.end.run;
+  }
+}
+
+/** Checked records as the JSON document append_records reads (postgres-schema.ts), NaN and ±Infinity as strings. */
+function documentOf(records: readonly CheckedRecord[]): string {
+  return encodeJson(
+    records.map((r, i) => {
+      switch (r.type) {
+        case 'run':
+          return { type: 'run', ...r.run };
+        case 'window': {
+          const { points, ...row } = r.window;
+          return { type: 'window', i, ...row, points: points.map((p) => [p.scope, p.layer, p.variable, p.metric, p.value]) };
+        }
+        case 'marker':
+          return { type: 'marker', ...r.marker };
+        case 'warning':
+          return { type: 'warning', ...r.warning };
+        case 'end':
+          return { type: 'end', ...r.end };
+      }
+    }),
+  );
 }
 
 /** pg sends numbers as text; ±Infinity and NaN are PostgreSQL's own spellings, which node-postgres writes for us. */
