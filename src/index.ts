@@ -37,6 +37,9 @@ export type {
   StoredWarning,
   WindowQuery,
 } from './storage/store.js';
+export type { AsyncStore, AnyStore } from './storage/async-store.js';
+export { connectStore, type ConnectOptions } from './storage/connect-store.js';
+export { openPostgresStore, type PostgresStoreOptions } from './storage/postgres-store.js';
 export { StoreSink, type StoreSinkOptions } from './storage/store-sink.js';
 export { exportRun, importJsonl, type ExportFormat, type ImportReport } from './storage/export.js';
 export { RemoteSink, type RemoteSinkOptions } from './storage/remote-sink.js';

@@ -20,6 +20,8 @@ describe('public API', () => {
         'importJsonl',
         'monitor',
         'openStore',
+        'openPostgresStore',
+        'connectStore',
         'RemoteSink',
         'resendSpill',
         'startServer',
