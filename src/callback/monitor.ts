@@ -27,7 +27,7 @@ import type { Sink } from '../storage/sink.js';
 import { connectStore } from '../storage/connect-store.js';
 import { RemoteSink } from '../storage/remote-sink.js';
 import { StoreSink } from '../storage/store-sink.js';
-import { startServer, type RunningServer } from '../server/serve.js';
+import type { RunningServer } from '../server/serve.js';
 import type { Accumulator, RawVariableWindow } from './accumulator.js';
 import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
@@ -265,6 +265,8 @@ class MonitorSession implements Monitor {
   /** Serves the store in-process; a port in use degrades to a warning (unless strict). */
   async serve(port: number): Promise<void> {
     try {
+      // Loaded here, not at import: a monitor that serves nothing never loads the server's dependencies.
+      const { startServer } = await import('../server/serve.js');
       this.served = await startServer({ db: this.opts.store as string, port, host: '127.0.0.1', onError: (e) => this.report('TIDEMARK_ERR_INTERNAL', e) });
       console.info(`tidemark: run '${this.name}' is served at ${this.served.url} until mon.close()`);
     } catch (e) {

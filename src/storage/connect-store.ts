@@ -5,10 +5,11 @@
  */
 import type { AsyncStore } from './async-store.js';
 import { asAsyncStore } from './async-store.js';
-import { isPostgresUrl, openPostgresStore } from './postgres-store.js';
-import { openStore } from './sqlite-store.js';
 
-export { isPostgresUrl };
+/** True for the addresses that select PostgreSQL: postgres:// and postgresql://. */
+export function isPostgresUrl(s: string): boolean {
+  return /^postgres(ql)?:\/\//i.test(s);
+}
 
 export interface ConnectOptions {
   /** Open for reading only. Default false. */
@@ -24,11 +25,15 @@ export interface ConnectOptions {
  * query parameter (`postgres://host/db?schema=team_a`; default `tidemark`).
  */
 export async function connectStore(address: string, options: ConnectOptions = {}): Promise<AsyncStore> {
+  // Each backend's driver is loaded when first asked for: a monitor writing to memory, a file of JSON
+  // Lines or a server never loads better-sqlite3 or pg.
   if (isPostgresUrl(address)) {
+    const { openPostgresStore } = await import('./postgres-store.js');
     const url = new URL(address);
     const schema = url.searchParams.get('schema');
     url.searchParams.delete('schema');
     return openPostgresStore(url.toString(), { ...options, ...(schema !== null ? { schema } : {}) });
   }
+  const { openStore } = await import('./sqlite-store.js');
   return asAsyncStore(openStore(address, options));
 }

@@ -10,6 +10,7 @@ import { decodeJson, encodeJson } from '../protocol/json-codec.js';
 import type { LayerInfo, Marker, RunInfo, SinkRecord, WindowRecord } from '../protocol/records.js';
 import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { AsyncStore } from './async-store.js';
+import { isPostgresUrl } from './connect-store.js';
 import { migratePg, PG_APPLICATION, PG_SCHEMA_VERSION, readPgSchemaState } from './postgres-schema.js';
 import { checkBatch, checkRecords, checkRun, show, type CheckedRecord } from './record-check.js';
 import {
@@ -73,10 +74,6 @@ const RULES: OptionSchema = Object.freeze({
 
 const SCHEMA_NAME = /^[a-z_][a-z0-9_]{0,62}$/;
 
-/** True for the addresses that select this backend: postgres:// and postgresql://. */
-export function isPostgresUrl(s: string): boolean {
-  return /^postgres(ql)?:\/\//i.test(s);
-}
 
 /** The URL as messages show it: without its password. */
 function redact(url: string): string {
