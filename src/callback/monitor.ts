@@ -25,6 +25,7 @@ import { JsonlSink } from '../storage/jsonl-sink.js';
 import { MemorySink } from '../storage/memory-sink.js';
 import type { Sink } from '../storage/sink.js';
 import { connectStore } from '../storage/connect-store.js';
+import { parseSinkAddress } from '../storage/sink-address.js';
 import { RemoteSink } from '../storage/remote-sink.js';
 import { StoreSink } from '../storage/store-sink.js';
 import type { RunningServer } from '../server/serve.js';
@@ -33,7 +34,7 @@ import { JsAccumulator } from './js-accumulator.js';
 import { layerInfo, viewModel, type ModelView } from './model-layers.js';
 import { NoiseMeter, type NoiseResult } from './noise-meter.js';
 import { installTap, type GradientPair } from './optimizer-tap.js';
-import { isServerUrl, resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
+import { resolveOptions, type MonitorOptions, type ResolvedOptions } from './options.js';
 import { Probe, probeFailure, type ProbeResult } from './probe.js';
 import { TensorAccumulator } from './tensor-accumulator.js';
 import { pooledStats, variableStats, type WindowContext } from './window-stats.js';
@@ -97,13 +98,21 @@ export interface Monitor {
 
 function openSink(store: string | Sink, onError: (e: unknown) => void): Sink {
   if (typeof store !== 'string') return store;
-  if (store === 'memory') return new MemorySink();
-  if (isServerUrl(store)) {
-    const token = process.env.TIDEMARK_TOKEN;
-    return new RemoteSink({ url: store, ...(token !== undefined && token !== '' && !/[?&]token=/.test(store) ? { token } : {}), onError });
+  const at = parseSinkAddress(store);
+  switch (at.kind) {
+    case 'memory':
+      return new MemorySink();
+    case 'server': {
+      const token = process.env.TIDEMARK_TOKEN;
+      return new RemoteSink({ url: at.url, ...(token !== undefined && token !== '' && !/[?&]token=/.test(at.url) ? { token } : {}), onError });
+    }
+    case 'jsonl':
+      return new JsonlSink(at.path, { onError });
+    case 'postgres':
+      return new StoreSink(() => connectStore(at.url), { onError });
+    case 'sqlite':
+      return new StoreSink(() => connectStore(at.path), { onError });
   }
-  if (store.endsWith('.jsonl')) return new JsonlSink(store, { onError });
-  return new StoreSink(() => connectStore(store), { onError });
 }
 
 function chooseAccumulator(kind: ResolvedOptions['accumulator'], view: ModelView): Accumulator {

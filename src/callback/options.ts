@@ -7,6 +7,7 @@ import { TidemarkRangeError, TidemarkTypeError, type MonitorWarning } from '../e
 import { ADVICE_RULES, type AdviceOptions } from '../analysis/stop-advice.js';
 import { PHASE_RULES, type PhaseOptions } from '../analysis/phase-detector.js';
 import type { Sink } from '../storage/sink.js';
+import { parseSinkAddress } from '../storage/sink-address.js';
 import { resolveNoiseOptions, type NoiseOptions, type ResolvedNoiseOptions } from './noise-meter.js';
 import { resolveProbeOptions, type ProbeOptions, type ResolvedProbeOptions } from './probe.js';
 
@@ -105,10 +106,6 @@ const KNOWN = [
 
 /** In design.md's contract, built in later versions. */
 
-/** A tidemark server's address: ws(s):// for ingest, or the http(s):// address `serve` prints. */
-export function isServerUrl(store: string): boolean {
-  return /^(wss?|https?):\/\//i.test(store);
-}
 
 /** `$TIDEMARK_DB`, else `tidemark.db` in the working directory. */
 export function defaultStore(): string {
@@ -146,15 +143,7 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
 
   const store = o.store ?? defaultStore();
   if (typeof store === 'string') {
-    if (store.length === 0) throw invalid('store', "a file path, 'memory', or a Sink object", store);
-    const scheme = /^([a-z][a-z0-9+.-]*):\/\//i.exec(store);
-    if (scheme !== null && !isServerUrl(store) && !/^postgres(ql)?$/i.test(scheme[1]!)) {
-      // A URL must never become a folder named after its scheme.
-      throw new TidemarkTypeError(
-        'TIDEMARK_ERR_OPTION_INVALID',
-        `Option 'store' is a ${scheme[1]}:// URL, which tidemark cannot write to. Use a server's address (http://, https://, ws:// or wss://, as 'tidemark serve' prints it), a postgres:// database URL, a SQLite file path, a .jsonl path, or 'memory'.`,
-      );
-    }
+    parseSinkAddress(store);
   } else if (!isSink(store)) {
     throw invalid('store', "a file path (SQLite, or .jsonl for JSON Lines), 'memory', or a Sink object", store);
   }
@@ -218,11 +207,11 @@ export function resolveOptions(input: unknown, now: () => number = Date.now): Re
     if (typeof o.serve !== 'number' || !Number.isInteger(o.serve) || o.serve < 0 || o.serve > 65535) {
       throw invalid('serve', 'a port number from 0 to 65535 (0: any free port), or false', o.serve);
     }
-    const path = typeof store === 'string' ? store : null;
-    if (path === null || path === 'memory' || path.endsWith('.jsonl') || isServerUrl(path)) {
+    const kind = typeof store === 'string' ? parseSinkAddress(store).kind : null;
+    if (kind !== 'sqlite' && kind !== 'postgres') {
       throw new TidemarkTypeError(
         'TIDEMARK_ERR_OPTION_INVALID',
-        `Option 'serve' serves the run from its SQLite store, but 'store' is ${typeof store === 'string' ? `'${store}'` : 'a Sink object'}. Use a SQLite file (the default), or run 'tidemark serve' and send to it with store: 'ws://127.0.0.1:7341'.`,
+        `Option 'serve' serves the run from its store (a SQLite file or a postgres:// database), but 'store' is ${typeof store === 'string' ? `'${store}'` : 'a Sink object'}. Use a SQLite file (the default), or run 'tidemark serve' and send to it with store: 'ws://127.0.0.1:7341'.`,
       );
     }
     serve = o.serve;
