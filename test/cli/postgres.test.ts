@@ -54,7 +54,7 @@ describe.skipIf(postgresMissing !== null)(`a PostgreSQL store from monitor() to 
       const [a] = await pg.runs();
       const [b] = await file.runs();
       expect(a).toMatchObject({ id: runId, name: 'pg-run', group: 'team', tags: { seed: '1' }, status: 'finished', windows: b!.windows });
-      const strip = (w: { run: string; time: number }) => ({ ...w, run: '', time: 0 });
+      const strip = <T extends { run: string; time: number }>(w: T): T => ({ ...w, run: '', time: 0 });
       const wa = (await pg.windows(a!.id)).map(strip);
       const wb = (await file.windows(b!.id)).map(strip);
       expect(wa.length).toBeGreaterThan(5);
