@@ -6,7 +6,7 @@
 import type { Marker, Phase } from '../protocol/records.js';
 import { toAsyncStore, type AnyStore, type AsyncStore } from '../storage/async-store.js';
 import type { RunRow } from '../storage/store.js';
-import type { ServerCounters } from './app.js';
+import type { ServerCounters } from './context.js';
 import { OPENMETRICS_CONTENT_TYPE, PROMETHEUS_TEXT_CONTENT_TYPE, renderOpenMetrics, renderPrometheusText, type Family, type Sample } from './openmetrics.js';
 
 const LAYER_GAUGES: [metric: string, help: string][] = [

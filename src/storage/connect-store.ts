@@ -5,11 +5,9 @@
  */
 import type { AsyncStore } from './async-store.js';
 import { asAsyncStore } from './async-store.js';
+import { isPostgresUrl } from './store-url.js';
 
-/** True for the addresses that select PostgreSQL: postgres:// and postgresql://. */
-export function isPostgresUrl(s: string): boolean {
-  return /^postgres(ql)?:\/\//i.test(s);
-}
+export { isPostgresUrl };
 
 export interface ConnectOptions {
   /** Open for reading only. Default false. */

@@ -10,7 +10,7 @@ import { decodeJson, encodeJson } from '../protocol/json-codec.js';
 import type { LayerInfo, Marker, RunInfo, SinkRecord, WindowRecord } from '../protocol/records.js';
 import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { AsyncStore } from './async-store.js';
-import { isPostgresUrl } from './connect-store.js';
+import { isPostgresUrl } from './store-url.js';
 import { migratePg, PG_APPLICATION, PG_SCHEMA_VERSION, readPgSchemaState } from './postgres-schema.js';
 import { checkBatch, checkRecords, checkRun, show, type CheckedRecord } from './record-check.js';
 import {

@@ -5,7 +5,7 @@
  * URL is refused, so a URL never becomes a folder named after its scheme.
  */
 import { TidemarkTypeError } from '../errors.js';
-import { isPostgresUrl } from './connect-store.js';
+import { isPostgresUrl } from './store-url.js';
 
 export type SinkAddress =
   | { kind: 'memory' }

@@ -48,7 +48,7 @@ describe('import graph', () => {
   it('finds static imports and skips type-only and dynamic ones (checked on a file written here)', () => {
     const found = importsOf(join(SRC, 'storage/connect-store.ts'));
     // connect-store imports async-store statically and both drivers only dynamically.
-    expect(found.files.map((f) => f.slice(SRC.length))).toEqual(['storage/async-store.ts']);
+    expect(found.files.map((f) => f.slice(SRC.length))).toEqual(['storage/async-store.ts', 'storage/store-url.ts']);
     expect(found.packages).toEqual([]);
     expect(packagesReachable(join(SRC, 'storage/sqlite-store.ts')).has('better-sqlite3')).toBe(true);
     expect(packagesReachable(join(SRC, 'server/serve.ts')).has('fastify')).toBe(true);
