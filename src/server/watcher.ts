@@ -44,6 +44,7 @@ export class StoreWatcher {
   private polling = false;
   private again = false;
   private current: Promise<void> | null = null;
+  private readonly unlisten: Promise<(() => Promise<void>) | null> | null;
   private readonly onError: (e: unknown) => void;
 
   constructor(store: AsyncStore, hub: LiveHub, options: { intervalMs: number; onError: (e: unknown) => void }) {
@@ -52,6 +53,11 @@ export class StoreWatcher {
     this.onError = options.onError;
     this.timer = setInterval(() => void this.poll(), options.intervalMs);
     this.timer.unref();
+    // A store that says when something changed (another server stored a window) is looked at at once.
+    this.unlisten = this.store.onChange?.(() => this.nudge()).catch((e: unknown) => {
+      this.onError(e);
+      return null;
+    }) ?? null;
   }
 
   /** Something was stored just now: look at once (coalesced into one poll per turn of the event loop). */
@@ -150,6 +156,8 @@ export class StoreWatcher {
     this.stopped = true;
     if (this.timer !== null) clearInterval(this.timer);
     this.timer = null;
+    const stop = await this.unlisten;
+    await stop?.();
     await this.current;
   }
 }

@@ -39,6 +39,12 @@ export interface AsyncStore {
   deleteRun(runId: string): Promise<boolean>;
   prune(before: number): Promise<string[]>;
   close(): Promise<void>;
+  /**
+   * Where the store can tell (PostgreSQL), calls `listener` soon after anything is stored by any process, so a
+   * server's viewers need not wait for its next poll; resolves to a function that stops it. Polling stays the
+   * guarantee: a listener may miss a change while its connection is re-established.
+   */
+  onChange?(listener: () => void): Promise<() => Promise<void>>;
 }
 
 /**

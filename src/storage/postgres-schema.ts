@@ -122,15 +122,20 @@ CREATE UNIQUE INDEX warnings_key ON warnings (run_id, time, code, md5(message));
 -- training loop lets I/O through. doc: a JSON array of checked records (src/storage/record-check.ts);
 -- numbers that JSON cannot hold are the strings "NaN", "Infinity" and "-Infinity".
 -- Errors: TM404 (message: the run id) when a record names a run the store does not have; TM409
--- (message: the record's position) when a window's step is another stored window's.
+-- (message: the record's position) when a window's step is another stored window's. Notifies the channel
+-- tidemark_store (payload: the schema) when anything was stored.
 CREATE FUNCTION append_records(doc json, now_ms double precision) RETURNS void LANGUAGE plpgsql AS $fn$
 DECLARE
-  r json;
+  r jsonb;
+  pts jsonb;
   kind text;
   rid text;
+  st double precision;
   n integer;
+  touched text[] := '{}';
 BEGIN
-  FOR r IN SELECT value FROM json_array_elements(doc) LOOP
+  -- jsonb: parsed once here; a json value would be parsed again by every ->> on it (per point, per window).
+  FOR r IN SELECT value FROM jsonb_array_elements(doc::jsonb) LOOP
     kind := r->>'type';
     IF kind = 'run' THEN
       rid := r->>'id';
@@ -145,37 +150,43 @@ BEGIN
       ELSE
         INSERT INTO layers (run_id, position, name, class_name, params, variables)
           SELECT rid, (l->>'position')::integer, l->>'name', l->>'class_name', (l->>'params')::float8, l->>'variables'
-          FROM json_array_elements(r->'layers') AS l;
+          FROM jsonb_array_elements(r->'layers') AS l;
       END IF;
+      touched := touched || rid;
     ELSE
       rid := r->>'run';
       IF NOT EXISTS (SELECT 1 FROM runs WHERE id = rid) THEN
         RAISE EXCEPTION USING ERRCODE = 'TM404', MESSAGE = rid;
       END IF;
       IF kind = 'window' THEN
-        IF EXISTS (SELECT 1 FROM windows WHERE run_id = rid AND step = (r->>'step')::float8 AND idx <> (r->>'index')::float8) THEN
+        st := (r->>'step')::float8;
+        IF EXISTS (SELECT 1 FROM windows WHERE run_id = rid AND step = st AND idx <> (r->>'index')::float8) THEN
           RAISE EXCEPTION USING ERRCODE = 'TM409', MESSAGE = r->>'i';
         END IF;
         INSERT INTO windows (run_id, idx, first_step, step, epoch, batches, batch_size, batches_per_epoch, pass_batches, snr_floor, time, noise)
-          VALUES (rid, (r->>'index')::float8, (r->>'first_step')::float8, (r->>'step')::float8, (r->>'epoch')::float8,
+          VALUES (rid, (r->>'index')::float8, (r->>'first_step')::float8, st, (r->>'epoch')::float8,
             (r->>'batches')::float8, (r->>'batch_size')::float8, (r->>'batches_per_epoch')::float8, r->>'pass_batches',
             (r->>'snr_floor')::float8, (r->>'time')::float8, r->>'noise')
           ON CONFLICT (run_id, idx) DO NOTHING;
         GET DIAGNOSTICS n = ROW_COUNT;
         -- A window already stored (a resend) adds nothing.
         IF n > 0 THEN
-          -- In the record's key order: series are read back in creation order, as the first window had them.
+          pts := r->'points';
+          -- Only the series this run does not have yet, in the record's key order: series are read back in
+          -- creation order, as the first window had them.
           INSERT INTO series (run_id, scope, layer, variable, metric)
-            SELECT rid, p->>0, p->>1, p->>2, p->>3 FROM json_array_elements(r->'points') WITH ORDINALITY AS t (p, k)
+            SELECT rid, p->>0, p->>1, p->>2, p->>3 FROM jsonb_array_elements(pts) WITH ORDINALITY AS t (p, k)
+            WHERE NOT EXISTS (SELECT 1 FROM series s WHERE s.run_id = rid AND s.metric = p->>3 AND s.scope = p->>0
+              AND coalesce(s.layer, '') = coalesce(p->>1, '') AND coalesce(s.variable, '') = coalesce(p->>2, ''))
             ORDER BY k ON CONFLICT DO NOTHING;
           INSERT INTO points (series_id, step, value)
-            SELECT s.id, (r->>'step')::float8, (p->>4)::float8
-            FROM json_array_elements(r->'points') AS p
+            SELECT s.id, st, (p->>4)::float8
+            FROM jsonb_array_elements(pts) AS p
             JOIN series s ON s.run_id = rid AND s.metric = p->>3 AND s.scope = p->>0
               AND coalesce(s.layer, '') = coalesce(p->>1, '') AND coalesce(s.variable, '') = coalesce(p->>2, '')
             WHERE p->>4 IS NOT NULL;
           UPDATE runs SET window_count = window_count + 1,
-            last_step = greatest(coalesce(last_step, (r->>'step')::float8), (r->>'step')::float8),
+            last_step = greatest(coalesce(last_step, st), st),
             heartbeat_at = greatest(heartbeat_at, now_ms),
             status = CASE WHEN status = 'interrupted' AND ended_at IS NULL THEN 'running' ELSE status END
             WHERE id = rid;
@@ -191,8 +202,15 @@ BEGIN
       ELSIF kind = 'end' THEN
         UPDATE runs SET status = r->>'status', ended_at = (r->>'time')::float8, end_step = (r->>'step')::float8 WHERE id = rid;
       END IF;
+      IF NOT rid = ANY (touched) THEN
+        touched := touched || rid;
+      END IF;
     END IF;
   END LOOP;
+  -- Servers watching this store read what is new at once instead of at their next poll (sent at commit).
+  IF array_length(touched, 1) > 0 THEN
+    PERFORM pg_notify('tidemark_store', current_schema());
+  END IF;
 END
 $fn$;
 

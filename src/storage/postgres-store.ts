@@ -156,7 +156,11 @@ export class PostgresStore implements AsyncStore {
   private pool: pg.Pool | null;
   private readonly opts: Required<PostgresStoreOptions>;
 
+  /** The full URL, password included: kept for the listening connection, never shown. */
+  private readonly url: string;
+
   constructor(url: string, opts: Required<PostgresStoreOptions>) {
+    this.url = url;
     this.path = redact(url);
     this.opts = opts;
     this.readonly = opts.readonly;
@@ -370,6 +374,50 @@ export class PostgresStore implements AsyncStore {
     await c.query('DELETE FROM points WHERE series_id IN (SELECT id FROM series WHERE run_id = $1)', [runId]);
     // Layers, series, windows, markers, warnings and batches go with the run (ON DELETE CASCADE).
     return ((await c.query('DELETE FROM runs WHERE id = $1', [runId])).rowCount ?? 0) > 0;
+  }
+
+  async onChange(listener: () => void): Promise<() => Promise<void>> {
+    this.conn('onChange');
+    let client: pg.Client | null = null;
+    let stopped = false;
+    let retry: NodeJS.Timeout | null = null;
+    const connect = async (): Promise<void> => {
+      // A client of its own: LISTEN holds its connection for as long as it listens.
+      const c = new pg.Client({ connectionString: this.url, options: `-c search_path=${this.opts.schema}`, connectionTimeoutMillis: this.opts.connectTimeoutMs });
+      const again = (): void => {
+        if (stopped || retry !== null) return;
+        client = null;
+        c.end().catch(() => undefined);
+        retry = setTimeout(() => {
+          retry = null;
+          // A change made while the connection was down is found by the next poll; say so once it is back.
+          void connect().then(listener, () => undefined);
+        }, 1000);
+        retry.unref();
+      };
+      c.on('error', again);
+      c.on('end', again);
+      c.on('notification', (n) => {
+        if (n.channel === 'tidemark_store' && n.payload === this.opts.schema) listener();
+      });
+      try {
+        await c.connect();
+        await c.query('LISTEN tidemark_store');
+      } catch (e) {
+        again();
+        throw e;
+      }
+      if (stopped) await c.end();
+      else client = c;
+    };
+    await connect();
+    return async () => {
+      stopped = true;
+      if (retry !== null) clearTimeout(retry);
+      const c = client;
+      client = null;
+      await c?.end().catch(() => undefined);
+    };
   }
 
   async close(): Promise<void> {

@@ -435,7 +435,8 @@ for (const each of BACKENDS) {
         const list = (await viewer.next((m) => m.type === 'runs')) as Extract<LiveMessage, { type: 'runs' }>;
         expect(list.runs.map((r) => r.id)).toEqual(['first-0001']);
         await seed(store, 'second-0002', 2);
-        const added = (await viewer.next((m) => m.type === 'runs' && (m as typeof list).runs[0]!.id === 'second-0002')) as typeof list;
+        // The run may first be seen between its run record and its windows (0 windows), then as it changes.
+        const added = (await viewer.next((m) => m.type === 'runs' && (m as typeof list).runs[0]!.id === 'second-0002' && (m as typeof list).runs[0]!.windows === 2)) as typeof list;
         expect(added.runs[0]).toMatchObject({ status: 'running', windows: 2 });
         await store.append([{ type: 'end', run: 'second-0002', status: 'finished', step: 16, time: Date.now() }]);
         const ended = (await viewer.next((m) => m.type === 'runs' && (m as typeof list).runs[0]!.status === 'finished')) as typeof list;

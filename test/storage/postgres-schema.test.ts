@@ -112,6 +112,28 @@ describe.skipIf(postgresMissing !== null)(`PostgreSQL schema${postgresMissing ==
     expect((e as Error).message).not.toContain('s3cret-pw');
   });
 
+  it('tells a listener of the same schema, and only of it, when another connection stores something', async () => {
+    const writer = await openPostgresStore(cluster!.url, { schema: 'notify_a' });
+    const other = await openPostgresStore(cluster!.url, { schema: 'notify_b' });
+    const reader = await openPostgresStore(cluster!.url, { schema: 'notify_a', readonly: true });
+    let heard = 0;
+    const stop = await reader.onChange(() => heard++);
+    try {
+      await other.beginRun(fakeRun({ id: 'elsewhere' }));
+      const run = fakeRun({ id: 'heard-run' });
+      await writer.beginRun(run);
+      await writer.append(fakeWindows(run, 2).map((window) => ({ type: 'window' as const, window })));
+      // Notifications arrive at commit, asynchronously: wait for them (a bound, not a measured duration).
+      for (let t = Date.now(); heard < 2 && Date.now() - t < 10_000; ) await new Promise((r) => setTimeout(r, 20));
+      await new Promise((r) => setTimeout(r, 200));
+      // One for beginRun, one for the append; none for the other schema's run.
+      expect(heard).toBe(2);
+    } finally {
+      await stop();
+      await Promise.all([writer.close(), other.close(), reader.close()]);
+    }
+  });
+
   it('refuses a schema name that is not a plain lower-case identifier', async () => {
     for (const schema of ['Tidemark', 'a-b', '1abc', 'x; DROP TABLE runs', '']) {
       await expect(openPostgresStore(cluster!.url, { schema })).rejects.toMatchObject({ code: 'TIDEMARK_ERR_OPTION_INVALID' });
