@@ -16,12 +16,21 @@ import { JsonlSink } from '../../src/storage/jsonl-sink.js';
 import { RemoteSink } from '../../src/storage/remote-sink.js';
 import { decodeJson, decodeRecord, encodeJson, type Sink } from '../../src/storage/sink.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
+import { connectStore } from '../../src/storage/connect-store.js';
+import { postgresMissing, startPostgres, type PgCluster } from '../helpers/postgres.js';
 import { freePort, startServerChild } from '../helpers/server-child.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
 
 const dir = mkdtempSync(join(tmpdir(), 'tidemark-remote-'));
-beforeAll(useCpu);
-afterAll(() => rmSync(dir, { recursive: true, force: true }));
+let cluster: PgCluster | null = null;
+beforeAll(async () => {
+  await useCpu();
+  if (postgresMissing === null) cluster = await startPostgres();
+}, 60_000);
+afterAll(() => {
+  cluster?.stop();
+  rmSync(dir, { recursive: true, force: true });
+});
 
 describe('serve: a port in monitor()', () => {
   it('serves the run while it trains: the API lists it and a viewer gets its windows live', async () => {
@@ -99,10 +108,11 @@ class TeeSink implements Sink {
 
 
 
-describe('a server killed with SIGKILL and restarted 5 times during a remote run', () => {
+for (const backend of ['sqlite', 'postgres'] as const) {
+describe.skipIf(backend === 'postgres' && postgresMissing !== null)(`a server killed with SIGKILL and restarted 5 times during a remote run (${backend} store${backend === 'postgres' && postgresMissing !== null ? `; skipped: ${postgresMissing}` : ''})`, () => {
   it('ends with every window stored exactly once, equal to the local JSON Lines copy', async () => {
-    const db = join(dir, 'killed.db');
-    const copy = join(dir, 'killed-copy.jsonl');
+    const db = backend === 'sqlite' ? join(dir, 'killed.db') : `${cluster!.urlOf('postgres')}?schema=killed`;
+    const copy = join(dir, `killed-copy-${backend}.jsonl`);
     // Every restart reuses the port, as a user restarting `tidemark serve` would.
     const probePort = await freePort();
     let child = await startServerChild(db, { port: probePort });
@@ -142,14 +152,15 @@ describe('a server killed with SIGKILL and restarted 5 times during a remote run
 
     const local = readFileSync(copy, 'utf8').trim().split('\n').map(decodeRecord);
     const localWindows = local.filter((r) => r.type === 'window').map((r) => (r as { window: WindowRecord }).window);
-    const store = openStore(db, { readonly: true });
-    const stored = store.windows(mon.runId);
+    const store = await connectStore(db, { readonly: true });
+    const stored = await store.windows(mon.runId);
     expect(localWindows.length).toBeGreaterThan(50);
     expect(stored).toEqual(localWindows);
     expect(new Set(stored.map((w) => w.index)).size).toBe(stored.length);
-    expect(store.runs()[0]).toMatchObject({ id: mon.runId, status: 'finished', windows: localWindows.length });
-    console.log(`SIGKILL test: ${kills} kills, ${stored.length} windows stored once each, ${reports.length} connection losses reported`);
-    store.close();
+    expect((await store.runs())[0]).toMatchObject({ id: mon.runId, status: 'finished', windows: localWindows.length });
+    console.log(`SIGKILL test (${backend}): ${kills} kills, ${stored.length} windows stored once each, ${reports.length} connection losses reported`);
+    await store.close();
     tf.dispose([xs, ys]);
   }, 120_000);
 });
+}
