@@ -125,30 +125,26 @@ export class StoreWatcher {
           s.markerCursor = null;
           continue;
         }
+        // Markers are read before windows: a marker stored with its window (one batch, one commit) then never
+        // reaches a viewer ahead of that window, even where each read is its own snapshot (PostgreSQL).
+        const { markers, cursor } = await this.store.markersSince(r.id, s.markerCursor ?? 0);
         const behind = this.hub.earliestStep(r.id);
         const from = s.lastStep === null || behind === null ? null : Math.min(s.lastStep, behind);
-        if (r.last_step !== null && (from === null || r.last_step > from)) {
+        if (markers.length > 0 || (r.last_step !== null && (from === null || r.last_step > from))) {
           const windows = await this.store.windows(r.id, from === null ? {} : { after: from });
           for (const w of windows) this.hub.publishWindow(w);
-          s.lastStep = Math.max(s.lastStep ?? -Infinity, windows.at(-1)?.step ?? r.last_step);
+          const last = windows.at(-1)?.step ?? r.last_step;
+          if (last !== null) s.lastStep = Math.max(s.lastStep ?? -Infinity, last);
         }
         if (this.stopped) return;
-        await this.publishMarkers(r.id, s);
+        // A run followed since the last poll starts from its first marker, since some may have been stored after
+        // a viewer's backfill; the hub sends each viewer only those it does not have.
+        s.markerCursor = cursor;
+        for (const m of markers) this.hub.publishMarker(m);
       }
     } catch (e) {
       if (!this.stopped) this.onError(e);
     }
-  }
-
-  /**
-   * Offers the run's markers stored since the last poll (a marker may come without a window: `tidemark analyze
-   * --write`, the end of a run). A run followed since the last poll starts from the first marker, since some
-   * may have been stored after a viewer's backfill; the hub sends each viewer only those it does not have.
-   */
-  private async publishMarkers(runId: string, s: Seen): Promise<void> {
-    const { markers, cursor } = await this.store.markersSince(runId, s.markerCursor ?? 0);
-    s.markerCursor = cursor;
-    for (const m of markers) this.hub.publishMarker(m);
   }
 
   /** Stops polling; resolves once a poll in progress has finished, so the store can be closed after it. */
