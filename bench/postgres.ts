@@ -29,11 +29,12 @@ import { parseArgs } from 'node:util';
 import pg from 'pg';
 import copyStreams from 'pg-copy-streams';
 import WebSocket from 'ws';
+import { AckingWriter } from './acking-writer.js';
 import { windowPoints } from '../src/protocol/points.js';
 import type { RunInfo, SinkRecord, WindowRecord } from '../src/protocol/records.js';
 import { openPostgresStore, type PostgresStore } from '../src/storage/postgres-store.js';
 import { checkWindow } from '../src/storage/record-check.js';
-import { encodeJson, encodeRecord } from '../src/storage/sink.js';
+import { encodeJson } from '../src/storage/sink.js';
 import { postgresMissing, startPostgres, type PgCluster } from '../test/helpers/postgres.js';
 import { freePort, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
 import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
@@ -306,47 +307,6 @@ async function ingestTable(cluster: PgCluster, s: Settings): Promise<void> {
 // ---------------------------------------------------------------------------------------------
 // Table 2: live delay, two servers on one database
 
-/** A bare /ingest client that notes when each batch's ack arrives (as in bench/server.ts). */
-class AckingWriter {
-  readonly ackAt = new Map<number, number>();
-  readonly sentAt = new Map<number, number>();
-  readonly errors: string[] = [];
-  private waiters = new Map<number, () => void>();
-
-  private constructor(
-    private readonly ws: WebSocket,
-    private readonly runId: string,
-  ) {
-    ws.on('message', (data) => {
-      const at = performance.now();
-      const m = JSON.parse(String(data)) as { type: string; seq?: number; code?: string };
-      if (m.type === 'ack' && m.seq !== undefined) {
-        this.ackAt.set(m.seq, at);
-        this.waiters.get(m.seq)?.();
-        this.waiters.delete(m.seq);
-      } else this.errors.push(`${m.code ?? m.type}`);
-    });
-  }
-
-  static async open(url: string, run: RunInfo): Promise<AckingWriter> {
-    const ws = new WebSocket(`${url}/ingest`);
-    await Promise.race([once(ws, 'open'), once(ws, 'error').then(([e]) => Promise.reject(e as Error))]);
-    const w = new AckingWriter(ws, run.id);
-    const acked = new Promise<void>((r) => w.waiters.set(0, r));
-    w.send(0, [{ type: 'run', run }]);
-    await acked;
-    return w;
-  }
-
-  send(seq: number, records: SinkRecord[]): void {
-    this.sentAt.set(seq, performance.now());
-    this.ws.send(`{"v":1,"type":"batch","run":${JSON.stringify(this.runId)},"seq":${seq},"records":[${records.map(encodeRecord).join(',')}]}`);
-  }
-
-  close(): void {
-    this.ws.close();
-  }
-}
 
 /**
  * A viewer following one run on one server (test/server/multi-server.test.ts's Follower, without the

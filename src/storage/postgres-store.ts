@@ -11,6 +11,7 @@ import type { LayerInfo, Marker, RunInfo, SinkRecord, WindowRecord } from '../pr
 import { checkOptions, type OptionSchema } from '../option-check.js';
 import type { AsyncStore } from './async-store.js';
 import { isPostgresUrl } from './store-url.js';
+import { checkSchemaVersion } from './schema-version.js';
 import { migratePg, PG_APPLICATION, PG_SCHEMA_VERSION, readPgSchemaState } from './postgres-schema.js';
 import { checkBatch, checkRecords, checkRun, show, type CheckedRecord } from './record-check.js';
 import {
@@ -195,20 +196,7 @@ export class PostgresStore implements AsyncStore {
           `${where}: the schema holds ${state.tables} tables of another program, not a tidemark store. It was left untouched; choose another schema.`,
         );
       }
-      if (state.version > PG_SCHEMA_VERSION) {
-        throw new TidemarkError(
-          'TIDEMARK_ERR_STORE_SCHEMA',
-          `${where}: its schema version is ${state.version}, newer than ${PG_SCHEMA_VERSION}, the newest this tidemark knows. It was left untouched; upgrade tidemark to read it.`,
-        );
-      }
-      if (readonly && state.version < PG_SCHEMA_VERSION) {
-        throw new TidemarkError(
-          state.version === 0 ? 'TIDEMARK_ERR_STORE_OPEN' : 'TIDEMARK_ERR_STORE_SCHEMA',
-          state.version === 0
-            ? `${where}: it holds no tidemark store yet. Write a run to it first.`
-            : `${where}: its schema version ${state.version} needs an upgrade to ${PG_SCHEMA_VERSION}, which a read-only open cannot do. Open it once writable.`,
-        );
-      }
+      checkSchemaVersion(where, state.version, PG_SCHEMA_VERSION, readonly, 'it holds no tidemark store yet.');
       if (!readonly) {
         if (state.version < PG_SCHEMA_VERSION) await migratePg(client, schema);
         await client.query("UPDATE runs SET status = 'interrupted' WHERE status = 'running' AND heartbeat_at < $1", [this.cutoff()]);

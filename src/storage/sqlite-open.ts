@@ -10,6 +10,7 @@ import Database from 'better-sqlite3';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError, type ErrorCode } from '../errors.js';
 import { show } from './record-check.js';
 import { APPLICATION_ID, migrate, readSchemaState, SCHEMA_VERSION } from './schema.js';
+import { checkSchemaVersion } from './schema-version.js';
 import { prepareStatements, type Statements } from './sqlite-statements.js';
 
 // ---------------------------------------------------------------------------------------------
@@ -116,20 +117,7 @@ function openFile(path: string, readonly: boolean, busyTimeoutMs: number): Datab
         `${where}: it is a SQLite database of another program (application_id ${state.applicationId}, ${state.objects} schema objects), not a tidemark store. It was left untouched; use another file name.`,
       );
     }
-    if (state.version > SCHEMA_VERSION) {
-      throw new TidemarkError(
-        'TIDEMARK_ERR_STORE_SCHEMA',
-        `${where}: its schema version is ${state.version}, newer than ${SCHEMA_VERSION}, the newest this tidemark knows. It was left untouched; upgrade tidemark to read it.`,
-      );
-    }
-    if (readonly && state.version < SCHEMA_VERSION) {
-      throw new TidemarkError(
-        state.version === 0 ? 'TIDEMARK_ERR_STORE_OPEN' : 'TIDEMARK_ERR_STORE_SCHEMA',
-        state.version === 0
-          ? `${where}: it is an empty file, not a tidemark store yet. Write a run to it first.`
-          : `${where}: its schema version ${state.version} needs an upgrade to ${SCHEMA_VERSION}, which a read-only open cannot do. Open it once writable.`,
-      );
-    }
+    checkSchemaVersion(where, state.version, SCHEMA_VERSION, readonly, 'it is an empty file, not a tidemark store yet.');
     if (!readonly) {
       if (!memory && db.pragma('journal_mode', { simple: true }) !== 'wal') db.pragma('journal_mode = WAL');
       // NORMAL in WAL mode: a commit survives a process crash; only a power loss can undo the last ones.
