@@ -20,12 +20,12 @@
  *     viewer receiving the window; target p99 ≤ 100 ms. The servers poll the store every 250 ms (their
  *     default; `tidemark serve` has no flag for it), and only an ingest on the same server nudges a poll.
  */
+import { quickFlag } from './quick-flag.js';
 import { once } from 'node:events';
 import { readFileSync } from 'node:fs';
 import { createRequire } from 'node:module';
 import { cpus } from 'node:os';
 import { finished } from 'node:stream/promises';
-import { parseArgs } from 'node:util';
 import pg from 'pg';
 import copyStreams from 'pg-copy-streams';
 import WebSocket from 'ws';
@@ -54,12 +54,8 @@ interface Settings {
 }
 
 function readSettings(): Settings | null {
-  const { values } = parseArgs({ options: { quick: { type: 'boolean', default: false }, help: { type: 'boolean', short: 'h' } } });
-  if (values.help) {
-    console.log(USAGE);
-    return null;
-  }
-  const q = values.quick === true;
+  const q = quickFlag(USAGE);
+  if (q === null) return null;
   return { quick: q, ingestWindows: q ? 50 : 100, rounds: q ? 2 : 3, liveSeconds: q ? 3 : 8 };
 }
 

@@ -16,10 +16,10 @@
  *     with 50 viewers.
  * Every file lives in a temporary directory under os.tmpdir() and is deleted at the end.
  */
+import { quickFlag } from './quick-flag.js';
 import { mkdtempSync, rmSync } from 'node:fs';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
-import { parseArgs } from 'node:util';
 import WebSocket from 'ws';
 import { AckingWriter } from './acking-writer.js';
 import type { RunInfo, SinkRecord, WindowRecord } from '../src/protocol/records.js';
@@ -47,12 +47,8 @@ interface Settings {
 }
 
 function readSettings(): Settings | null {
-  const { values } = parseArgs({ options: { quick: { type: 'boolean', default: false }, help: { type: 'boolean', short: 'h' } } });
-  if (values.help) {
-    console.log(USAGE);
-    return null;
-  }
-  const q = values.quick === true;
+  const q = quickFlag(USAGE);
+  if (q === null) return null;
   return { quick: q, ingestWindows: q ? 500 : 2000, rounds: q ? 2 : 3, latencySeconds: q ? 5 : 15, memorySeconds: q ? 10 : 30 };
 }
 

@@ -15,11 +15,11 @@
  *  5. Opening a store of 10,000,000 points and listing its runs.
  * Every file lives in a temporary directory under os.tmpdir() and is deleted at the end.
  */
+import { quickFlag } from './quick-flag.js';
 import { mkdtempSync, readFileSync, rmSync, statSync } from 'node:fs';
 import { createRequire } from 'node:module';
 import { tmpdir } from 'node:os';
 import { join } from 'node:path';
-import { parseArgs } from 'node:util';
 import Database from 'better-sqlite3';
 import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
 import { openStore } from '../src/storage/sqlite-store.js';
@@ -49,12 +49,8 @@ interface Settings {
 }
 
 function readSettings(): Settings | null {
-  const { values } = parseArgs({ options: { quick: { type: 'boolean', default: false }, help: { type: 'boolean', short: 'h' } } });
-  if (values.help) {
-    console.log(USAGE);
-    return null;
-  }
-  const q = values.quick === true;
+  const q = quickFlag(USAGE);
+  if (q === null) return null;
   return {
     quick: q,
     layoutSeries: 100,
