@@ -39,6 +39,8 @@ const PROBE_BINS = 30;
 const NEAR_FLOOR_DB = 3;
 /** Said wherever the demo prints advice. */
 const ADVICE_CAUTION = 'an estimate from minibatch statistics; confirm on held-out data before acting on it';
+/** The advice's reason with the caution once: a stop verdict's reason already carries it. */
+const withCaution = (reason: string): string => (/held-out/.test(reason) ? reason : `${reason} (${ADVICE_CAUTION})`);
 const USAGE = 'usage: tsx examples/gearbox-demo.ts [--epochs N] [--seed N] [--lr X] [--out FILE] [--port N] [--exit] [--tables]';
 
 function fail(message: string): never {
@@ -443,7 +445,7 @@ mon.onWindow((w) => {
   const advice = mon.advice();
   const adviceKey = advice === null ? null : `${advice.verdict}. ${advice.reason.replace(/[0-9.]+/g, '#')}`;
   if (advice !== null && (args.tables || adviceKey !== adviceShown)) {
-    lines.push(`   advice: ${advice.verdict}. ${advice.reason} (${ADVICE_CAUTION})`);
+    lines.push(`   advice: ${advice.verdict}. ${withCaution(advice.reason)}`);
     adviceShown = adviceKey;
   }
   // The full tables read better with a blank line between windows; the one-liners without.
@@ -566,7 +568,7 @@ summary.push(
     ? `Read it back with: npx tidemark summary ${args.out}`
     : `Read it back with: npx tidemark runs --db ${args.out}   and   npx tidemark show ${mon.runId.slice(0, 8)} --db ${args.out}`,
   '',
-  ...(finalAdvice === null ? [] : [`Last advice: ${finalAdvice.verdict}. ${finalAdvice.reason} (${ADVICE_CAUTION})`]),
+  ...(finalAdvice === null ? [] : [`Last advice: ${finalAdvice.verdict}. ${withCaution(finalAdvice.reason)}`]),
   'Caution: these numbers are statistical estimates from minibatches, not guarantees about the model;' +
     ' confirm any decision to stop training on held-out data.',
   `The information values are estimates too: binned ones move with the bin count (${PROBE_BINS} per unit here)` +
