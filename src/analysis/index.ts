@@ -5,6 +5,7 @@ export * from './gradient-stats.js';
 export * from './fixed-weight-noise.js';
 export * from './batch-size-advice.js';
 export * from './power-law.js';
+export * from './group-bands.js';
 export { studentTCdf, regularizedBeta } from './student-t.js';
 export * from './travel-exponent.js';
 export * from './lttb.js';
