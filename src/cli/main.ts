@@ -12,6 +12,7 @@ import { exportRun, importJsonl } from '../storage/export.js';
 import { resendSpill } from '../storage/resend.js';
 import type { AsyncStore } from '../storage/async-store.js';
 import { connectStore, isPostgresUrl } from '../storage/connect-store.js';
+import { groupReport, renderGroup } from './group.js';
 import type { RunDetail, RunRow } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
 import { ADVICE_DEFAULTS, ADVICE_RULES, zeroGradients } from '../analysis/stop-advice.js';
@@ -549,6 +550,22 @@ export function buildProgram(io: Io): Command {
       });
       await running.close();
       io.out('tidemark serve: stopped\n');
+    });
+
+  program
+    .command('group')
+    .description('the runs of a group together: when each layer began to diffuse across runs, the spread of the gradient SNR, the advice each reached')
+    .argument('<name>', 'the group (monitor option group)')
+    .option('--json', 'machine-readable output')
+    .action(async (name: string, o: { json?: boolean }) => {
+      await withStore(db(), true, async (s) => {
+        const report = await groupReport(s, name);
+        if (report === null) {
+          throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}; 'tidemark runs' lists the runs with their groups.`);
+        }
+        if (o.json) io.out(`${JSON.stringify({ ...report, caution: CAUTION }, null, 2)}\n`);
+        else io.out(`${renderGroup(report)}\n`);
+      });
     });
 
   program

@@ -1,0 +1,105 @@
+/**
+ * `tidemark group`: five runs of one group with known transition steps (written here), read back together.
+ * The median and the quartile bands are checked against simple-statistics on the same numbers.
+ */
+import { median as ssMedian } from 'simple-statistics';
+import { describe, expect, it } from 'vitest';
+import { valuesOnLogSteps } from '../../src/analysis/group-bands.js';
+import { groupReport, renderGroup } from '../../src/cli/group.js';
+import { main, EXIT } from '../../src/cli/main.js';
+import type { Marker, RunInfo, SinkRecord } from '../../src/protocol/records.js';
+import { asAsyncStore } from '../../src/storage/async-store.js';
+import { openStore } from '../../src/storage/sqlite-store.js';
+import { mkdtempSync, rmSync } from 'node:fs';
+import { tmpdir } from 'node:os';
+import { join } from 'node:path';
+import { fakeRun, fakeWindows } from '../helpers/window-records.js';
+
+const NETWORK_STEPS = [96, 120, 80, 144, 104];
+const DENSE1_STEPS = [40, 64, 48, null, 56];
+
+function seedGroup(path: string, group: string, renameLayers = false): RunInfo[] {
+  const store = openStore(path);
+  const runs: RunInfo[] = [];
+  try {
+    for (let k = 0; k < 5; k++) {
+      let run = fakeRun({ id: `${group}-run-${k}`, name: `${group} seed ${k}`, group, started_at: 1_700_000_000_000 + k * 1000 });
+      if (renameLayers && k === 4) run = { ...run, layers: run.layers.map((l, i) => ({ ...l, name: `other_${i}` })) };
+      runs.push(run);
+      store.beginRun(run);
+      const ws = fakeWindows(run, 20, 10 + k);
+      const markers: Marker[] = [{ run: run.id, layer: null, kind: 'diffusion-start', step: NETWORK_STEPS[k]!, detected_step: NETWORK_STEPS[k]! + 16, confidence: 0.8, details: {} }];
+      const first = run.layers[0]!.name;
+      if (DENSE1_STEPS[k] !== null) markers.push({ run: run.id, layer: first, kind: 'diffusion-start', step: DENSE1_STEPS[k]!, detected_step: DENSE1_STEPS[k]! + 8, confidence: 0.7, details: {} });
+      // An offline re-analysis's marker is another question: it must not count.
+      markers.push({ run: run.id, layer: null, kind: 'diffusion-start', step: 8, detected_step: 8, confidence: 0.5, details: { source: 'offline' } });
+      if (k === 2) markers.push({ run: run.id, layer: null, kind: 'advice', step: 152, detected_step: 152, confidence: 0.6, details: { verdict: 'stop' } });
+      store.append([...ws.map((window): SinkRecord => ({ type: 'window', window })), ...markers.map((marker): SinkRecord => ({ type: 'marker', marker }))]);
+    }
+  } finally {
+    store.close();
+  }
+  return runs;
+}
+
+describe('tidemark group', () => {
+  const dir = mkdtempSync(join(tmpdir(), 'tidemark-group-'));
+  const db = join(dir, 'group.db');
+  seedGroup(db, 'depth3');
+  seedGroup(db, 'mixed', true);
+
+  it("gives each layer's transition per run, the median (as simple-statistics) and a bootstrap interval", async () => {
+    const store = asAsyncStore(openStore(db, { readonly: true }));
+    try {
+      const r = (await groupReport(store, 'depth3'))!;
+      expect(r.runs.map((x) => x.id)).toEqual([0, 1, 2, 3, 4].map((k) => `depth3-run-${k}`));
+      expect(r.byPosition).toBe(false);
+      const network = r.layers.find((l) => l.position === null)!;
+      expect(network.transitions).toEqual(NETWORK_STEPS);
+      expect(network.transition!.median).toBe(ssMedian(NETWORK_STEPS));
+      expect(network.transition!.low).toBeGreaterThanOrEqual(80);
+      expect(network.transition!.high).toBeLessThanOrEqual(144);
+      const dense1 = r.layers.find((l) => l.position === 0)!;
+      expect(dense1.transitions).toEqual(DENSE1_STEPS);
+      expect(dense1.transition).toMatchObject({ median: ssMedian([40, 64, 48, 56]), n: 4 });
+      expect(r.stops).toEqual([null, null, 152, null, null]);
+      // Bands: at every grid step inside all five runs, the median of the five runs' values there (each read
+      // back and interpolated on log step) as simple-statistics computes it.
+      const onGrid = await Promise.all(r.runs.map(async (run) => valuesOnLogSteps(await store.series(run.id, 'grad_snr_db'), r.grid)));
+      const full = r.grid.map((_, g) => g).filter((g) => onGrid.every((v) => Number.isFinite(v[g])));
+      expect(full.length).toBeGreaterThan(2);
+      for (const g of full) {
+        expect(network.snrDb[g]!.n).toBe(5);
+        expect(network.snrDb[g]!.median).toBeCloseTo(ssMedian(onGrid.map((v) => v[g]!)), 10);
+      }
+      expect(renderGroup(r)).toContain('median 104 [');
+    } finally {
+      await store.close();
+    }
+  });
+
+  it('compares layers by position, and says so, when runs name them differently', async () => {
+    const store = asAsyncStore(openStore(db, { readonly: true }));
+    try {
+      const r = (await groupReport(store, 'mixed'))!;
+      expect(r.byPosition).toBe(true);
+      expect(r.layers.find((l) => l.position === 0)!.transitions).toEqual(DENSE1_STEPS);
+      expect(renderGroup(r)).toContain('compared by position');
+      expect(await groupReport(store, 'no-such-group')).toBeNull();
+    } finally {
+      await store.close();
+    }
+  });
+
+  it('prints the report from the command line, and exits 3 for an empty group', async () => {
+    let out = '';
+    let err = '';
+    const io = { out: (s: string) => void (out += s), err: (s: string) => void (err += s) };
+    expect(await main(['group', 'depth3', '--db', db], io)).toBe(EXIT.ok);
+    expect(out).toContain('group depth3: 5 runs');
+    expect(out).toContain('held-out data');
+    expect(await main(['group', 'nothing', '--db', db], io)).toBe(EXIT.notFound);
+    expect(err).toContain('No run is in group "nothing"');
+    rmSync(dir, { recursive: true, force: true });
+  });
+});
