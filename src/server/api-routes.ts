@@ -4,7 +4,9 @@
  */
 import type { FastifyPluginAsync } from 'fastify';
 import { closestName } from '../option-check.js';
+import { TidemarkError } from '../errors.js';
 import { exportRun, type ExportFormat } from '../storage/export.js';
+import { groupReport } from '../storage/group-report.js';
 import type { RunFilter, SeriesKey, WindowQuery } from '../storage/store.js';
 import type { ServerContext } from './context.js';
 import { metricsText } from './metrics.js';
@@ -42,6 +44,20 @@ export const apiRoutes: FastifyPluginAsync<ApiRoutesOptions> = async (app, { ctx
   const { store } = ctx;
   const idParams = { type: 'object', properties: { id: { type: 'string', minLength: 1, maxLength: 200 } }, required: ['id'] } as const;
   const queryOf = (props: Record<string, unknown>) => ({ type: 'object', properties: { token: { type: 'string' }, ...props }, additionalProperties: false });
+
+  // Groups of runs (issue 15): the names with their run counts, and one group read together.
+  app.get('/api/groups', { schema: { querystring: queryOf({}) } }, async () => {
+    const counts = new Map<string, number>();
+    for (const r of await store.runs({ limit: 100_000 })) if (r.group !== null) counts.set(r.group, (counts.get(r.group) ?? 0) + 1);
+    return [...counts].sort(([a], [b]) => a.localeCompare(b)).map(([group, runs]) => ({ group, runs }));
+  });
+  const nameParams = { type: 'object', properties: { name: { type: 'string', minLength: 1, maxLength: 1000 } }, required: ['name'] } as const;
+  app.get('/api/groups/:name', { schema: { params: nameParams, querystring: queryOf({}) } }, async (req) => {
+    const name = (req.params as { name: string }).name;
+    const report = await groupReport(store, name);
+    if (report === null) throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}.`);
+    return report;
+  });
 
   app.get(
     '/api/runs',

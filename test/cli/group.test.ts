@@ -5,7 +5,8 @@
 import { median as ssMedian } from 'simple-statistics';
 import { describe, expect, it } from 'vitest';
 import { valuesOnLogSteps } from '../../src/analysis/group-bands.js';
-import { groupReport, renderGroup } from '../../src/cli/group.js';
+import { renderGroup } from '../../src/cli/group.js';
+import { groupReport } from '../../src/storage/group-report.js';
 import { main, EXIT } from '../../src/cli/main.js';
 import type { Marker, RunInfo, SinkRecord } from '../../src/protocol/records.js';
 import { asAsyncStore } from '../../src/storage/async-store.js';

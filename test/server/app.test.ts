@@ -130,6 +130,29 @@ for (const each of BACKENDS) {
         expect(bad.statusCode).toBe(400);
       });
 
+      it('lists groups and reads one group together (issue 15)', async () => {
+        const { server, store } = await serve();
+        for (const [k, id] of ['g-0001', 'g-0002', 'g-0003'].entries()) {
+          const run = fakeRun({ id, name: id, group: 'sweep-a', started_at: 1_700_000_000_000 + k });
+          await store.beginRun(run);
+          await store.append([
+            ...fakeWindows(run, 6).map((window): SinkRecord => ({ type: 'window', window })),
+            { type: 'marker', marker: { run: id, layer: null, kind: 'diffusion-start', step: 24 + 8 * k, detected_step: 40, confidence: 0.8, details: {} } },
+          ]);
+        }
+        await seed(store, 'lone-0001', 2);
+        const groups = await server.app.inject('/api/groups');
+        expect(groups.json()).toEqual([{ group: 'sweep-a', runs: 3 }]);
+        const one = decodeJson((await server.app.inject('/api/groups/sweep-a')).body) as { runs: { id: string }[]; layers: { position: number | null; transitions: number[]; transition: { median: number } }[] };
+        expect(one.runs.map((r) => r.id)).toEqual(['g-0001', 'g-0002', 'g-0003']);
+        const network = one.layers.find((l) => l.position === null)!;
+        expect(network.transitions).toEqual([24, 32, 40]);
+        expect(network.transition.median).toBe(32);
+        const none = await server.app.inject('/api/groups/nobody');
+        expect(none.statusCode).toBe(404);
+        expect(none.json()).toMatchObject({ error: { code: 'TIDEMARK_ERR_RUN_NOT_FOUND' } });
+      });
+
       it('exports a run as CSV and JSON Lines, byte for byte what exportRun gives', async () => {
         const { server, store } = await serve();
         const { run } = await seed(store);
