@@ -1,7 +1,7 @@
 /**
  * `tidemark group NAME`: the group report (storage/group-report.ts) as text for the terminal.
  */
-import type { GroupReport } from '../storage/group-report.js';
+import type { GroupReport, SweepReport } from '../storage/group-report.js';
 
 const fmt = (x: number): string => (Number.isFinite(x) ? (Math.abs(x) >= 100 ? x.toFixed(0) : x.toFixed(1)) : '—');
 
@@ -22,5 +22,23 @@ export function renderGroup(r: GroupReport): string {
     out.push(`  ${l.layer.padEnd(16)} ${l.snrDb.map((b) => (b.n === 0 ? '—' : `${fmt(b.median)} [${fmt(b.q1)}, ${fmt(b.q3)}]`)).join('  ')}`);
   }
   out.push('', 'Each run is one draw: the interval says how much the transition moves between seeds, not where it must fall. Estimates from minibatch statistics; confirm any decision on held-out data.');
+  return out.join('\n');
+}
+
+/** A sweep as text: the fitted law, both intervals of its exponent, and the points with their residuals. */
+export function renderSweep(w: SweepReport): string {
+  const y = w.outcome === 'stop' ? 'steps to the first stop advice' : "steps to the network's diffusion";
+  const out: string[] = [`Sweep over ${w.tag}: ${y}, ${w.points.length} run${w.points.length === 1 ? '' : 's'}`];
+  if (w.fit === null) out.push('  too few runs with a positive tag and the outcome for a fit (3 needed)');
+  else {
+    out.push(
+      `  ${y} ≈ ${fmt(Math.exp(w.fit.intercept))} · ${w.tag}^${w.fit.slope.toFixed(3)}   (log-log least squares, R² ${w.fit.rSquared.toFixed(3)})`,
+      `  exponent 95 % interval: [${w.fit.ci95[0].toFixed(3)}, ${w.fit.ci95[1].toFixed(3)}] Student-t over ${w.fit.n} runs; ` +
+        (w.bootstrap === null ? 'no bootstrap' : `[${w.bootstrap.low.toFixed(3)}, ${w.bootstrap.high.toFixed(3)}] bootstrap`),
+    );
+    w.points.forEach((p, i) => out.push(`    ${p.run.slice(0, 8)}  ${w.tag}=${p.x}  step ${p.y}  residual ${w.residuals[i]!.toFixed(3)}`));
+  }
+  for (const l of w.left) out.push(`  left out: ${l.run.slice(0, 8)} (${l.why})`);
+  out.push('  Runs are few and seeds vary: read the interval, not only the exponent.');
   return out.join('\n');
 }

@@ -12,8 +12,8 @@ import { exportRun, importJsonl } from '../storage/export.js';
 import { resendSpill } from '../storage/resend.js';
 import type { AsyncStore } from '../storage/async-store.js';
 import { connectStore, isPostgresUrl } from '../storage/connect-store.js';
-import { groupReport } from '../storage/group-report.js';
-import { renderGroup } from './group.js';
+import { groupReport, sweepOf, SWEEP_OUTCOMES, type SweepOutcome } from '../storage/group-report.js';
+import { renderGroup, renderSweep } from './group.js';
 import type { RunDetail, RunRow } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
 import { ADVICE_DEFAULTS, ADVICE_RULES, zeroGradients } from '../analysis/stop-advice.js';
@@ -557,15 +557,18 @@ export function buildProgram(io: Io): Command {
     .command('group')
     .description('the runs of a group together: when each layer began to diffuse across runs, the spread of the gradient SNR, the advice each reached')
     .argument('<name>', 'the group (monitor option group)')
+    .option('--sweep <tag>', 'a numeric tag as x (depth, batch size, …): fit steps to the outcome as a power law of it')
+    .addOption(new Option('--outcome <outcome>', 'the sweep\'s y (default diffusion-start)').choices([...SWEEP_OUTCOMES]))
     .option('--json', 'machine-readable output')
-    .action(async (name: string, o: { json?: boolean }) => {
+    .action(async (name: string, o: { json?: boolean; sweep?: string; outcome?: SweepOutcome }) => {
       await withStore(db(), true, async (s) => {
         const report = await groupReport(s, name);
         if (report === null) {
           throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}; 'tidemark runs' lists the runs with their groups.`);
         }
-        if (o.json) io.out(`${JSON.stringify({ ...report, caution: CAUTION }, null, 2)}\n`);
-        else io.out(`${renderGroup(report)}\n`);
+        const sweep = o.sweep === undefined ? null : sweepOf(report, o.sweep, o.outcome ?? 'diffusion-start');
+        if (o.json) io.out(`${JSON.stringify({ ...report, sweep, caution: CAUTION }, null, 2)}\n`);
+        else io.out(`${renderGroup(report)}\n${sweep === null ? '' : `\n${renderSweep(sweep)}\n`}`);
       });
     });
 

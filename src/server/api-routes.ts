@@ -6,7 +6,7 @@ import type { FastifyPluginAsync } from 'fastify';
 import { closestName } from '../option-check.js';
 import { TidemarkError } from '../errors.js';
 import { exportRun, type ExportFormat } from '../storage/export.js';
-import { groupReport } from '../storage/group-report.js';
+import { groupReport, sweepOf, SWEEP_OUTCOMES, type SweepOutcome } from '../storage/group-report.js';
 import type { RunFilter, SeriesKey, WindowQuery } from '../storage/store.js';
 import type { ServerContext } from './context.js';
 import { metricsText } from './metrics.js';
@@ -52,12 +52,23 @@ export const apiRoutes: FastifyPluginAsync<ApiRoutesOptions> = async (app, { ctx
     return [...counts].sort(([a], [b]) => a.localeCompare(b)).map(([group, runs]) => ({ group, runs }));
   });
   const nameParams = { type: 'object', properties: { name: { type: 'string', minLength: 1, maxLength: 1000 } }, required: ['name'] } as const;
-  app.get('/api/groups/:name', { schema: { params: nameParams, querystring: queryOf({}) } }, async (req) => {
-    const name = (req.params as { name: string }).name;
-    const report = await groupReport(store, name);
-    if (report === null) throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}.`);
-    return report;
-  });
+  app.get(
+    '/api/groups/:name',
+    {
+      schema: {
+        params: nameParams,
+        querystring: queryOf({ sweep: { type: 'string', minLength: 1, maxLength: 200 }, outcome: { type: 'string', enum: [...SWEEP_OUTCOMES] } }),
+      },
+    },
+    async (req) => {
+      const name = (req.params as { name: string }).name;
+      const q = req.query as { sweep?: string; outcome?: SweepOutcome };
+      const report = await groupReport(store, name);
+      if (report === null) throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}.`);
+      // The same numbers as `tidemark group NAME --sweep TAG`.
+      return { ...report, sweep: q.sweep === undefined ? null : sweepOf(report, q.sweep, q.outcome ?? 'diffusion-start') };
+    },
+  );
 
   app.get(
     '/api/runs',

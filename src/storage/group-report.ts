@@ -5,7 +5,8 @@
  * of a log grid; and the stop advice each run reached. Runs whose layers have other names are compared by
  * position, and the report says so.
  */
-import { bandsAcrossRuns, bootstrapMedianInterval, logStepGrid, valuesOnLogSteps, type Band } from '../analysis/group-bands.js';
+import { bandsAcrossRuns, bootstrapMedianInterval, bootstrapPowerLawExponent, logStepGrid, valuesOnLogSteps, type Band } from '../analysis/group-bands.js';
+import { fitPowerLaw, type PowerLawFit } from '../analysis/power-law.js';
 import { toAsyncStore, type AnyStore } from './async-store.js';
 import type { RunRow } from './store.js';
 
@@ -23,7 +24,7 @@ export interface GroupLayerReport {
 
 export interface GroupReport {
   group: string;
-  runs: Pick<RunRow, 'id' | 'name' | 'status' | 'windows' | 'last_step'>[];
+  runs: Pick<RunRow, 'id' | 'name' | 'status' | 'windows' | 'last_step' | 'tags'>[];
   /** True when the runs' layer names differ, so layers were matched by position. */
   byPosition: boolean;
   grid: number[];
@@ -71,7 +72,7 @@ export async function groupReport(anyStore: AnyStore, group: string, options: { 
   });
   return {
     group,
-    runs: rows.map((r) => ({ id: r.id, name: r.name, status: r.status, windows: r.windows, last_step: r.last_step })),
+    runs: rows.map((r) => ({ id: r.id, name: r.name, status: r.status, windows: r.windows, last_step: r.last_step, tags: r.tags })),
     byPosition,
     grid,
     layers,
@@ -79,3 +80,53 @@ export async function groupReport(anyStore: AnyStore, group: string, options: { 
   };
 }
 
+
+/** What a sweep puts on its y axis, per run. */
+export type SweepOutcome = 'diffusion-start' | 'stop';
+export const SWEEP_OUTCOMES: readonly SweepOutcome[] = ['diffusion-start', 'stop'];
+
+export interface SweepReport {
+  /** The numeric tag on the x axis (depth, batch size, data fraction, …). */
+  tag: string;
+  outcome: SweepOutcome;
+  /** Runs with a numeric tag and the outcome reached; the others are listed in `left`. */
+  points: { run: string; x: number; y: number }[];
+  left: { run: string; why: string }[];
+  /** y = a·x^b by least squares on logs, with b's Student-t 95 % interval; null under 3 usable points. */
+  fit: PowerLawFit | null;
+  /** b's percentile-bootstrap 95 % interval over runs (pairs resampled); null when no fit. */
+  bootstrap: { low: number; high: number } | null;
+  /** ln y − (ln a + b·ln x) per point. */
+  residuals: number[];
+}
+
+/**
+ * A sweep over the group's runs: x from a numeric tag, y the step of the network's first diffusion-start
+ * (or of the first stop advice); a power law fitted on log-log axes with two intervals for its exponent.
+ */
+export function sweepOf(report: GroupReport, tag: string, outcome: SweepOutcome, options: { seed?: number } = {}): SweepReport {
+  const network = report.layers.find((l) => l.position === null)!;
+  const points: SweepReport['points'] = [];
+  const left: SweepReport['left'] = [];
+  report.runs.forEach((run, k) => {
+    const raw = run.tags[tag];
+    const x = raw === undefined || raw.trim() === '' ? Number.NaN : Number(raw);
+    const y = outcome === 'stop' ? report.stops[k] : network.transitions[k];
+    if (!(x > 0) || !Number.isFinite(x)) left.push({ run: run.id, why: raw === undefined ? `no tag ${tag}` : `tag ${tag}=${raw} is not a positive number` });
+    else if (y === null || y === undefined || !(y > 0)) left.push({ run: run.id, why: outcome === 'stop' ? 'no stop advice' : 'the network never began to diffuse' });
+    else points.push({ run: run.id, x, y });
+  });
+  const xs = points.map((p) => p.x);
+  const ys = points.map((p) => p.y);
+  const fit = fitPowerLaw(xs, ys);
+  const boot = fit === null ? null : bootstrapPowerLawExponent(xs, ys, { seed: options.seed ?? 1 });
+  return {
+    tag,
+    outcome,
+    points,
+    left,
+    fit,
+    bootstrap: boot === null ? null : { low: boot.low, high: boot.high },
+    residuals: fit === null ? [] : points.map((p) => Math.log(p.y) - (fit.intercept + fit.slope * Math.log(p.x))),
+  };
+}

@@ -2,11 +2,11 @@
  * `tidemark group`: five runs of one group with known transition steps (written here), read back together.
  * The median and the quartile bands are checked against simple-statistics on the same numbers.
  */
-import { median as ssMedian } from 'simple-statistics';
+import { linearRegression, median as ssMedian } from 'simple-statistics';
 import { describe, expect, it } from 'vitest';
 import { valuesOnLogSteps } from '../../src/analysis/group-bands.js';
-import { renderGroup } from '../../src/cli/group.js';
-import { groupReport } from '../../src/storage/group-report.js';
+import { renderGroup, renderSweep } from '../../src/cli/group.js';
+import { groupReport, sweepOf } from '../../src/storage/group-report.js';
 import { main, EXIT } from '../../src/cli/main.js';
 import type { Marker, RunInfo, SinkRecord } from '../../src/protocol/records.js';
 import { asAsyncStore } from '../../src/storage/async-store.js';
@@ -92,6 +92,43 @@ describe('tidemark group', () => {
     }
   });
 
+  it('fits a sweep over a numeric tag as a power law: the slope of simple-statistics on the logs, two intervals, residuals', async () => {
+    const path = join(dir, 'sweep.db');
+    const store = openStore(path);
+    // Depth 1–6; the network's diffusion began at 100·depth^0.5, times a fixed wobble (so residuals are not 0).
+    const wobble = [1.04, 0.97, 1.02, 0.95, 1.05, 0.99];
+    const ys = wobble.map((w, i) => Math.round(100 * Math.sqrt(i + 1) * w));
+    for (let d = 1; d <= 7; d++) {
+      const run = fakeRun({ id: `sweep-run-${d}`, name: `depth ${d}`, group: 'depth-sweep', tags: d === 7 ? {} : { depth: String(d) }, started_at: 1_700_000_000_000 + d });
+      store.beginRun(run);
+      const step = d === 7 ? 300 : ys[d - 1]!;
+      store.append([
+        ...fakeWindows(run, 4).map((window): SinkRecord => ({ type: 'window', window })),
+        { type: 'marker', marker: { run: run.id, layer: null, kind: 'diffusion-start', step, detected_step: step + 8, confidence: 0.8, details: {} } },
+      ]);
+    }
+    store.close();
+    const s = asAsyncStore(openStore(path, { readonly: true }));
+    try {
+      const w = sweepOf((await groupReport(s, 'depth-sweep'))!, 'depth', 'diffusion-start');
+      expect(w.points.map((p) => [p.x, p.y])).toEqual(ys.map((y, i) => [i + 1, y]));
+      expect(w.left).toEqual([{ run: 'sweep-run-7', why: 'no tag depth' }]);
+      const ref = linearRegression(w.points.map((p) => [Math.log(p.x), Math.log(p.y)]));
+      expect(w.fit!.slope).toBeCloseTo(ref.m, 12);
+      expect(w.fit!.intercept).toBeCloseTo(ref.b, 12);
+      expect(w.fit!.slope).toBeGreaterThan(0.4);
+      expect(w.fit!.slope).toBeLessThan(0.6);
+      expect(w.fit!.ci95[0]).toBeLessThan(w.fit!.slope);
+      expect(w.bootstrap!.low).toBeLessThanOrEqual(w.fit!.slope);
+      expect(w.bootstrap!.high).toBeGreaterThanOrEqual(w.fit!.slope);
+      w.residuals.forEach((r, i) => expect(r).toBeCloseTo(Math.log(ys[i]!) - (ref.b + ref.m * Math.log(i + 1)), 12));
+      expect(renderSweep(w)).toContain('exponent 95 % interval');
+      expect(sweepOf((await groupReport(s, 'depth-sweep'))!, 'depth', 'stop').fit).toBeNull();
+    } finally {
+      await s.close();
+    }
+  });
+
   it('prints the report from the command line, and exits 3 for an empty group', async () => {
     let out = '';
     let err = '';
@@ -101,6 +138,9 @@ describe('tidemark group', () => {
     expect(out).toContain('held-out data');
     expect(await main(['group', 'nothing', '--db', db], io)).toBe(EXIT.notFound);
     expect(err).toContain('No run is in group "nothing"');
+    out = '';
+    expect(await main(['group', 'depth-sweep', '--sweep', 'depth', '--db', join(dir, 'sweep.db')], io)).toBe(EXIT.ok);
+    expect(out).toMatch(/depth\^0\.\d{3}/);
     rmSync(dir, { recursive: true, force: true });
   });
 });

@@ -148,6 +148,10 @@ for (const each of BACKENDS) {
         const network = one.layers.find((l) => l.position === null)!;
         expect(network.transitions).toEqual([24, 32, 40]);
         expect(network.transition.median).toBe(32);
+        const swept = decodeJson((await server.app.inject('/api/groups/sweep-a?sweep=seed')).body) as { sweep: { points: unknown[]; left: { why: string }[] } };
+        // fakeRun tags seed=… only when asked: with no such tag every run is left out, each with the reason.
+        expect(swept.sweep.points.length + swept.sweep.left.length).toBe(3);
+        expect((await server.app.inject('/api/groups/sweep-a?outcome=best')).statusCode).toBe(400);
         const none = await server.app.inject('/api/groups/nobody');
         expect(none.statusCode).toBe(404);
         expect(none.json()).toMatchObject({ error: { code: 'TIDEMARK_ERR_RUN_NOT_FOUND' } });
