@@ -37,8 +37,8 @@ import { checkWindow } from '../src/storage/record-check.js';
 import { encodeJson } from '../src/storage/sink.js';
 import { postgresMissing, startPostgres, type PgCluster } from '../test/helpers/postgres.js';
 import { freePort, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
-import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
-import { median, printTable, progress } from './report.js';
+import { benchRun, benchWindows, LAYERS } from './bench-runs.js';
+import { fmtInt, fmtMs, fmtRatio, median, printTable, progress, quantile } from './report.js';
 import { xorshift32 } from './seeded-data.js';
 
 const USAGE = `usage: node --import tsx bench/postgres.ts [--quick]
@@ -62,7 +62,6 @@ function readSettings(): Settings | null {
 // ---------------------------------------------------------------------------------------------
 // Records: a model of 10 dense layers (kernel + bias), windows of 8 minibatches, as in bench/server.ts.
 
-const LAYERS = 10;
 const BATCH_SIZES = [1, 10, 50];
 const VIEWERS = 20;
 /** Table 2's loads on server A: writers × windows a second each, one window per batch (20 a second as in bench/server.ts). */
@@ -74,20 +73,11 @@ const LOADS: readonly [writers: number, perSecond: number][] = [
 /** The server's default poll interval (src/server/app.ts `pollMs`); `tidemark serve` has no flag for it. */
 const POLL_MS = 250;
 
-const benchRun = (id: string): RunInfo => fakeRun({ id, name: `bench ${id}`, group: 'bench', layers: LAYERS, started_at: Date.now() });
-const benchWindows = (run: RunInfo, count: number, seed: number): WindowRecord[] => fakeWindows(run, count, seed, false);
 
 // ---------------------------------------------------------------------------------------------
 // Helpers
 
-function quantile(sorted: readonly number[], q: number): number {
-  if (sorted.length === 0) return Number.NaN;
-  return sorted[Math.min(sorted.length - 1, Math.floor(q * sorted.length))]!;
-}
 
-const fmtInt = (x: number): string => Math.round(x).toLocaleString('en-US');
-const fmtMs = (x: number): string => (Number.isNaN(x) ? '–' : x < 10 ? x.toFixed(2) : x.toFixed(1));
-const fmtRatio = (x: number): string => x.toFixed(2);
 const fmtRange = (xs: readonly number[]): string => `${fmtRatio(Math.min(...xs))}–${fmtRatio(Math.max(...xs))}`;
 const sleep = (ms: number): Promise<void> => new Promise((r) => setTimeout(r, ms));
 

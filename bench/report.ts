@@ -22,3 +22,13 @@ export function median(xs: readonly number[]): number {
   const h = s.length >> 1;
   return s.length % 2 === 1 ? s[h]! : (s[h - 1]! + s[h]!) / 2;
 }
+
+/** The value at rank ⌊q·n⌋ of values sorted ascending (NaN for none): the latency benches' p50 and p99. */
+export function quantile(sorted: readonly number[], q: number): number {
+  if (sorted.length === 0) return Number.NaN;
+  return sorted[Math.min(sorted.length - 1, Math.floor(q * sorted.length))]!;
+}
+
+export const fmtInt = (x: number): string => Math.round(x).toLocaleString('en-US');
+export const fmtMs = (x: number): string => (Number.isNaN(x) ? '–' : x < 10 ? x.toFixed(2) : x.toFixed(1));
+export const fmtRatio = (x: number): string => x.toFixed(2);

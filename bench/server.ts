@@ -22,14 +22,14 @@ import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import WebSocket from 'ws';
 import { AckingWriter } from './acking-writer.js';
-import type { RunInfo, SinkRecord, WindowRecord } from '../src/protocol/records.js';
+import type { RunInfo, WindowRecord } from '../src/protocol/records.js';
 import { RemoteSink } from '../src/storage/remote-sink.js';
 import { encodeJson } from '../src/storage/sink.js';
 import { openStore } from '../src/storage/sqlite-store.js';
 import type { Store } from '../src/storage/store.js';
-import { median, printTable, progress } from './report.js';
+import { benchRun, benchWindows, LAYERS, windowRecords } from './bench-runs.js';
+import { fmtInt, fmtMs, fmtRatio, median, printTable, progress, quantile } from './report.js';
 import { windowPoints } from '../src/protocol/points.js';
-import { fakeRun, fakeWindows } from '../test/helpers/window-records.js';
 import { freePort, rssMb, startServerChild, type ServerChild } from '../test/helpers/server-child.js';
 
 const USAGE = `usage: node --import tsx bench/server.ts [--quick]
@@ -55,25 +55,14 @@ function readSettings(): Settings | null {
 // ---------------------------------------------------------------------------------------------
 // Records: a model of 10 dense layers (kernel + bias), windows of 8 minibatches (test/helpers/window-records.ts).
 
-const LAYERS = 10;
 
-const benchRun = (id: string): RunInfo => fakeRun({ id, name: `bench ${id}`, group: 'bench', layers: LAYERS, started_at: Date.now() });
-const benchWindows = (run: RunInfo, count: number, seed: number): WindowRecord[] => fakeWindows(run, count, seed, false);
 
-const windowRecords = (ws: readonly WindowRecord[]): SinkRecord[] => ws.map((window) => ({ type: 'window', window }));
 
 // ---------------------------------------------------------------------------------------------
 // Helpers
 
 
-function quantile(sorted: readonly number[], q: number): number {
-  if (sorted.length === 0) return Number.NaN;
-  return sorted[Math.min(sorted.length - 1, Math.floor(q * sorted.length))]!;
-}
 
-const fmtInt = (x: number): string => Math.round(x).toLocaleString('en-US');
-const fmtMs = (x: number): string => (Number.isNaN(x) ? '–' : x < 10 ? x.toFixed(2) : x.toFixed(1));
-const fmtRatio = (x: number): string => x.toFixed(2);
 const sleep = (ms: number): Promise<void> => new Promise((r) => setTimeout(r, ms));
 
 type Child = ServerChild;

@@ -23,7 +23,7 @@ import { join } from 'node:path';
 import Database from 'better-sqlite3';
 import type { LayerInfo, LayerStats, RunInfo, SinkRecord, VariableStats, WindowRecord } from '../src/protocol/records.js';
 import { openStore } from '../src/storage/sqlite-store.js';
-import { median, printTable, progress } from './report.js';
+import { fmtInt, median, printTable, progress } from './report.js';
 import { xorshift32 } from './seeded-data.js';
 
 const USAGE = `usage: tsx bench/store.ts [--quick]
@@ -81,7 +81,6 @@ function timeMedian(f: () => void, reps: number, warm = 2): number {
   return median(ts);
 }
 
-const fmtInt = (x: number): string => Math.round(x).toLocaleString('en-US');
 const fmtMs = (x: number): string => (x < 10 ? x.toFixed(2) : x.toFixed(1));
 const fmtRatio = (x: number): string => x.toFixed(2);
 
