@@ -422,6 +422,16 @@ export class PostgresStore implements AsyncStore {
     return this.transaction(doing, fn, false);
   }
 
+  /** One statement outside a transaction: one round trip, where a snapshot of several reads is not needed. */
+  private async statement<R extends pg.QueryResultRow>(doing: string, sql: string, params: unknown[]): Promise<R[]> {
+    const pool = this.conn(doing);
+    try {
+      return (await pool.query<R>(sql, params)).rows;
+    } catch (e) {
+      throw wrap('TIDEMARK_ERR_STORE_READ', `${doing}: could not read ${this.path}`, e);
+    }
+  }
+
   async runs(filter: RunFilter = {}): Promise<RunRow[]> {
     const f = checkFilter(filter);
     const params: unknown[] = [this.cutoff()];
@@ -436,7 +446,8 @@ export class PostgresStore implements AsyncStore {
     if (f.status !== undefined) where.push(`${STATUS_EXPR} = ${p(f.status)}`);
     const sql = `SELECT ${RUN_COLUMNS}, ${STATUS_EXPR} AS status FROM runs${where.length > 0 ? ` WHERE ${where.join(' AND ')}` : ''}
       ORDER BY created_at DESC, id LIMIT ${p(f.limit)}`;
-    return this.read('runs', async (c) => (await c.query<RunDbRow>(sql, params)).rows.map(toRunRow));
+    // A server's watcher asks this several times a second: one statement, no transaction around it.
+    return (await this.statement<RunDbRow>('runs', sql, params)).map(toRunRow);
   }
 
   async resolveRun(ref: string): Promise<RunDetail> {
@@ -504,14 +515,14 @@ export class PostgresStore implements AsyncStore {
             ? (
                 await c.query<{ step: number; value: number }>(
                   'SELECT step, value FROM points WHERE series_id = $1 AND step >= $2 AND step <= $3 ORDER BY step DESC LIMIT $4',
-                  [pick.id, pgFloat(q.from), pgFloat(q.to), q.last],
+                  [pick.id, q.from, q.to, q.last],
                 )
               ).rows.reverse()
             : (
                 await c.query<{ step: number; value: number }>('SELECT step, value FROM points WHERE series_id = $1 AND step >= $2 AND step <= $3 ORDER BY step', [
                   pick.id,
-                  pgFloat(q.from),
-                  pgFloat(q.to),
+                  q.from,
+                  q.to,
                 ])
               ).rows;
       } else {
@@ -521,8 +532,8 @@ export class PostgresStore implements AsyncStore {
         const all = (
           await c.query<{ step: number; value: number | null }>(`SELECT step, ${metric} AS value FROM windows WHERE run_id = $1 AND step >= $2 AND step <= $3 ORDER BY step`, [
             runId,
-            pgFloat(q.from),
-            pgFloat(q.to),
+            q.from,
+            q.to,
           ])
         ).rows;
         points = (q.last === undefined ? all : all.slice(-q.last)).map((r) => ({ step: r.step, value: r.value ?? Number.NaN }));
@@ -548,16 +559,16 @@ export class PostgresStore implements AsyncStore {
 
   async markersSince(runId: string, cursor: number): Promise<{ markers: Marker[]; cursor: number }> {
     checkCursor(cursor);
-    return this.read('markersSince', async (c) => {
-      await this.requireRun(c, runId);
-      const rows = (
-        await c.query<MarkerDbRow & { id: number }>(
-          'SELECT id, layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = $1 AND id > $2 ORDER BY id',
-          [runId, cursor],
-        )
-      ).rows;
-      return { markers: rows.map((m) => markerOf(runId, m)), cursor: rows.at(-1)?.id ?? cursor };
-    });
+    checkRunId(runId);
+    // Asked of every followed run at every poll: the markers in one statement; the run is looked up only when
+    // there are none, to tell an unknown run from one with nothing new.
+    const rows = await this.statement<MarkerDbRow & { id: number }>(
+      'markersSince',
+      'SELECT id, layer, kind, step, detected_step, confidence, details FROM markers WHERE run_id = $1 AND id > $2 ORDER BY id',
+      [runId, cursor],
+    );
+    if (rows.length === 0 && (await this.statement('markersSince', 'SELECT 1 FROM runs WHERE id = $1', [runId])).length === 0) throw runNotFound(runId);
+    return { markers: rows.map((m) => markerOf(runId, m)), cursor: rows.at(-1)?.id ?? cursor };
   }
 
   async warnings(runId: string): Promise<StoredWarning[]> {
@@ -572,8 +583,8 @@ export class PostgresStore implements AsyncStore {
     const q = checkWindowQuery(query);
     return this.read('windows', async (c) => {
       await this.requireRun(c, runId);
-      const lo = pgFloat(q.lo);
-      const hi = pgFloat(q.hi);
+      const lo = q.lo;
+      const hi = q.hi;
       let rows: WindowDbRow[];
       let partial = q.ranged;
       if (q.points !== null) {
@@ -651,9 +662,4 @@ function documentOf(records: readonly CheckedRecord[]): string {
       }
     }),
   );
-}
-
-/** pg sends numbers as text; ±Infinity and NaN are PostgreSQL's own spellings, which node-postgres writes for us. */
-function pgFloat(x: number): number | string {
-  return Number.isNaN(x) ? 'NaN' : x === Infinity ? 'Infinity' : x === -Infinity ? '-Infinity' : x;
 }
