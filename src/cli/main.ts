@@ -249,6 +249,8 @@ function parseTag(value: string, previous: Record<string, string> = {}): Record<
  * a directory, or a file that does not exist where one is needed (`create` false). Returns whether it exists.
  */
 function checkStorePath(db: string, create: boolean): boolean {
+  // A database server's address is not a path: whether it answers is for the store to say when opened.
+  if (isPostgresUrl(db)) return true;
   let isDir = false;
   let exists = false;
   try {
@@ -293,7 +295,7 @@ function writeOut(path: string, text: string): void {
 
 /** Opens the store at `db` (a SQLite file, or a postgres:// URL), runs `fn`, and closes it. */
 async function withStore<T>(db: string, readonly: boolean, fn: (store: AsyncStore) => Promise<T>): Promise<T> {
-  if (!isPostgresUrl(db)) checkStorePath(db, false);
+  checkStorePath(db, false);
   const store = await connectStore(db, { readonly });
   try {
     return await fn(store);
@@ -384,7 +386,7 @@ export function buildProgram(io: Io): Command {
     .argument('<file>', 'JSON Lines file')
     .option('--partial', 'import a file that is incomplete (a run without an end record, a cut last line); such runs read as interrupted')
     .action(async (file: string, o: { partial?: boolean }) => {
-      if (!isPostgresUrl(db())) checkStorePath(db(), true);
+      checkStorePath(db(), true);
       const store = await connectStore(db());
       try {
         const report = await importJsonl(store, file, { partial: o.partial === true });
@@ -523,7 +525,7 @@ export function buildProgram(io: Io): Command {
     .option('--ingest-rate <n>', 'batches a second one writer may send (default 200)', num('--ingest-rate', SERVER_RULES.ingestRate))
     .action(async (o: { port?: number; host?: string; token?: string; insecure?: boolean; cors?: string; ingestRate?: number }) => {
       const token = o.token ?? process.env.TIDEMARK_TOKEN ?? null;
-      const fresh = !isPostgresUrl(db()) && !checkStorePath(db(), true);
+      const fresh = !checkStorePath(db(), true);
       const running = await startServer({
         db: db(),
         ...(o.port !== undefined ? { port: o.port } : {}),
