@@ -40,10 +40,9 @@ export class StoreWatcher {
   private timer: NodeJS.Timeout | null = null;
   private pending = false;
   private stopped = false;
-  /** A poll in progress, and whether another was asked for meanwhile. */
-  private polling = false;
-  private again = false;
+  /** The poll in progress (null when none), and whether another was asked for meanwhile. */
   private current: Promise<void> | null = null;
+  private again = false;
   private readonly unlisten: Promise<(() => Promise<void>) | null> | null;
   private readonly onError: (e: unknown) => void;
 
@@ -80,22 +79,19 @@ export class StoreWatcher {
   /** One look at the store; a poll asked for while one runs happens right after it, never alongside. */
   async poll(): Promise<void> {
     if (this.stopped) return;
-    if (this.polling) {
+    if (this.current !== null) {
       this.again = true;
       return;
     }
-    this.polling = true;
-    const run = (async () => {
+    this.current = (async () => {
       do {
         this.again = false;
         await this.pollOnce();
       } while (this.again && !this.stopped);
     })();
-    this.current = run;
     try {
-      await run;
+      await this.current;
     } finally {
-      this.polling = false;
       this.current = null;
     }
   }
