@@ -132,7 +132,6 @@ DECLARE
   rid text;
   st double precision;
   n integer;
-  touched text[] := '{}';
 BEGIN
   -- jsonb: parsed once here; a json value would be parsed again by every ->> on it (per point, per window).
   FOR r IN SELECT value FROM jsonb_array_elements(doc::jsonb) LOOP
@@ -152,7 +151,6 @@ BEGIN
           SELECT rid, (l->>'position')::integer, l->>'name', l->>'class_name', (l->>'params')::float8, l->>'variables'
           FROM jsonb_array_elements(r->'layers') AS l;
       END IF;
-      touched := touched || rid;
     ELSE
       rid := r->>'run';
       IF NOT EXISTS (SELECT 1 FROM runs WHERE id = rid) THEN
@@ -202,13 +200,10 @@ BEGIN
       ELSIF kind = 'end' THEN
         UPDATE runs SET status = r->>'status', ended_at = (r->>'time')::float8, end_step = (r->>'step')::float8 WHERE id = rid;
       END IF;
-      IF NOT rid = ANY (touched) THEN
-        touched := touched || rid;
-      END IF;
     END IF;
   END LOOP;
   -- Servers watching this store read what is new at once instead of at their next poll (sent at commit).
-  IF array_length(touched, 1) > 0 THEN
+  IF json_array_length(doc) > 0 THEN
     PERFORM pg_notify('tidemark_store', current_schema());
   END IF;
 END
