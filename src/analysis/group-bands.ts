@@ -17,18 +17,22 @@ export interface SeriesPointLike {
 }
 
 /**
- * `points` steps spread evenly on a log scale from `first` to `last` (both > 0, both included), rounded to
- * whole steps and without repeats: training dynamics run on a log time scale, so a linear grid would spend
- * almost every point on the late windows.
+ * `points` values spread evenly on a log scale from `first` to `last` (both > 0, both included): training
+ * dynamics run on a log time scale, so a linear grid would spend almost every point on the late windows.
  */
-export function logStepGrid(first: number, last: number, points: number): number[] {
-  if (!(first > 0) || !(last >= first) || !Number.isInteger(points) || points < 1) return [];
-  if (points === 1 || last === first) return [Math.round(first)];
+export function logGrid(first: number, last: number, points: number): number[] {
+  if (!(first > 0) || !(last >= first) || !Number.isFinite(last) || !Number.isInteger(points) || points < 1) return [];
+  if (points === 1 || last === first) return [first];
   const a = Math.log(first);
   const b = Math.log(last);
+  return Array.from({ length: points }, (_, k) => (k === 0 ? first : k === points - 1 ? last : Math.exp(a + ((b - a) * k) / (points - 1))));
+}
+
+/** {@link logGrid} rounded to whole steps, without repeats. */
+export function logStepGrid(first: number, last: number, points: number): number[] {
   const out: number[] = [];
-  for (let k = 0; k < points; k++) {
-    const s = Math.round(Math.exp(a + ((b - a) * k) / (points - 1)));
+  for (const v of logGrid(first, last, points)) {
+    const s = Math.round(v);
     if (out.length === 0 || s > out[out.length - 1]!) out.push(s);
   }
   return out;

@@ -12,7 +12,7 @@ import { exportRun, importJsonl } from '../storage/export.js';
 import { resendSpill } from '../storage/resend.js';
 import type { AsyncStore } from '../storage/async-store.js';
 import { connectStore, isPostgresUrl } from '../storage/connect-store.js';
-import { groupReport, sweepOf, SWEEP_OUTCOMES, type SweepOutcome } from '../storage/group-report.js';
+import { GROUP_ALIGNS, groupReport, sweepOf, SWEEP_OUTCOMES, type GroupAlign, type SweepOutcome } from '../storage/group-report.js';
 import { renderGroup, renderSweep } from './group.js';
 import type { RunDetail, RunRow } from '../storage/store.js';
 import { displacementLevelDb, PHASE_DEFAULTS, PHASE_RULES } from '../analysis/phase-detector.js';
@@ -236,6 +236,12 @@ function renderAnalysis(run: RunDetail, r: AnalyzeResult, written: boolean): str
   out.push('', written ? '  Offline markers written (marked source: offline; the online ones stay).' : '  Nothing written (use --write to store these markers).');
   out.push('', CAUTION);
   return out.join('\n');
+}
+
+function parseLossTarget(value: string): number {
+  const x = Number(value);
+  if (value.trim() === '' || !Number.isFinite(x) || x <= 0) throw new TidemarkTypeError('TIDEMARK_ERR_OPTION_INVALID', `--loss-target takes a positive training loss, e.g. 0.3; received '${value}'.`);
+  return x;
 }
 
 function parseTag(value: string, previous: Record<string, string> = {}): Record<string, string> {
@@ -559,12 +565,14 @@ export function buildProgram(io: Io): Command {
     .command('group')
     .description('the runs of a group together: when each layer began to diffuse across runs, the spread of the gradient SNR, the advice each reached')
     .argument('<name>', 'the group (monitor option group)')
-    .option('--sweep <tag>', 'a numeric tag as x (depth, batch size, …): fit steps to the outcome as a power law of it')
-    .addOption(new Option('--outcome <outcome>', 'the sweep\'s y (default diffusion-start)').choices([...SWEEP_OUTCOMES]))
+    .option('--sweep <tag>', 'a numeric tag as x (depth, batch size, …): fit the outcome as a power law of it')
+    .addOption(new Option('--outcome <outcome>', "the sweep's y (default diffusion-start)").choices([...SWEEP_OUTCOMES]))
+    .addOption(new Option('--align <axis>', 'put the runs on steps or on epochs (default step)').choices([...GROUP_ALIGNS]))
+    .option('--loss-target <loss>', 'a training loss: where each run first reached it (the loss-target outcome)', parseLossTarget)
     .option('--json', 'machine-readable output')
-    .action(async (name: string, o: { json?: boolean; sweep?: string; outcome?: SweepOutcome }) => {
+    .action(async (name: string, o: { json?: boolean; sweep?: string; outcome?: SweepOutcome; align?: GroupAlign; lossTarget?: number }) => {
       await withStore(db(), true, async (s) => {
-        const report = await groupReport(s, name);
+        const report = await groupReport(s, name, { ...(o.align !== undefined && { align: o.align }), ...(o.lossTarget !== undefined && { lossTarget: o.lossTarget }) });
         if (report === null) {
           throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}; 'tidemark runs' lists the runs with their groups.`);
         }

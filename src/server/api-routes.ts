@@ -6,7 +6,7 @@ import type { FastifyPluginAsync } from 'fastify';
 import { closestName } from '../option-check.js';
 import { TidemarkError } from '../errors.js';
 import { exportRun, type ExportFormat } from '../storage/export.js';
-import { groupReport, sweepOf, SWEEP_OUTCOMES, type SweepOutcome } from '../storage/group-report.js';
+import { GROUP_ALIGNS, groupReport, sweepOf, SWEEP_OUTCOMES, type GroupAlign, type SweepOutcome } from '../storage/group-report.js';
 import type { RunFilter, SeriesKey, WindowQuery } from '../storage/store.js';
 import type { ServerContext } from './context.js';
 import { metricsText } from './metrics.js';
@@ -57,13 +57,18 @@ export const apiRoutes: FastifyPluginAsync<ApiRoutesOptions> = async (app, { ctx
     {
       schema: {
         params: nameParams,
-        querystring: queryOf({ sweep: { type: 'string', minLength: 1, maxLength: 200 }, outcome: { type: 'string', enum: [...SWEEP_OUTCOMES] } }),
+        querystring: queryOf({
+          sweep: { type: 'string', minLength: 1, maxLength: 200 },
+          outcome: { type: 'string', enum: [...SWEEP_OUTCOMES] },
+          align: { type: 'string', enum: [...GROUP_ALIGNS] },
+          lossTarget: { type: 'number', exclusiveMinimum: 0 },
+        }),
       },
     },
     async (req) => {
       const name = (req.params as { name: string }).name;
-      const q = req.query as { sweep?: string; outcome?: SweepOutcome };
-      const report = await groupReport(store, name);
+      const q = req.query as { sweep?: string; outcome?: SweepOutcome; align?: GroupAlign; lossTarget?: number };
+      const report = await groupReport(store, name, { ...(q.align !== undefined && { align: q.align }), ...(q.lossTarget !== undefined && { lossTarget: q.lossTarget }) });
       if (report === null) throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}.`);
       // The same numbers as `tidemark group NAME --sweep TAG`.
       return { ...report, sweep: q.sweep === undefined ? null : sweepOf(report, q.sweep, q.outcome ?? 'diffusion-start') };

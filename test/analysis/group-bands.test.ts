@@ -6,6 +6,7 @@ import {
   bandsAcrossRuns,
   bootstrapMedianInterval,
   bootstrapPowerLawExponent,
+  logGrid,
   logStepGrid,
   quantileSorted7,
   valuesOnLogSteps,
@@ -64,6 +65,11 @@ describe('runs on one grid of log steps', () => {
     expect(logStepGrid(1, 1000, 4)).toEqual([1, 10, 100, 1000]);
     expect(logStepGrid(1, 4, 8)).toEqual([1, 2, 3, 4]);
     expect(logStepGrid(0, 10, 3)).toEqual([]);
+    // Unrounded, for epochs: 1/80 to 2 epochs in 3 points is 1/80, sqrt(1/80 · 2) = 0.158…, 2 (hand-worked).
+    const g = logGrid(1 / 80, 2, 3);
+    expect(g[0]).toBe(1 / 80);
+    expect(g[1]).toBeCloseTo(Math.sqrt(2 / 80), 12);
+    expect(g[2]).toBe(2);
   });
 
   it('interpolates linearly in log step (hand-worked), never extrapolates', () => {

@@ -136,7 +136,8 @@ for (const each of BACKENDS) {
           const run = fakeRun({ id, name: id, group: 'sweep-a', started_at: 1_700_000_000_000 + k });
           await store.beginRun(run);
           await store.append([
-            ...fakeWindows(run, 6).map((window): SinkRecord => ({ type: 'window', window })),
+            // 12 windows: past the first epoch (80 minibatches), so the epoch length is known.
+            ...fakeWindows(run, 12).map((window): SinkRecord => ({ type: 'window', window })),
             { type: 'marker', marker: { run: id, layer: null, kind: 'diffusion-start', step: 24 + 8 * k, detected_step: 40, confidence: 0.8, details: {} } },
           ]);
         }
@@ -152,6 +153,19 @@ for (const each of BACKENDS) {
         // fakeRun tags seed=… only when asked: with no such tag every run is left out, each with the reason.
         expect(swept.sweep.points.length + swept.sweep.left.length).toBe(3);
         expect((await server.app.inject('/api/groups/sweep-a?outcome=best')).statusCode).toBe(400);
+        // By epoch (80 minibatches each in these runs), with a loss target: the same numbers as the CLI's.
+        const byEpoch = decodeJson((await server.app.inject('/api/groups/sweep-a?align=epoch&lossTarget=0.5&sweep=seed&outcome=loss-target')).body) as {
+          align: string;
+          layers: { position: number | null; transitions: number[] }[];
+          outcomes: { lossTarget: number | null }[];
+          sweep: { units: string };
+        };
+        expect(byEpoch.align).toBe('epoch');
+        expect(byEpoch.layers.find((l) => l.position === null)!.transitions).toEqual([24 / 80, 32 / 80, 40 / 80]);
+        expect(byEpoch.outcomes.every((o) => o.lossTarget !== null && o.lossTarget < 1)).toBe(true);
+        expect(byEpoch.sweep.units).toBe('epochs');
+        expect((await server.app.inject('/api/groups/sweep-a?align=week')).statusCode).toBe(400);
+        expect((await server.app.inject('/api/groups/sweep-a?lossTarget=-1')).statusCode).toBe(400);
         const none = await server.app.inject('/api/groups/nobody');
         expect(none.statusCode).toBe(404);
         expect(none.json()).toMatchObject({ error: { code: 'TIDEMARK_ERR_RUN_NOT_FOUND' } });
