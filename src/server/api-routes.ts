@@ -62,13 +62,18 @@ export const apiRoutes: FastifyPluginAsync<ApiRoutesOptions> = async (app, { ctx
           outcome: { type: 'string', enum: [...SWEEP_OUTCOMES] },
           align: { type: 'string', enum: [...GROUP_ALIGNS] },
           lossTarget: { type: 'number', exclusiveMinimum: 0 },
+          points: { type: 'integer', minimum: 2, maximum: 200 },
         }),
       },
     },
     async (req) => {
       const name = (req.params as { name: string }).name;
-      const q = req.query as { sweep?: string; outcome?: SweepOutcome; align?: GroupAlign; lossTarget?: number };
-      const report = await groupReport(store, name, { ...(q.align !== undefined && { align: q.align }), ...(q.lossTarget !== undefined && { lossTarget: q.lossTarget }) });
+      const q = req.query as { sweep?: string; outcome?: SweepOutcome; align?: GroupAlign; lossTarget?: number; points?: number };
+      const report = await groupReport(store, name, {
+        ...(q.align !== undefined && { align: q.align }),
+        ...(q.lossTarget !== undefined && { lossTarget: q.lossTarget }),
+        ...(q.points !== undefined && { gridPoints: q.points }),
+      });
       if (report === null) throw new TidemarkError('TIDEMARK_ERR_RUN_NOT_FOUND', `No run is in group ${JSON.stringify(name)}.`);
       // The same numbers as `tidemark group NAME --sweep TAG`.
       return { ...report, sweep: q.sweep === undefined ? null : sweepOf(report, q.sweep, q.outcome ?? 'diffusion-start') };

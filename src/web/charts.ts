@@ -3,18 +3,9 @@
  * here), and a small holder for the uPlot line charts that redraws in place while the series stay the same.
  */
 import uPlot from 'uplot';
+import { svg } from './dom.js';
 import { formatNumber, NETWORK_LABEL, stripTicks, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, PHASE_FILL, REFERENCE_GREY, layerStyle } from './palette.js';
-
-const SVG_NS = 'http://www.w3.org/2000/svg';
-
-function svg<K extends keyof SVGElementTagNameMap>(tag: K, attrs: Record<string, string | number> = {}, ...children: (Node | string)[]): SVGElementTagNameMap[K] {
-  const e = document.createElementNS(SVG_NS, tag);
-  for (const [k, v] of Object.entries(attrs)) e.setAttribute(k, String(v));
-  e.append(...children);
-  return e;
-}
-
 
 export const PHASE_WORDS: Record<PhaseName, string> = {
   drift: 'drift: the mean gradient outweighs its noise, weights move steadily',

@@ -6,6 +6,16 @@ export function el<K extends keyof HTMLElementTagNameMap>(tag: K, attrs: Record<
   return e;
 }
 
+const SVG_NS = 'http://www.w3.org/2000/svg';
+
+/** The same for SVG drawings. */
+export function svg<K extends keyof SVGElementTagNameMap>(tag: K, attrs: Record<string, string | number> = {}, ...children: (Node | string)[]): SVGElementTagNameMap[K] {
+  const e = document.createElementNS(SVG_NS, tag);
+  for (const [k, v] of Object.entries(attrs)) e.setAttribute(k, String(v));
+  e.append(...children);
+  return e;
+}
+
 /** What a view gives back to the router: how to take it down before the next one is drawn. */
 export interface View {
   dispose(): void;

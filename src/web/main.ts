@@ -1,13 +1,14 @@
 /**
  * The tidemark page: the runs list, one run's view, or 2 to 6 runs compared, fed by the HTTP API and the
  * `/live` WebSocket (docs/protocol.md). The view lives in the URL fragment (`#/run/<id>`,
- * `#/compare/<id>,<id>`) so a link reopens it; a token given as `?token=` travels with every request.
+ * `#/compare/<id>,<id>`, `#/group/<name>`) so a link reopens it; a token given as `?token=` travels with every request.
  */
 import 'uplot/dist/uPlot.min.css';
 import './style.css';
 import { hasToken, Live, whenUnauthorized } from './connection.js';
 import { compareView } from './compare-view.js';
 import { el, type View } from './dom.js';
+import { groupView } from './group-view.js';
 import { parseRoute } from './model.js';
 import { runView } from './run-view.js';
 import { runsView } from './runs-view.js';
@@ -24,7 +25,14 @@ function render(): void {
   current?.dispose();
   root.replaceChildren();
   const route = parseRoute(location.hash);
-  current = route.view === 'run' ? runView(root, live, route.id, route.range) : route.view === 'compare' ? compareView(root, live, route.ids, route.range) : runsView(root, live);
+  current =
+    route.view === 'run'
+      ? runView(root, live, route.id, route.range)
+      : route.view === 'compare'
+        ? compareView(root, live, route.ids, route.range)
+        : route.view === 'group'
+          ? groupView(root, live, route.group)
+          : runsView(root, live);
   // A new view: move focus to its heading, so keyboard and screen-reader users start at the top of it.
   const heading = root.querySelector('h2');
   if (heading !== null) {

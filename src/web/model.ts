@@ -8,6 +8,7 @@ import { displacementLevelDb } from '../analysis/phase-detector.js';
 import { decodeJson } from '../protocol/json-codec.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
+import { groupRouteOf, type GroupRoute } from './group-model.js';
 
 /** Shown next to every verdict: the numbers are estimates and a stop decision needs held-out data. */
 export const CAUTION =
@@ -39,7 +40,11 @@ export interface StepRange {
   max: number;
 }
 
-export type Route = { view: 'runs' } | { view: 'run'; id: string; range: StepRange | null } | { view: 'compare'; ids: string[]; range: StepRange | null };
+export type Route =
+  | { view: 'runs' }
+  | { view: 'run'; id: string; range: StepRange | null }
+  | { view: 'compare'; ids: string[]; range: StepRange | null }
+  | { view: 'group'; group: GroupRoute };
 
 /** The compare view overlays this many runs at least and at most. */
 export const COMPARE_MIN = 2;
@@ -73,7 +78,8 @@ function rangeOf(hash: string): StepRange | null {
 /**
  * `#/run/<id>` opens a run, `#/compare/<id>,<id>,…` overlays runs (ids escaped, so a comma in one stays
  * apart from the separators; repeats dropped); anything else is the list. `?steps=A-B` in the fragment is the
- * zoomed step range; a token there (`?token=T`) is read by tokenFrom.
+ * zoomed step range; a token there (`?token=T`) is read by tokenFrom. `#/group/<name>` reads a group
+ * (group-model.ts has its query).
  */
 export function parseRoute(hash: string): Route {
   const path = hash.replace(/^#/, '').split('?')[0] ?? '';
@@ -84,6 +90,8 @@ export function parseRoute(hash: string): Route {
     const ids = [...new Set(cmp[1].split(',').filter((p) => p.length > 0).map(decodePart))];
     return { view: 'compare', ids, range: rangeOf(hash) };
   }
+  const group = /^\/group\/(.+)$/.exec(path);
+  if (group?.[1] !== undefined) return { view: 'group', group: groupRouteOf(decodePart(group[1]), fragmentQuery(hash)) };
   return { view: 'runs' };
 }
 

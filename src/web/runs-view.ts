@@ -4,6 +4,7 @@
 import type { RunSummary } from '../protocol/messages.js';
 import { getJson, type Live } from './connection.js';
 import { el, scrollBox, type View } from './dom.js';
+import { groupHash } from './group-model.js';
 import { COMPARE_MAX, COMPARE_MIN, compareHash, mergeRuns, runHash, runMatches, type RunRowView } from './model.js';
 
 export function runsView(root: HTMLElement, live: Live): View {
@@ -56,7 +57,7 @@ export function runsView(root: HTMLElement, live: Live): View {
           { 'data-run': r.id },
           el('td', {}, box),
           el('td', {}, el('a', { href: `${location.pathname}${location.search}${runHash(r.id)}` }, r.name)),
-          el('td', {}, r.group ?? ''),
+          el('td', {}, r.group === null ? '' : el('a', { href: `${location.pathname}${location.search}${groupHash({ name: r.group, align: 'step', sweep: null, outcome: 'diffusion-start', lossTarget: null })}`, title: `The runs of group ${r.group} together` }, r.group)),
           el('td', {}, Object.entries(r.tags).map(([k, v]) => `${k}=${v}`).join(' ')),
           el('td', { class: `status ${r.status}` }, r.status),
           el('td', { class: 'num' }, r.last_step === null ? '–' : String(r.last_step)),

@@ -100,7 +100,7 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(await row.count()).toBe(1);
     if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'runs.png'), fullPage: true });
 
-    await row.locator('a').click();
+    await row.locator('a[href*="#/run/"]').click();
     expect(new URL(page.url()).hash).toBe(`#/run/${run.id}`);
     await page.locator('[data-testid="run-step"]', { hasText: '96' }).waitFor({ timeout: 10_000 });
     const canvas = '[data-testid="snr-chart"] canvas';
