@@ -165,11 +165,16 @@ export interface SchemaState {
 
 /** Reads the header fields and counts schema objects; the first read also proves it is a SQLite file. */
 export function readSchemaState(db: Database.Database): SchemaState {
-  return {
-    applicationId: db.pragma('application_id', { simple: true }) as number,
-    version: db.pragma('user_version', { simple: true }) as number,
-    objects: (db.prepare('SELECT count(*) AS n FROM sqlite_schema').get() as { n: number }).n,
-  };
+  // One read transaction: read apart, a second process creating the file could commit between the
+  // header and the schema count, and a half-seen tidemark store would look like another program's.
+  const read = db.transaction(
+    (): SchemaState => ({
+      applicationId: db.pragma('application_id', { simple: true }) as number,
+      version: db.pragma('user_version', { simple: true }) as number,
+      objects: (db.prepare('SELECT count(*) AS n FROM sqlite_schema').get() as { n: number }).n,
+    }),
+  );
+  return read.deferred();
 }
 
 /**

@@ -7,7 +7,7 @@ import { afterAll, afterEach, describe, expect, it } from 'vitest';
 import { lttb } from '../../src/analysis/lttb.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../../src/errors.js';
 import { markerKey, withoutVariables, type Marker, type RunInfo, type SinkRecord, type WindowRecord } from '../../src/protocol/records.js';
-import { APPLICATION_ID, migrate, MIGRATIONS, SCHEMA_VERSION } from '../../src/storage/schema.js';
+import { APPLICATION_ID, migrate, MIGRATIONS, readSchemaState, SCHEMA_VERSION } from '../../src/storage/schema.js';
 import { encodeRecord } from '../../src/storage/sink.js';
 import { openStore, type SqliteStore, type StoreOptions } from '../../src/storage/sqlite-store.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
@@ -551,6 +551,30 @@ describe('SQLite store: concurrency', () => {
       expect(s.resolveRun(id).status).toBe('finished');
     }
     expect(reads).toBeGreaterThan(0);
+  });
+
+  it('reads a new file\'s header and schema as one snapshot while another process creates it', () => {
+    // Two training processes opening a file that does not exist yet: the second must not see the
+    // first one's tables without its application_id (which read apart would call it another program's).
+    const path = freshPath();
+    const empty = raw(path);
+    empty.pragma('journal_mode = WAL');
+    const reader = raw(path);
+    const creator = raw(path);
+    const prepare = reader.prepare.bind(reader);
+    let created = false;
+    // The creator commits right between the reader's header pragmas and its schema count.
+    reader.prepare = ((sql: string) => {
+      if (!created && sql.includes('sqlite_schema')) {
+        created = true;
+        migrate(creator);
+      }
+      return prepare(sql);
+    }) as typeof reader.prepare;
+    const state = readSchemaState(reader);
+    expect(created).toBe(true);
+    expect(state).toEqual({ applicationId: 0, version: 0, objects: 0 });
+    expect(readSchemaState(reader)).toEqual({ applicationId: APPLICATION_ID, version: SCHEMA_VERSION, objects: expect.any(Number) });
   });
 
   it('keeps a committed window visible to a reader opened before it', () => {
