@@ -11,7 +11,17 @@ const [db, seed] = process.argv.slice(2) as [string, string];
 await tf.setBackend('cpu');
 const model = denseModel({ inputs: 6, hidden: [16, 8], outputs: 3, seed: Number(seed) });
 const { xs, ys } = blobTensors(512, 6, 3, Number(seed));
-const mon = await monitor(model, { store: db, window: 4, run: `crash-${seed}` });
+const mon = await monitor(model, {
+  store: db,
+  window: 4,
+  run: `crash-${seed}`,
+  // A store that cannot be opened would leave this run out of it: say why and end, so the test shows it.
+  onWarning: (w) => {
+    if (w.code !== 'TIDEMARK_ERR_SINK_OPEN') return;
+    process.stderr.write(`${w.code}: ${w.message}\n`);
+    process.exit(3);
+  },
+});
 mon.onWindow(() => {
   // The sink stores on its own schedule; flush so the parent may kill us right after a write too.
   void mon.flush().then(() => process.stdout.write('window\n'));
