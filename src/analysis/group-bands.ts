@@ -65,6 +65,31 @@ export function valuesOnLogSteps(series: readonly SeriesPointLike[], grid: reado
   return out;
 }
 
+/**
+ * For a series measured now and then (the noise scale: a few measurements per run), the median of the
+ * series' points in each grid step's stretch of the log axis, NaN where it has none. The stretches meet
+ * halfway in log step between neighbouring grid steps; the first and last reach as far out as their inner
+ * half. Interpolating between two measurements a thousand steps apart would invent the values between.
+ * Points must be in increasing step order with steps > 0; non-finite values are skipped.
+ */
+export function valuesInLogBins(series: readonly SeriesPointLike[], grid: readonly number[]): number[] {
+  const n = grid.length;
+  const logs = grid.map((s) => Math.log(s));
+  const edge = (k: number): number => (logs[k]! + logs[k + 1]!) / 2;
+  const halfFirst = n > 1 ? (logs[1]! - logs[0]!) / 2 : Number.POSITIVE_INFINITY;
+  const halfLast = n > 1 ? (logs[n - 1]! - logs[n - 2]!) / 2 : Number.POSITIVE_INFINITY;
+  const bins: number[][] = grid.map(() => []);
+  for (const p of series) {
+    if (!Number.isFinite(p.value) || !(p.step > 0)) continue;
+    const x = Math.log(p.step);
+    if (n === 0 || x < logs[0]! - halfFirst || x > logs[n - 1]! + halfLast) continue;
+    let k = 0;
+    while (k < n - 1 && x >= edge(k)) k++;
+    bins[k]!.push(p.value);
+  }
+  return bins.map((vs) => (vs.length === 0 ? Number.NaN : quantileSorted7(vs.sort((u, v) => u - v), 0.5)));
+}
+
 /** Hyndman & Fan definition 7 on values already sorted ascending; NaN for none. */
 export function quantileSorted7(sorted: readonly number[], p: number): number {
   const n = sorted.length;

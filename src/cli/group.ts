@@ -25,6 +25,7 @@ export function renderGroup(r: GroupReport): string {
     out.push(`  ${run.id.slice(0, 8)}  ${run.name}  ${facts.join(', ')}`);
   });
   if (r.byPosition) out.push('  the runs name their layers differently: layers are compared by position, named as in the first run');
+  if (r.leftOut.length > 0) out.push(`  the runs differ in depth: layers are compared by name, and ${r.leftOut.join(', ')} (not in every run) left out`);
   out.push('', `Diffusion began (first online diffusion-start marker, ${unit}), per run, and the median with its bootstrap 95 % interval:`);
   for (const l of r.layers) {
     const steps = l.transitions.map((t) => (t === null ? '—' : fmt(t))).join(' ');
@@ -37,6 +38,7 @@ export function renderGroup(r: GroupReport): string {
   };
   bandRows('Gradient SNR (dB)', (l) => l.snrDb);
   bandRows('Noise scale (examples)', (l) => l.noiseScale);
+  out.push('  (measured at fixed weights now and then: each run gives its measurements nearest each point on the log axis; — none there)');
   bandRows('Weight travel ‖w − w₀‖', (l) => l.weightTravel);
   out.push('', 'Each run is one draw: the interval says how much the transition moves between seeds, not where it must fall. Estimates from minibatch statistics; confirm any decision on held-out data.');
   return out.join('\n');

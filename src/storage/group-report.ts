@@ -1,11 +1,13 @@
 /**
  * The runs of a group read together (issue 15), for the command line and the API alike. Per layer and for
  * the network: the step each run's diffusion began (the first online diffusion-start marker), with the
- * median across runs and a bootstrap 95 % interval; the spread of the gradient SNR across runs at the steps
- * of a log grid; and the stop advice each run reached. Runs whose layers have other names are compared by
- * position, and the report says so.
+ * median across runs and a bootstrap 95 % interval; the spread of the gradient SNR, noise scale and weight
+ * travel across runs at the steps of a log grid; and what each run reached. Runs with as many layers as each
+ * other are compared by position (tfjs numbers automatic layer names per process, so equal networks often
+ * carry other names); runs of different depths only on the layers every one of them names alike, and the
+ * report lists the rest (matchLayers).
  */
-import { bandsAcrossRuns, bootstrapMedianInterval, bootstrapPowerLawExponent, logGrid, logStepGrid, valuesOnLogSteps, type Band } from '../analysis/group-bands.js';
+import { bandsAcrossRuns, bootstrapMedianInterval, bootstrapPowerLawExponent, logGrid, logStepGrid, valuesInLogBins, valuesOnLogSteps, type Band } from '../analysis/group-bands.js';
 import { fitPowerLaw, type PowerLawFit } from '../analysis/power-law.js';
 import type { Marker } from '../protocol/records.js';
 import { toAsyncStore, type AnyStore, type AsyncStore } from './async-store.js';
@@ -32,7 +34,11 @@ export interface GroupLayerReport {
   transitions: (number | null)[];
   /** Over the runs that reached it: median and its percentile-bootstrap 95 % interval (null under 2 runs). */
   transition: { median: number; low: number; high: number; n: number } | null;
-  /** Across runs at each point of `grid`: grad_snr_db, the noise scale (examples) and the weight travel ‖w − w₀‖. */
+  /**
+   * Across runs at each point of `grid`: grad_snr_db, the noise scale (examples) and the weight travel
+   * ‖w − w₀‖. The noise scale is measured only now and then, so each run gives the median of its
+   * measurements in the point's stretch of the log axis (none: not counted); the others are interpolated.
+   */
   snrDb: Band[];
   noiseScale: Band[];
   weightTravel: Band[];
@@ -60,8 +66,13 @@ export interface GroupReport {
    * Their transitions and outcomes read null.
    */
   unaligned: string[];
-  /** True when the runs' layer names differ, so layers were matched by position. */
+  /** True when the runs have as many layers as each other but name them differently: matched by position. */
   byPosition: boolean;
+  /**
+   * Layer names left out because not every run has a layer of that name (runs of different depths are
+   * matched by name only), in the order the runs first name them. Empty when every layer was matched.
+   */
+  leftOut: string[];
   /** Steps (or epochs) of a log grid from the first to the last the runs reached; bands are given here. */
   grid: number[];
   layers: GroupLayerReport[];
@@ -71,6 +82,8 @@ export interface GroupReport {
 }
 
 const NETWORK = '(network)';
+/** Measured now and then rather than every window: binned on the grid, not interpolated (valuesInLogBins). */
+const SPARSE = new Set(['noise_scale']);
 const VAL_ACCURACY = ['val_acc', 'val_accuracy'];
 
 /** Where a run's step falls on the group's axis: the step itself, or steps ÷ minibatches per epoch. */
@@ -104,8 +117,7 @@ export async function groupReport(anyStore: AnyStore, group: string, options: Gr
   const toAxis: (ToAxis | null)[] = rows.map((_, k) => (align === 'step' ? (s: number) => s : perEpoch[k] === null ? null : (s: number) => s / perEpoch[k]!));
   const at = (k: number, step: number | null): number | null => (step === null || toAxis[k] === null ? null : toAxis[k]!(step));
   const names = details.map((d) => d.layers.map((l) => l.name));
-  const width = Math.min(...names.map((n) => n.length));
-  const byPosition = names.some((n) => n.slice(0, width).join('\u0000') !== names[0]!.slice(0, width).join('\u0000'));
+  const { columns, byPosition, leftOut } = matchLayers(names);
   const ends = rows.map((r, k) => at(k, r.last_step ?? null)).filter((e): e is number => e !== null && e > 0);
   const starts = rows.map((_, k) => at(k, 1)).filter((e): e is number => e !== null);
   const last = Math.max(...ends, align === 'step' ? 1 : Math.min(...starts, 1));
@@ -116,26 +128,28 @@ export async function groupReport(anyStore: AnyStore, group: string, options: Gr
   const onGrid = async (metric: string, layer: string | null, k: number): Promise<number[]> => {
     if (toAxis[k] === null) return grid.map(() => Number.NaN);
     const points = (await store.series(rows[k]!.id, metric, { layer })).filter((p) => p.step > 0);
-    return valuesOnLogSteps(points.map((p) => ({ step: toAxis[k]!(p.step), value: p.value })), grid);
+    const moved = points.map((p) => ({ step: toAxis[k]!(p.step), value: p.value }));
+    return SPARSE.has(metric) ? valuesInLogBins(moved, grid) : valuesOnLogSteps(moved, grid);
   };
-  const bands = async (metric: string, position: number | null): Promise<Band[]> =>
-    bandsAcrossRuns(await Promise.all(rows.map((_, k) => onGrid(metric, position === null ? null : names[k]![position]!, k))));
+  const bands = async (metric: string, column: readonly string[] | null): Promise<Band[]> =>
+    bandsAcrossRuns(await Promise.all(rows.map((_, k) => onGrid(metric, column === null ? null : column[k]!, k))));
   const layers: GroupLayerReport[] = [];
-  for (const position of [null, ...Array.from({ length: width }, (_, i) => i)]) {
+  for (const column of [null, ...columns]) {
+    const position = column === null ? null : names[0]!.indexOf(column[0]!);
     const transitions = rows.map((_, k) => {
-      const name = position === null ? null : names[k]![position]!;
+      const name = column === null ? null : column[k]!;
       // Online markers only: an offline re-analysis with other settings is another question.
       const found = markers[k]!.filter((m) => m.kind === 'diffusion-start' && m.layer === name && m.details.source !== 'offline').sort((a, b) => a.step - b.step)[0];
       return found === undefined || !Number.isFinite(found.step) ? null : at(k, found.step);
     });
     layers.push({
-      layer: position === null ? NETWORK : names[0]![position]!,
+      layer: column === null ? NETWORK : column[0]!,
       position,
       transitions,
       transition: bootstrapMedianInterval(transitions.filter((t): t is number => t !== null), { seed: options.seed ?? 1 }),
-      snrDb: await bands('grad_snr_db', position),
-      noiseScale: await bands('noise_scale', position),
-      weightTravel: await bands('weight_travel', position),
+      snrDb: await bands('grad_snr_db', column),
+      noiseScale: await bands('noise_scale', column),
+      weightTravel: await bands('weight_travel', column),
     });
   }
   const outcomes = await Promise.all(rows.map((r, k) => runOutcome(store, r, markers[k]!, (s) => at(k, s), options.lossTarget)));
@@ -145,11 +159,28 @@ export async function groupReport(anyStore: AnyStore, group: string, options: Gr
     align,
     unaligned: rows.filter((_, k) => toAxis[k] === null).map((r) => r.id),
     byPosition,
+    leftOut,
     grid,
     layers,
     stops: outcomes.map((o) => o.stop),
     outcomes,
   };
+}
+
+/**
+ * Which layer of each run is compared with which: one column per compared layer, holding each run's
+ * layer name. Equal depths: by position. Different depths: a position means another thing in each (the
+ * output layer of a shallow net against a hidden layer of a deep one), so only names all runs share.
+ */
+export function matchLayers(names: readonly (readonly string[])[]): { columns: string[][]; byPosition: boolean; leftOut: string[] } {
+  const first = names[0] ?? [];
+  if (names.every((n) => n.length === first.length)) {
+    const byPosition = names.some((n) => n.some((name, i) => name !== first[i]));
+    return { columns: first.map((_, i) => names.map((n) => n[i]!)), byPosition, leftOut: [] };
+  }
+  const shared = first.filter((name) => names.every((n) => n.includes(name)));
+  const leftOut = [...new Set(names.flat())].filter((name) => !shared.includes(name));
+  return { columns: shared.map((name) => names.map(() => name)), byPosition: false, leftOut };
 }
 
 async function runOutcome(store: AsyncStore, row: RunRow, markers: readonly Marker[], at: (step: number | null) => number | null, lossTarget: number | undefined): Promise<GroupRunOutcome> {

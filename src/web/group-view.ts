@@ -117,6 +117,7 @@ export function groupView(root: HTMLElement, live: Live, route: GroupRoute): Vie
       bandTitles[0],
       snrBox,
       bandTitles[1],
+      el('p', { class: 'note' }, 'Measured at fixed weights now and then, not every window: each run gives its measurements nearest each point of the log axis; no point where no run measured it.'),
       noiseBox,
       bandTitles[2],
       travelBox,
@@ -154,6 +155,7 @@ export function groupView(root: HTMLElement, live: Live, route: GroupRoute): Vie
       `${r.runs.length} run${r.runs.length === 1 ? '' : 's'}, aligned by ${unit}: each run's windows are interpolated on log ${unit} onto ${r.grid.length} shared points, never beyond its own first and last window.`,
     ];
     if (r.byPosition) notes.push('The runs name their layers differently: layers are compared by position, named as in the first run.');
+    if (r.leftOut.length > 0) notes.push(`The runs differ in depth: layers are compared by name; ${r.leftOut.join(', ')} (not in every run) ${r.leftOut.length === 1 ? 'is' : 'are'} left out.`);
     if (r.unaligned.length > 0) notes.push(`${r.unaligned.length} run${r.unaligned.length === 1 ? ' is' : 's are'} left out: no epoch length is known (trained outside fit, or not past its first epoch).`);
     facts.textContent = notes.join(' ');
 

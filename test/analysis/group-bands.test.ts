@@ -9,6 +9,7 @@ import {
   logGrid,
   logStepGrid,
   quantileSorted7,
+  valuesInLogBins,
   valuesOnLogSteps,
 } from '../../src/analysis/group-bands.js';
 import { mulberry32 } from '../../src/analysis/random.js';
@@ -90,6 +91,28 @@ describe('runs on one grid of log steps', () => {
     expect(got[4]).toBeCloseTo(4.0002, 3);
     expect(got[5]).toBe(0);
     expect(got[6]).toBeNaN();
+  });
+});
+
+describe('values of a sparse series in log bins', () => {
+  it('takes the median of the points in each grid step\'s stretch of the log axis (hand-worked)', () => {
+    // Grid 10, 100, 1000: stretches meet at √(10·100) ≈ 31.6 and √(100·1000) ≈ 316.2; the first reaches as
+    // far below 10 as its inner half (down to 10/√10 ≈ 3.16), the last up to 1000·√10 ≈ 3162.
+    const series = [
+      { step: 2, value: 99 }, // below 3.16: in no stretch
+      { step: 8, value: 1 },
+      { step: 30, value: 3 }, // 30 < 31.6: still the first stretch
+      { step: 40, value: 10 },
+      { step: 300, value: Number.NaN }, // not finite: skipped
+      { step: 3000, value: 7 },
+      { step: 4000, value: 99 }, // above 3162: in no stretch
+    ];
+    const got = valuesInLogBins(series, [10, 100, 1000]);
+    expect(got[0]).toBe(2); // median of 1 and 3
+    expect(got[1]).toBe(10);
+    expect(got[2]).toBe(7);
+    expect(valuesInLogBins([{ step: 50, value: 4 }], [10, 1000])).toEqual([4, Number.NaN]);
+    expect(valuesInLogBins([{ step: 150, value: 4 }], [10, 1000])).toEqual([Number.NaN, 4]);
   });
 });
 

@@ -8,11 +8,11 @@ import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { median as ssMedian } from 'simple-statistics';
 import { afterAll, describe, expect, it } from 'vitest';
-import { valuesOnLogSteps } from '../../src/analysis/group-bands.js';
+import { valuesInLogBins, valuesOnLogSteps } from '../../src/analysis/group-bands.js';
 import { renderGroup, renderSweep } from '../../src/cli/group.js';
 import type { Marker, SinkRecord, WindowRecord } from '../../src/protocol/records.js';
 import { asAsyncStore, type AsyncStore } from '../../src/storage/async-store.js';
-import { groupReport, sweepOf } from '../../src/storage/group-report.js';
+import { groupReport, matchLayers, sweepOf } from '../../src/storage/group-report.js';
 import { openStore } from '../../src/storage/sqlite-store.js';
 import { fakeRun, fakeWindows } from '../helpers/window-records.js';
 
@@ -72,19 +72,19 @@ describe('groupReport', () => {
     expect(renderGroup(r)).toContain('left out: its epoch length is unknown');
   });
 
-  it('gives bands of the noise scale and the weight travel, each the median of the runs interpolated on log step', async () => {
+  it('gives bands of the weight travel (runs interpolated on log step) and the noise scale (runs binned on log step)', async () => {
     for (const align of ['step', 'epoch'] as const) {
       const r = (await withReader((s) => groupReport(s, 'seeds', { align })))!;
       const runs = align === 'epoch' ? 4 : 5;
       const scale = align === 'epoch' ? PER_EPOCH : 1;
       const layer0 = r.layers.find((l) => l.position === 0)!;
-      for (const [band, value] of [
-        [layer0.weightTravel, (w: WindowRecord) => w.layers[r.layers[1]!.layer]!.weight_travel],
-        [layer0.noiseScale, (w: WindowRecord) => w.layers[r.layers[1]!.layer]!.noise_scale],
+      for (const [band, value, place] of [
+        [layer0.weightTravel, (w: WindowRecord) => w.layers[r.layers[1]!.layer]!.weight_travel, valuesOnLogSteps],
+        [layer0.noiseScale, (w: WindowRecord) => w.layers[r.layers[1]!.layer]!.noise_scale, valuesInLogBins],
       ] as const) {
         // Each run's own windows, as written, put on the grid by hand from the records (not read back).
         const onGrid = written.slice(0, runs).map((ws) =>
-          valuesOnLogSteps(ws.filter((w) => value(w) !== null).map((w) => ({ step: w.step / scale, value: value(w)! })), r.grid),
+          place(ws.filter((w) => value(w) !== null).map((w) => ({ step: w.step / scale, value: value(w)! })), r.grid),
         );
         let checked = 0;
         r.grid.forEach((_, g) => {
@@ -141,5 +141,48 @@ describe('groupReport', () => {
     expect(best.fit).not.toBeNull();
     expect(renderSweep(best)).toContain('best validation value (val_acc / val_loss)');
     expect(renderSweep(w)).toContain('epochs to the training-loss target');
+  });
+
+  it('compares runs of different depths only on the layers all of them name, and lists the rest', async () => {
+    // A depth sweep: 2, 3 and 4 layers named dense_Dense1…k. Position 2 is the last layer of the shallowest run
+    // but a hidden one of the others, so only dense_Dense1 and dense_Dense2 are compared.
+    const path = join(dir, 'depths.db');
+    const steps = [40, 56, 72];
+    const store = openStore(path);
+    for (const [k, depth] of [2, 3, 4].entries()) {
+      const run = fakeRun({ id: `d${depth}`, group: 'depths', layers: depth, tags: { depth: String(depth) }, started_at: 1_700_000_000_000 + k });
+      store.beginRun(run);
+      const marker: Marker = { run: run.id, layer: 'dense_Dense2', kind: 'diffusion-start', step: steps[k]!, detected_step: steps[k]! + 8, confidence: 0.7, details: {} };
+      store.append([...fakeWindows(run, 12, 50 + k).map((window): SinkRecord => ({ type: 'window', window })), { type: 'marker', marker }]);
+    }
+    store.close();
+    const reader = asAsyncStore(openStore(path, { readonly: true }));
+    try {
+      const r = (await groupReport(reader, 'depths'))!;
+      expect(r.byPosition).toBe(false);
+      expect(r.layers.map((l) => l.layer)).toEqual(['(network)', 'dense_Dense1', 'dense_Dense2']);
+      expect(r.leftOut).toEqual(['dense_Dense3', 'dense_Dense4']);
+      expect(r.layers[2]!.transitions).toEqual(steps);
+      expect(renderGroup(r)).toContain('dense_Dense3, dense_Dense4 (not in every run) left out');
+    } finally {
+      await reader.close();
+    }
+  });
+});
+
+describe('matchLayers', () => {
+  it('matches equal depths by position, other depths by shared name', () => {
+    // tfjs numbers automatic names per process: the same network trained twice in one process.
+    expect(matchLayers([['dense_Dense1', 'dense_Dense2'], ['dense_Dense3', 'dense_Dense4']])).toEqual({
+      columns: [['dense_Dense1', 'dense_Dense3'], ['dense_Dense2', 'dense_Dense4']],
+      byPosition: true,
+      leftOut: [],
+    });
+    expect(matchLayers([['hidden1_16', 'output_4'], ['hidden1_16', 'hidden2_16', 'output_4']])).toEqual({
+      columns: [['hidden1_16', 'hidden1_16'], ['output_4', 'output_4']],
+      byPosition: false,
+      leftOut: ['hidden2_16'],
+    });
+    expect(matchLayers([['a'], ['b', 'c']])).toEqual({ columns: [], byPosition: false, leftOut: ['a', 'b', 'c'] });
   });
 });
