@@ -42,6 +42,20 @@ export { connectStore, type ConnectOptions } from './storage/connect-store.js';
 export { openPostgresStore, type PostgresStoreOptions } from './storage/postgres-store.js';
 export { StoreSink, type StoreSinkOptions } from './storage/store-sink.js';
 export { exportRun, importJsonl, type ExportFormat, type ImportReport } from './storage/export.js';
+export {
+  groupReport,
+  sweepOf,
+  matchLayers,
+  GROUP_ALIGNS,
+  SWEEP_OUTCOMES,
+  type GroupAlign,
+  type GroupOptions,
+  type GroupReport,
+  type GroupLayerReport,
+  type GroupRunOutcome,
+  type SweepOutcome,
+  type SweepReport,
+} from './storage/group-report.js';
 export { RemoteSink, type RemoteSinkOptions } from './storage/remote-sink.js';
 export { resendSpill, type ResendOptions, type ResendReport } from './storage/resend.js';
 export { startServer, DEFAULT_PORT, type StartOptions, type RunningServer } from './server/serve.js';

@@ -29,6 +29,11 @@ describe('public API', () => {
         'DEFAULT_PORT',
         'PROTOCOL_VERSION',
         'MAX_FRAME_BYTES',
+        'groupReport',
+        'sweepOf',
+        'matchLayers',
+        'GROUP_ALIGNS',
+        'SWEEP_OUTCOMES',
       ].sort(),
     );
   });
