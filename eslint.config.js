@@ -4,7 +4,7 @@ import js from '@eslint/js';
 import tseslint from 'typescript-eslint';
 
 export default tseslint.config(
-  { ignores: ['dist/**', 'dist-examples/**', 'node_modules/**', 'coverage/**', '.tmp/**'] },
+  { ignores: ['dist/**', 'dist-examples/**', 'node_modules/**', 'coverage/**', '.tmp/**', 'scratch/**'] },
   js.configs.recommended,
   ...tseslint.configs.recommended,
   {

@@ -301,17 +301,26 @@ export interface GearboxModelOptions {
   seed?: number;
   /** Plain SGD learning rate. Default 0.01. */
   learningRate?: number;
+  /**
+   * Units of each hidden tanh layer, input side first: as many layers as entries, 1 to 15 of them (the
+   * initialiser seeds are `seed * 16 + i`, so more would reuse another seed's). Default [24, 16, 8].
+   */
+  hidden?: readonly number[];
 }
 
 /**
- * The demo network, 32-24-16-8-4 with tanh and a softmax output, compiled with plain SGD. Layers are
- * named so tables and stored records read as the architecture rather than as tfjs's counters.
+ * The demo network, 32-24-16-8-4 with tanh and a softmax output (other hidden layers with `hidden`),
+ * compiled with plain SGD. Layers are named so tables and stored records read as the architecture rather
+ * than as tfjs's counters: `hidden1_24`, …, `output_4`.
  */
 export function buildGearboxModel(tf: typeof tfjs, options: GearboxModelOptions = {}): tfjs.Sequential {
   const seed = options.seed ?? 1;
   const learningRate = options.learningRate ?? 0.01;
+  const widths = [...(options.hidden ?? [24, 16, 8])];
+  if (widths.length < 1 || widths.length > 15 || !widths.every((u) => Number.isInteger(u) && u >= 1)) {
+    throw new RangeError(`hidden must list 1 to 15 positive integer widths, received [${widths.join(', ')}]`);
+  }
   const model = tf.sequential({ name: 'gearbox_classifier' });
-  const widths = [24, 16, 8];
   widths.forEach((units, i) => {
     model.add(
       tf.layers.dense({

@@ -1,7 +1,8 @@
 /**
- * `npm run screenshots`: trains the gearbox demo twice (two learning rates) into a scratch store, serves it,
- * and photographs the page's main views with Debian's chromium into docs/screenshots/ (the README shows
- * them). Needs /usr/bin/chromium; takes about a minute.
+ * `npm run screenshots`: trains the gearbox demo twice (two learning rates) into a scratch store, then two
+ * groups (five seeds of one network; a small depth sweep), serves it, and photographs the page's main views
+ * with Debian's chromium into docs/screenshots/ (the README shows them). Needs /usr/bin/chromium; takes
+ * about three minutes.
  *
  *   npx tsx scripts/screenshots.ts [--epochs N] [--out DIR]
  */
@@ -11,6 +12,7 @@ import { tmpdir } from 'node:os';
 import { join, resolve } from 'node:path';
 import { fileURLToPath } from 'node:url';
 import { parseArgs } from 'node:util';
+import { runDepthSweep } from '../examples/depth-sweep.js';
 import { startServer } from '../src/server/serve.js';
 import { openStore } from '../src/storage/sqlite-store.js';
 import { CHROMIUM, ensurePageBuilt, haveChromium, launchChromium } from '../test/helpers/browser.js';
@@ -42,11 +44,16 @@ try {
     });
     if (r.status !== 0) throw new Error(`the demo exited with ${r.status}`);
   }
+  // Two groups for the group view: five seeds of one network, and a small depth sweep (depths 1, 2, 4 × 2 seeds).
+  console.log('training the gearbox classifier: 5 seeds at depth 3, then depths 1, 2, 4 × 2 seeds…');
+  const quiet = { onWarning: () => {} };
+  await runDepthSweep({ depths: [3], seeds: [1, 2, 3, 4, 5], epochs: 45, store: db, group: 'gearbox-seeds', ...quiet });
+  await runDepthSweep({ depths: [1, 2, 4], seeds: [1, 2], epochs: 45, store: db, group: 'depth-sweep', ...quiet });
   const store = openStore(db);
   const server = await startServer({ store, port: 0, onError: () => {} });
   const browser = await launchChromium();
   try {
-    const runs = store.runs();
+    const runs = store.runs().filter((r) => r.group === null);
     const [older, newer] = [runs[1]!, runs[0]!];
     const page = await browser.newPage({ viewport: { width: 1280, height: 800 } });
     const shot = async (name: string, fullPage: boolean): Promise<void> => {
@@ -67,6 +74,15 @@ try {
     await page.waitForSelector('[data-testid="compare-noise"] canvas');
     await page.locator('[data-testid="compare-runs"] tbody tr', { hasText: 'diffusion' }).first().waitFor();
     await shot('compare.png', true);
+
+    await page.goto(`${server.url}/#/group/gearbox-seeds`);
+    await page.locator('[data-testid="group-transitions"] g.transition-row').first().waitFor();
+    await shot('group.png', true);
+
+    await page.goto(`${server.url}/#/group/depth-sweep?sweep=depth&outcome=diffusion-start`);
+    await page.locator('[data-testid="sweep-fit"]').waitFor();
+    await page.locator('[data-testid="sweep-chart"]').scrollIntoViewIfNeeded();
+    await shot('sweep.png', false);
 
     await page.setViewportSize({ width: 390, height: 844 });
     await page.goto(`${server.url}/#/run/${older.id}`);
