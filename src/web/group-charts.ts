@@ -44,14 +44,14 @@ function logTicks(lo: number, hi: number, pixels: number): number[] {
 }
 
 /** Axes, grid lines and titles of a plot. */
-function axes(f: Frame, x: { lo: number; hi: number; log: boolean; title: string }, y: { lo: number; hi: number; log: boolean; title: string }): { g: SVGGElement; X: (v: number) => number; Y: (v: number) => number } {
+function axes(f: Frame, x: { lo: number; hi: number; log: boolean; title: string; ticks?: readonly number[] }, y: { lo: number; hi: number; log: boolean; title: string }): { g: SVGGElement; X: (v: number) => number; Y: (v: number) => number } {
   const pw = plotWidth(f);
   const ph = plotHeight(f);
   const X = scale(x.lo, x.hi, f.m.left, f.m.left + pw, x.log);
   const Y = scale(y.lo, y.hi, f.m.top + ph, f.m.top, y.log);
   const g = svg('g', { class: 'axes', 'font-size': 11, fill: '#333' });
   g.append(svg('rect', { x: f.m.left, y: f.m.top, width: pw, height: ph, fill: 'none', stroke: '#bbb' }));
-  for (const t of x.log ? logTicks(x.lo, x.hi, pw) : linearTicks(x.lo, x.hi)) {
+  for (const t of x.ticks ?? (x.log ? logTicks(x.lo, x.hi, pw) : linearTicks(x.lo, x.hi))) {
     g.append(svg('line', { x1: X(t), x2: X(t), y1: f.m.top, y2: f.m.top + ph, stroke: '#eee' }), svg('text', { x: X(t), y: f.m.top + ph + 14, 'text-anchor': 'middle' }, formatNumber(t)));
   }
   for (const t of y.log ? logTicks(y.lo, y.hi, ph) : linearTicks(y.lo, y.hi)) {
@@ -193,8 +193,11 @@ export function drawSweep(box: HTMLElement, w: SweepReport, yTitle: string, widt
   const yhi = Math.max(...ys, ...line.map((p) => p.y));
   const f: Frame = { width, height: 300, m: { left: 70, right: 14, top: 10, bottom: 40 } };
   const xr = xhi > xlo ? [xlo / 1.1, xhi * 1.1] : [xlo / 2, xhi * 2];
+  // A sweep sets a few values of its tag (depth 1, 2, 4): label those rather than a 1-2-5 ladder that may miss them.
+  const distinct = [...new Set(xs)].sort((a, b) => a - b);
+  const xTicks = distinct.length <= 12 ? distinct : undefined;
   const yr = yhi > ylo ? [ylo / 1.2, yhi * 1.2] : [ylo / 2, yhi * 2];
-  const { g, X, Y } = axes(f, { lo: xr[0]!, hi: xr[1]!, log: true, title: `${w.tag} (log scale)` }, { lo: yr[0]!, hi: yr[1]!, log: true, title: yTitle });
+  const { g, X, Y } = axes(f, { lo: xr[0]!, hi: xr[1]!, log: true, title: `${w.tag} (log scale)`, ticks: xTicks }, { lo: yr[0]!, hi: yr[1]!, log: true, title: yTitle });
   const root = svg('svg', { width, height: f.height, viewBox: `0 0 ${width} ${f.height}`, role: 'img', 'aria-label': `${yTitle} against ${w.tag}, log-log, with the fitted power law` });
   root.append(g);
   if (line.length === 2) {
@@ -209,7 +212,7 @@ export function drawSweep(box: HTMLElement, w: SweepReport, yTitle: string, widt
   if (w.residuals.length > 0) {
     const rf: Frame = { width, height: 130, m: { left: 70, right: 14, top: 8, bottom: 34 } };
     const rmax = Math.max(...w.residuals.map(Math.abs), 1e-3) * 1.2;
-    const r = axes(rf, { lo: xr[0]!, hi: xr[1]!, log: true, title: `${w.tag} (log scale)` }, { lo: -rmax, hi: rmax, log: false, title: 'residual, ln' });
+    const r = axes(rf, { lo: xr[0]!, hi: xr[1]!, log: true, title: `${w.tag} (log scale)`, ticks: xTicks }, { lo: -rmax, hi: rmax, log: false, title: 'residual, ln' });
     const rs = svg('svg', { width, height: rf.height, viewBox: `0 0 ${width} ${rf.height}`, role: 'img', 'aria-label': 'Residuals of the fit on log axes' });
     rs.append(r.g, svg('line', { x1: rf.m.left, x2: width - rf.m.right, y1: r.Y(0), y2: r.Y(0), stroke: REFERENCE_GREY }));
     w.points.forEach((p, i) => rs.append(svg('circle', { class: 'sweep-residual', cx: r.X(p.x), cy: r.Y(w.residuals[i]!), r: 3.5, fill: OKABE_ITO.blue }, svg('title', {}, `${w.tag} = ${p.x}: ${w.residuals[i]!.toFixed(3)}`))));

@@ -104,6 +104,9 @@ describe.skipIf(!haveChromium && !inCI)('the group view in chromium', () => {
     expect(text).toContain(`[${api.sweep.bootstrap.low.toFixed(3)}, ${api.sweep.bootstrap.high.toFixed(3)}] by bootstrap`);
     expect(await page.locator('[data-testid="sweep-chart"] circle.sweep-point').count()).toBe(5);
     expect(await page.locator('[data-testid="sweep-chart"] circle.sweep-residual').count()).toBe(5);
+    // The x axis is labelled at the tag's own values (depth 1 to 5), 4 included, which a 1-2-5 ladder misses.
+    const xLabels = await page.locator('[data-testid="sweep-chart"] svg').first().locator('g.axes text[text-anchor="middle"]').allTextContents();
+    expect(xLabels.filter((t) => /^\d+$/.test(t))).toEqual(['1', '2', '3', '4', '5']);
     expect(errors).toEqual([]);
     await page.close();
   });
