@@ -528,11 +528,21 @@ class MonitorSession implements Monitor {
     }
   }
 
-  /** A sustained fall of a layer's binned I(X;T) becomes a compression-start marker. */
+  /**
+   * A sustained fall of a layer's I(X;T) becomes a compression-start marker: the noise-regularised
+   * (pairwise, upper) estimate when the probe computes it, which stays informative on wide layers where the
+   * binned one sits at log2(rows) and can neither fall nor rise; a saturated point is skipped.
+   */
   private watchCompression(step: number, probed: ProbeResult): void {
+    const o = (this.probe as Probe).options;
+    const pairwise = o.boundRows > 0;
     const values: Record<string, number | null> = {};
-    for (const [layer, v] of Object.entries(probed.layers)) values[layer] = v.mi_input;
-    const bins = (this.probe as Probe).options.bins;
+    for (const [layer, v] of Object.entries(probed.layers)) {
+      values[layer] = pairwise ? (v.mi_bounds_saturated === 1 ? null : (v.mi_input_upper ?? null)) : v.mi_input;
+    }
+    const settings = pairwise
+      ? { estimator: 'pairwise-kolchinsky-tracey', ...(o.noiseVariance === null ? { noise_ratio: o.noiseRatio } : { noise_variance: o.noiseVariance }) }
+      : { estimator: 'binned-plugin', bins: o.bins };
     for (const e of this.compression.push(step, values) as CompressionEvent[]) {
       this.addMarker({
         run: this.runId,
@@ -541,7 +551,7 @@ class MonitorSession implements Monitor {
         step: e.step,
         detected_step: e.detected_step,
         confidence: e.confidence,
-        details: { ...e.details, estimator: 'binned-plugin', bins, source: 'online' },
+        details: { ...e.details, ...settings, source: 'online' },
       });
     }
   }

@@ -7,7 +7,7 @@
 import * as tf from '@tensorflow/tfjs';
 import { binnedInformation } from '../analysis/binned-information.js';
 import { labelClasses, type LabelKind } from '../analysis/label-bins.js';
-import { pairwiseInformationBounds } from '../analysis/pairwise-information.js';
+import { DEFAULT_NOISE_RATIO, pairwiseInformationBounds } from '../analysis/pairwise-information.js';
 import { mulberry32 } from '../analysis/random.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.js';
 import { unknownOption } from '../option-check.js';
@@ -30,7 +30,13 @@ export interface ProbeOptions {
   size?: number;
   /** Equal-width bins per unit of the binned estimate. Default 30. */
   bins?: number;
-  /** σ² of the Gaussian noise of the pairwise bounds. Default 0.1. */
+  /**
+   * σ² of the pairwise bounds' Gaussian noise as a share of each layer's spread (the total variance of its
+   * activations on the probe rows), > 0. Default 0.2: then wide layers stay below log2(rows) and the values
+   * do not change when a layer's activations are rescaled (analysis/pairwise-information.ts).
+   */
+  noiseRatio?: number;
+  /** An absolute σ², the same for every layer, in place of `noiseRatio` (giving both is an error). No default. */
   noiseVariance?: number;
   /** Rows entering the O(rows²·units) pairwise bounds (subsampled with a fixed seed); 0 turns the bounds off. Default 512. */
   boundRows?: number;
@@ -47,16 +53,22 @@ export const PROBE_DEFAULTS = {
   budget: 0.03,
   size: 4096,
   bins: 30,
-  noiseVariance: 0.1,
+  noiseRatio: DEFAULT_NOISE_RATIO,
+  noiseVariance: null,
   boundRows: 512,
   labels: 'auto',
   labelBins: 10,
   maxBytes: 256 * 1024 * 1024,
 } as const;
 
-export type ResolvedProbeOptions = Readonly<Required<ProbeOptions>>;
+/** Exactly one of noiseRatio and noiseVariance is a number. */
+export type ResolvedProbeOptions = Readonly<Required<Omit<ProbeOptions, 'noiseRatio' | 'noiseVariance'>>> & {
+  readonly noiseRatio: number | null;
+  readonly noiseVariance: number | null;
+};
 
-const NUMBERS = ['every', 'budget', 'size', 'bins', 'noiseVariance', 'boundRows', 'labelBins', 'maxBytes'] as const;
+const NUMBERS = ['every', 'budget', 'size', 'bins', 'noiseRatio', 'noiseVariance', 'boundRows', 'labelBins', 'maxBytes'] as const;
+const REALS: readonly string[] = ['noiseRatio', 'noiseVariance'];
 export const PROBE_OPTION_NAMES = ['x', 'y', 'labels', ...NUMBERS] as const;
 
 const invalid = (message: string): TidemarkRangeError => new TidemarkRangeError('TIDEMARK_ERR_PROBE_INVALID', message);
@@ -85,15 +97,24 @@ export function resolveProbeOptions(value: unknown): ResolvedProbeOptions | null
       out[k] = v;
       continue;
     }
-    const integer = k !== 'noiseVariance';
-    const min = k === 'boundRows' || k === 'noiseVariance' ? 0 : k === 'every' ? 1 : 2;
-    if (typeof v !== 'number' || !Number.isFinite(v) || (integer && !Number.isInteger(v)) || v < min || (k === 'noiseVariance' && v <= 0)) {
+    const real = REALS.includes(k);
+    const min = k === 'boundRows' || real ? 0 : k === 'every' ? 1 : 2;
+    if (typeof v !== 'number' || !Number.isFinite(v) || (!real && !Number.isInteger(v)) || v < min || (real && v <= 0)) {
       throw new TidemarkRangeError(
         'TIDEMARK_ERR_OPTION_INVALID',
-        `Option 'probe.${k}' must be ${k === 'noiseVariance' ? 'a number > 0' : `an integer ≥ ${min}`}${k === 'every' ? " or 'auto'" : ''}; received ${JSON.stringify(v)}.`,
+        `Option 'probe.${k}' must be ${real ? 'a number > 0' : `an integer ≥ ${min}`}${k === 'every' ? " or 'auto'" : ''}; received ${JSON.stringify(v)}.`,
       );
     }
     out[k] = v;
+  }
+  if (o.noiseVariance !== undefined) {
+    if (o.noiseRatio !== undefined) {
+      throw new TidemarkTypeError(
+        'TIDEMARK_ERR_OPTION_INVALID',
+        "Options 'probe.noiseRatio' and 'probe.noiseVariance' were both given; pass one: noiseRatio for σ² as a share of each layer's spread, or noiseVariance for one absolute σ².",
+      );
+    }
+    out.noiseRatio = null;
   }
   if (o.labels !== undefined) {
     if (!['auto', 'onehot', 'sparse', 'regression'].includes(o.labels as string)) {
@@ -132,6 +153,8 @@ export interface ProbeLayerValues {
   mi_label_pairwise?: number;
   /** 1 when the lower bound is within 0.1 bit of log2(rows used). */
   mi_bounds_saturated?: number;
+  /** σ² of the noise the pairwise values assume (noiseRatio × the layer's total variance, or noiseVariance). */
+  mi_noise_variance?: number;
   /** Rows that entered the binned estimate (rows with a NaN or infinite activation are left out). */
   probe_rows: number;
 }
@@ -375,7 +398,13 @@ export class Probe {
       binned: { estimator: 'binned-plugin', bins: o.bins, saturation_margin_bits: 0.1 },
       bounds:
         o.boundRows > 0
-          ? { estimator: 'pairwise-kolchinsky-tracey', noise_variance: o.noiseVariance, rows: Math.min(o.boundRows, this.rows) }
+          ? {
+              estimator: 'pairwise-kolchinsky-tracey',
+              // σ² = noise_ratio × each layer's total variance (its mi_noise_variance per window), or one absolute noise_variance.
+              noise_ratio: o.noiseRatio,
+              noise_variance: o.noiseVariance,
+              rows: Math.min(o.boundRows, this.rows),
+            }
           : null,
       layers: Object.fromEntries(this.layers.map((l) => [l.name, { activation: l.activation, range: l.range, units: l.units }])),
       skipped: this.skipped,
@@ -442,11 +471,13 @@ export class Probe {
     const t1 = performance.now();
     timing.binned += t1 - t0;
     if (o.boundRows > 0) {
-      const b = pairwiseInformationBounds(acts, shape, this.classes, { noiseVariance: o.noiseVariance, maxRows: o.boundRows });
+      const noise = o.noiseVariance === null ? { noiseRatio: o.noiseRatio ?? DEFAULT_NOISE_RATIO } : { noiseVariance: o.noiseVariance };
+      const b = pairwiseInformationBounds(acts, shape, this.classes, { ...noise, maxRows: o.boundRows });
       values.mi_input_upper = b.mi_input_upper;
       values.mi_input_lower = b.mi_input_lower;
       values.mi_label_pairwise = b.mi_label;
       values.mi_bounds_saturated = b.saturated ? 1 : 0;
+      if (Number.isFinite(b.noise_variance)) values.mi_noise_variance = b.noise_variance;
       timing.bounds += performance.now() - t1;
     }
     return values;

@@ -14,6 +14,7 @@ export const PROBE_METRICS = [
   'mi_input_upper',
   'mi_label_pairwise',
   'mi_bounds_saturated',
+  'mi_noise_variance',
   'act_mean',
   'act_std',
   'act_saturation',
@@ -38,7 +39,8 @@ export interface ProbeSettings {
   every: number | string | null;
   /** Share of training time the probe may take, when every is 'auto'. */
   budget: number | null;
-  bounds: { estimator: string | null; noise_variance: number | null; rows: number | null } | null;
+  /** noise_ratio: σ² as a share of each layer's spread; noise_variance: one absolute σ² (runs before the ratio, or asked for). */
+  bounds: { estimator: string | null; noise_ratio: number | null; noise_variance: number | null; rows: number | null } | null;
 }
 
 export interface ProbeLatest {
@@ -54,7 +56,7 @@ export const BOUNDS_SATURATED_MARK = '†';
 export const SATURATED_NOTE = 'every probe example in its own bin: this value says nothing about the layer';
 export const BOUNDS_SATURATED_NOTE = 'every probe example told apart through the added noise: these bounds say nothing about the layer';
 export const PROBE_CAUTION =
-  'Binned estimates depend on the bin count and on the activation function; compare them only between runs with the same bins and activations.';
+  'Both are estimates that depend on their settings (the noise σ², the bin count, the probe rows) and on the activation function; compare them only between runs with the same settings, and confirm any decision on held-out data.';
 
 const obj = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
 const numOrNull = (v: unknown): number | null => (typeof v === 'number' ? v : null);
@@ -71,7 +73,10 @@ export function probeSettings(config: Record<string, unknown>): ProbeSettings {
     rows: numOrNull(p.rows),
     every: typeof p.every === 'number' || typeof p.every === 'string' ? p.every : null,
     budget: numOrNull(p.budget),
-    bounds: bounds === null ? null : { estimator: strOrNull(bounds.estimator), noise_variance: numOrNull(bounds.noise_variance), rows: numOrNull(bounds.rows) },
+    bounds:
+      bounds === null
+        ? null
+        : { estimator: strOrNull(bounds.estimator), noise_ratio: numOrNull(bounds.noise_ratio), noise_variance: numOrNull(bounds.noise_variance), rows: numOrNull(bounds.rows) },
   };
 }
 
@@ -106,7 +111,10 @@ export async function latestProbe(anyStore: AnyStore, run: RunDetail): Promise<P
 
 function settingsLine(s: ProbeSettings): string {
   const parts = [`${s.estimator ?? 'binned'}, ${s.bins ?? '?'} bins per unit, ${s.rows ?? '?'} rows`];
-  if (s.bounds !== null) parts.push(`bounds ${s.bounds.estimator ?? 'pairwise'}, σ² ${s.bounds.noise_variance ?? '?'}, ${s.bounds.rows ?? '?'} rows`);
+  if (s.bounds !== null) {
+    const noise = s.bounds.noise_ratio !== null ? `σ² ${s.bounds.noise_ratio} × each layer's spread` : `σ² ${s.bounds.noise_variance ?? '?'}`;
+    parts.push(`bounds ${s.bounds.estimator ?? 'pairwise'}, ${noise}, ${s.bounds.rows ?? '?'} rows`);
+  }
   if (typeof s.every === 'number') parts.push(`every ${s.every} window${s.every === 1 ? '' : 's'}`);
   else if (s.every !== null) parts.push(`every: ${printable(s.every, 20)}${s.budget !== null ? ` (at most ${fmt(100 * s.budget, 1)}% of training time)` : ''}`);
   return parts.join('; ');
@@ -119,7 +127,8 @@ function marked(text: string, flag: number | null, mark: string): string {
 
 /** The probe section of `tidemark show`, as lines. */
 export function renderProbe(p: ProbeLatest): string[] {
-  const rows = [['layer', 'probe step', 'I(X;T) bits', 'I(T;Y) bits', 'I(X;T) bounds', 'at limit', 'rows']];
+  // The noise-regularised values first: they stay informative on wide layers, where the binned ones sit at log2(rows).
+  const rows = [['layer', 'probe step', 'noisy I(X;T) bounds', 'noisy I(T;Y)', 'noise σ²', 'binned I(X;T)', 'binned I(T;Y)', 'at limit', 'rows']];
   let sat = false;
   let boundsSat = false;
   for (const { layer, step, values: v } of p.layers) {
@@ -129,9 +138,11 @@ export function renderProbe(p: ProbeLatest): string[] {
     rows.push([
       printable(layer, 40),
       String(step),
+      marked(bounds, v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
+      v.mi_label_pairwise === null ? '—' : marked(fmt(v.mi_label_pairwise), v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
+      v.mi_noise_variance === null ? '—' : v.mi_noise_variance.toPrecision(3),
       marked(fmt(v.mi_input), v.mi_saturated, SATURATED_MARK),
       marked(fmt(v.mi_label), v.mi_saturated, SATURATED_MARK),
-      marked(bounds, v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
       // A percentage, as the demo prints it: the share of activations pinned near the ends of their range.
       v.act_saturation === null ? '—' : `${(100 * v.act_saturation).toFixed(1)}%`,
       v.probe_rows === null ? '—' : String(v.probe_rows),

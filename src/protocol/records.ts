@@ -81,6 +81,8 @@ export interface LayerStats extends VariableStats {
   mi_label_pairwise?: number;
   /** 1 when the lower bound is within 0.1 bit of log2(rows used): the bounds say nothing. */
   mi_bounds_saturated?: number;
+  /** σ² of the noise the pairwise values assume in this window: probe.noiseRatio × the layer's total variance, or the absolute probe.noiseVariance. */
+  mi_noise_variance?: number;
   /** Probe rows that entered the binned estimate (rows with non-finite activations are left out). */
   probe_rows?: number;
 }
@@ -105,6 +107,12 @@ export interface NoiseSample {
   population: number | null;
   /** Wall time of the measurement, ms. */
   ms: number;
+  /**
+   * A lower bound on the network's noise scale (examples), tr Σ / (|G|² + 2·SE): what an unresolved
+   * measurement still says (the mean gradient is lost in the noise, so the noise scale is at least this).
+   * Null or absent when unknown (records written before it existed).
+   */
+  noise_scale_low?: number | null;
 }
 
 /** One window of minibatches. */

