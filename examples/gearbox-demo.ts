@@ -24,6 +24,8 @@ import {
   type RunningServer,
   type WindowRecord,
 } from '../src/index.js';
+// The batch-size sentence the page shows too (not part of the library's API).
+import { batchSizeAdvice } from '../src/analysis/batch-size-advice.js';
 import { buildGearboxModel, makeGearboxData, sliceGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
@@ -195,7 +197,7 @@ function windowLine(w: WindowRecord, epochs: number, network: string): string {
 /** Marks a value that says nothing: every probe example has its own bin (or, for the bounds, stays apart through the noise). */
 const SAT_MARK = '*';
 const SAT_LEGEND = `   ${SAT_MARK} every probe example in its own bin (bounds: all still apart through the noise): says nothing`;
-const PROBE_COLUMNS = { mi: 9, bounds: 16, limit: 10 };
+const PROBE_COLUMNS = { mi: 9, bounds: 13, limit: 10 };
 
 function isProbed(s: LayerStats): boolean {
   return s.mi_input !== undefined;
@@ -215,12 +217,14 @@ function probeRow(name: string, s: LayerStats): { text: string; marked: boolean 
       ? '- '
       : `${s.mi_input_lower.toFixed(2)}–${s.mi_input_upper.toFixed(2)}${boundsSat ? SAT_MARK : ' '}`;
   const limit = s.act_saturation === undefined || !Number.isFinite(s.act_saturation) ? '-' : `${(100 * s.act_saturation).toFixed(1)}%`;
+  // The noise-regularised values first: on the hidden layers the binned ones sit at log2(rows) and say nothing.
   return {
     text:
       `   ${name.padEnd(COLUMNS.layer)}` +
+      bounds.padStart(PROBE_COLUMNS.bounds) +
+      bits(s.mi_label_pairwise, boundsSat).padStart(PROBE_COLUMNS.mi) +
       bits(s.mi_input, binnedSat).padStart(PROBE_COLUMNS.mi) +
       bits(s.mi_label, binnedSat).padStart(PROBE_COLUMNS.mi) +
-      bounds.padStart(PROBE_COLUMNS.bounds) +
       limit.padStart(PROBE_COLUMNS.limit),
     marked: binnedSat || boundsSat,
   };
@@ -229,9 +233,10 @@ function probeRow(name: string, s: LayerStats): { text: string; marked: boolean 
 function probeHeader(title: string): string {
   return (
     `   ${title.padEnd(COLUMNS.layer)}` +
-    'I(X;T) '.padStart(PROBE_COLUMNS.mi) +
+    'I(X;T) '.padStart(PROBE_COLUMNS.bounds) +
     'I(T;Y) '.padStart(PROBE_COLUMNS.mi) +
-    'noisy I(X;T) '.padStart(PROBE_COLUMNS.bounds) +
+    'binned X '.padStart(PROBE_COLUMNS.mi) +
+    'binned Y '.padStart(PROBE_COLUMNS.mi) +
     'at limit'.padStart(PROBE_COLUMNS.limit)
   );
 }
@@ -276,10 +281,10 @@ const LINE_LEGEND = [
 const PROBE_LEGEND = [
   `In the windows where tidemark ran its activation probe, a probe block follows: ${PROBE_ROWS} held-out`,
   'measurements run through the network, values in bits:',
-  `  I(X;T)       binned information between input and layer output (${PROBE_BINS} bins per unit)`,
-  '  I(T;Y)       binned information between layer output and the recorded condition',
-  '  noisy I(X;T) lower–upper bounds on what the output tells about the input once Gaussian noise',
-  "               is added to it (the noise's variance is in the run's stored config)",
+  '  I(X;T)       lower–upper bounds on what the layer output tells about the input once Gaussian noise',
+  "               of 0.2 × the layer's spread is added to it (Kolchinsky & Tracey pairwise estimate)",
+  '  I(T;Y)       the matching estimate of what the noisy output tells about the recorded condition',
+  `  binned X, Y  the same two by plug-in binning (${PROBE_BINS} bins per unit), the classic picture`,
   '  at limit     share of activations pinned near the ends of their range (tanh ±1, softmax 0/1)',
   `  ${SAT_MARK}            saturated: every probe example in its own bin, so the value says nothing (on the`,
   '               bounds: the noise still leaves every example apart)',
@@ -556,12 +561,18 @@ for (const name of model.layers.map((l) => l.name)) {
   summary.push(`${r.text}   step ${p.window.step}`);
 }
 if (marked) summary.push(SAT_LEGEND);
-const measured = mon.windows().filter((w) => w.noise?.status === 'measured').length;
+const noiseTaken = mon.windows().filter((w) => w.noise?.status === 'measured' || w.noise?.status === 'unresolved');
+const measured = noiseTaken.length;
+const resolved = noiseTaken.filter((w) => w.noise?.status === 'measured').length;
 summary.push(
   `   probe ran in ${probeWindows} of ${windowsSeen} windows, on ${PROBE_ROWS} held-out measurements`,
   '',
-  `Batch size: ${analysis.batchSizeAdvice(mon.windows().map((w) => w.network.noise_scale), BATCH_SIZE)}`,
-  `   (noise measured in ${measured} of ${windowsSeen} windows, taking ${((mon.noiseCost()?.ms ?? 0) / 1000).toFixed(1)} s of training time)`,
+  `Batch size: ${batchSizeAdvice(
+    mon.windows().map((w) => ({ step: w.step, value: w.network.noise_scale, low: w.noise?.status === 'unresolved' ? (w.noise.noise_scale_low ?? null) : null })),
+    BATCH_SIZE,
+    mon.windows().at(-1)?.step ?? null,
+  )}`,
+  `   (noise measured in ${measured} of ${windowsSeen} windows, ${resolved} of them resolved, taking ${((mon.noiseCost()?.ms ?? 0) / 1000).toFixed(1)} s of training time)`,
   '',
   `Stored ${mon.windows().length} windows of run ${mon.runId} in ${outPath}`,
   outPath.endsWith('.jsonl')

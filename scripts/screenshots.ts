@@ -65,7 +65,7 @@ try {
     await shot('runs.png', false);
 
     await page.goto(`${server.url}/#/run/${older.id}`);
-    await page.locator('[data-testid="info-section"] circle.info-point').first().waitFor();
+    await page.locator('[data-testid="info-section"] .info-point').first().waitFor();
     await page.waitForSelector('[data-testid="noise-chart"] canvas');
     await shot('run.png', false);
     await shot('run-full.png', true);

@@ -254,6 +254,7 @@ export class NoiseMeter {
       rows: groups * groupRows,
       population: rows.population,
       ms,
+      noise_scale_low: Number.isFinite(net.noise_scale_low) && net.noise_scale_low > 0 ? net.noise_scale_low : null,
     };
     return { sample, grams: { design, grams: compact } };
   }
@@ -354,7 +355,7 @@ export class NoiseMeter {
 }
 
 function skipped(status: NoiseSample['status'], reason: string): NoiseSample {
-  return { status, reason, groups: 0, group_rows: 0, rows: 0, population: null, ms: 0 };
+  return { status, reason, groups: 0, group_rows: 0, rows: 0, population: null, ms: 0, noise_scale_low: null };
 }
 
 /** The top-left k×k block of a stride×stride matrix. */

@@ -4,7 +4,7 @@
  */
 import uPlot from 'uplot';
 import { svg } from './dom.js';
-import { formatNumber, NETWORK_LABEL, stripTicks, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
+import { formatNumber, NETWORK_LABEL, settingText, stripTicks, tint, type InfoPlane, type InfoTrajectory, type PhaseName, type PhaseRow, type StepRange } from './model.js';
 import { NETWORK_STYLE, OKABE_ITO, PHASE_FILL, REFERENCE_GREY, layerStyle } from './palette.js';
 
 export const PHASE_WORDS: Record<PhaseName, string> = {
@@ -328,20 +328,32 @@ function niceTicks(max: number, count = 5): number[] {
 }
 
 /**
- * The information plane: I(X;T) across, I(T;Y) up, each layer's windows joined in step order. Windows whose
- * estimate is saturated are hollow grey rings joined by dotted grey lines: they are not measurements.
+ * The information plane: I(X;T) across, I(T;Y) up, each layer's probe windows as one path in step order.
+ * A marker's size and shade grow with its step (small and pale early, large and full late), the first
+ * window is a square and the last a triangle. Windows whose estimate is saturated are hollow grey markers
+ * joined by dotted grey lines: they are not measurements. Dashed grey lines mark the estimate's cap, log2 of
+ * the rows, and log2 of the classes, the most I(T;Y) can be.
  */
-export function drawInfoPlane(box: HTMLElement, trajectories: readonly InfoTrajectory[], width: number): void {
+export function drawInfoPlane(box: HTMLElement, plane: InfoPlane, width: number): void {
   const height = 380;
   const m = { left: 62, right: 16, top: 12, bottom: 46 };
   const pw = width - m.left - m.right;
   const ph = height - m.top - m.bottom;
-  const all = trajectories.flatMap((t) => t.points);
-  const xmax = Math.max(...all.map((p) => p.x), 1e-9) * 1.05;
-  const ymax = Math.max(...all.map((p) => p.y), 1e-9) * 1.05;
+  const all = plane.trajectories.flatMap((t) => t.points);
+  const xCap = plane.rows !== null && plane.rows > 1 ? Math.log2(plane.rows) : null;
+  const xmax = Math.max(...all.map((p) => p.x), xCap ?? 0, 1e-9) * 1.05;
+  const ymax = Math.max(...all.map((p) => p.y), plane.labelCeiling ?? 0, 1e-9) * 1.05;
   const X = (v: number): number => m.left + (pw * v) / xmax;
   const Y = (v: number): number => m.top + ph - (ph * v) / ymax;
-  const root = svg('svg', { width, height, viewBox: `0 0 ${width} ${height}`, role: 'img', 'aria-label': 'Information plane: input information against label information per layer' });
+  const pairwise = plane.estimator === 'pairwise';
+  const root = svg('svg', {
+    width,
+    height,
+    viewBox: `0 0 ${width} ${height}`,
+    role: 'img',
+    'data-estimator': plane.estimator,
+    'aria-label': `Information plane, ${pairwise ? 'pairwise' : 'binned'} estimate: input information against label information, one path per layer over training`,
+  });
   const axes = svg('g', { class: 'axes', 'font-size': 11, fill: '#333' });
   axes.append(svg('rect', { x: m.left, y: m.top, width: pw, height: ph, fill: 'none', stroke: '#bbb' }));
   for (const t of niceTicks(xmax)) {
@@ -355,67 +367,121 @@ export function drawInfoPlane(box: HTMLElement, trajectories: readonly InfoTraje
     svg(
       'text',
       { x: m.left + pw / 2, y: height - 8, 'text-anchor': 'middle', 'data-testid': 'plane-x-title' },
-      pw >= 460 ? 'I(X;T), bits: information the layer keeps about the input (binned estimate)' : 'I(X;T), bits: about the input',
+      pw >= 460 ? `I(X;T), bits: what the layer keeps about the input (${pairwise ? 'pairwise, noise added' : 'binned estimate'})` : 'I(X;T), bits: about the input',
     ),
     svg('text', { x: 14, y: m.top + ph / 2, 'text-anchor': 'middle', transform: `rotate(-90 14 ${m.top + ph / 2})` }, 'I(T;Y), bits: about the label'),
   );
   root.append(axes);
-  for (const t of trajectories) {
-    const style = layerStyle(t.index);
-    const g = svg('g', { class: 'info-layer', 'data-layer': t.label });
-    for (let i = 1; i < t.points.length; i++) {
-      const a = t.points[i - 1]!;
-      const b = t.points[i]!;
-      const sat = a.saturated || b.saturated;
-      g.append(
-        svg('line', {
-          class: sat ? 'info-link saturated' : 'info-link',
-          x1: X(a.x),
-          y1: Y(a.y),
-          x2: X(b.x),
-          y2: Y(b.y),
-          stroke: sat ? REFERENCE_GREY : style.stroke,
-          'stroke-width': sat ? 1 : 1.5,
-          'stroke-dasharray': sat ? '2 3' : style.dash.join(' '),
-        }),
-      );
-    }
-    for (const p of t.points) {
-      g.append(
-        svg(
-          'circle',
-          p.saturated
-            ? { class: 'info-point saturated', cx: X(p.x), cy: Y(p.y), r: 4, fill: '#ffffff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 }
-            : { class: 'info-point', cx: X(p.x), cy: Y(p.y), r: 3.5, fill: style.stroke, stroke: '#ffffff', 'stroke-width': 0.5 },
-          svg('title', {}, `${t.label} at step ${p.step}: I(X;T) ${formatNumber(p.x)} bits, I(T;Y) ${formatNumber(p.y)} bits${p.saturated ? ' (saturated: says nothing)' : ''}`),
-        ),
-      );
-    }
-    // The latest window: a larger ring, so the direction of travel reads.
-    const last = t.points[t.points.length - 1]!;
-    g.append(svg('circle', { class: 'info-last', cx: X(last.x), cy: Y(last.y), r: 7, fill: 'none', stroke: last.saturated ? REFERENCE_GREY : style.stroke, 'stroke-width': 1.5 }));
-    root.append(g);
+  // The caps, where they are known: nothing the estimate reads can lie past them.
+  const caps = svg('g', { class: 'info-caps', 'font-size': 10, fill: REFERENCE_GREY });
+  if (xCap !== null) {
+    caps.append(
+      svg('line', { class: 'info-cap', 'data-cap': 'rows', x1: X(xCap), x2: X(xCap), y1: m.top, y2: m.top + ph, stroke: REFERENCE_GREY, 'stroke-dasharray': '5 4' }, svg('title', {}, `log2 ${plane.rows} = ${formatNumber(xCap)} bits: the most the estimate can read over ${plane.rows} probe rows`)),
+      // Labelled at the foot: saturated windows sit at the top of this line, and would cover a label there.
+      svg('text', { x: X(xCap) - 4, y: m.top + ph - 6, 'text-anchor': 'end' }, `log2 ${plane.rows}`),
+    );
   }
+  if (plane.labelCeiling !== null) {
+    const y = Y(plane.labelCeiling);
+    caps.append(
+      svg('line', { class: 'info-cap', 'data-cap': 'classes', x1: m.left, x2: m.left + pw, y1: y, y2: y, stroke: REFERENCE_GREY, 'stroke-dasharray': '5 4' }, svg('title', {}, `log2 of the classes = ${formatNumber(plane.labelCeiling)} bits: the most I(T;Y) can be`)),
+      svg('text', { x: m.left + 4, y: y - 4 }, 'log2 classes'),
+    );
+  }
+  root.append(caps);
+  for (const t of plane.trajectories) root.append(layerPath(t, X, Y, pairwise));
   box.replaceChildren(root);
 }
 
-/** Legend of the information plane: one entry per layer, then the saturated mark. */
-export function infoLegend(trajectories: readonly InfoTrajectory[]): HTMLElement {
-  const ul = document.createElement('ul');
-  ul.className = 'legend';
-  for (const t of trajectories) {
-    const s = layerStyle(t.index);
-    const li = document.createElement('li');
-    li.append(svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('line', { x1: 0, x2: 26, y1: 6, y2: 6, stroke: s.stroke, 'stroke-width': 2, 'stroke-dasharray': s.dash.join(' ') }), svg('circle', { cx: 13, cy: 6, r: 3.5, fill: s.stroke })), ` ${t.label}`);
-    ul.append(li);
+/** One layer's path: its segments (saturated ones grey and dotted), then a marker per probe window. */
+function layerPath(t: InfoTrajectory, X: (v: number) => number, Y: (v: number) => number, pairwise: boolean): SVGGElement {
+  const style = layerStyle(t.index);
+  const g = svg('g', { class: 'info-layer', 'data-layer': t.label });
+  // One path per layer for the measured segments, one for those touching a saturated window.
+  let measured = '';
+  let saturated = '';
+  for (let i = 1; i < t.points.length; i++) {
+    const a = t.points[i - 1]!;
+    const b = t.points[i]!;
+    const seg = `M${X(a.x).toFixed(1)} ${Y(a.y).toFixed(1)}L${X(b.x).toFixed(1)} ${Y(b.y).toFixed(1)}`;
+    if (a.saturated || b.saturated) saturated += seg;
+    else measured += seg;
   }
-  const sat = document.createElement('li');
-  sat.append(svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 6, r: 4, fill: '#fff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 })), ' saturated: says nothing (every probe example had its own bin, so the estimate is at its ceiling)');
-  ul.append(sat);
-  const last = document.createElement('li');
-  last.append(svg('svg', { width: 26, height: 16, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 8, r: 7, fill: 'none', stroke: '#333', 'stroke-width': 1.5 })), ' latest window');
-  ul.append(last);
-  return ul;
+  if (measured !== '') {
+    g.append(svg('path', { class: 'info-path', 'data-layer': t.label, d: measured, fill: 'none', stroke: style.stroke, 'stroke-width': 1.5, 'stroke-dasharray': style.dash.join(' '), 'stroke-linejoin': 'round' }));
+  }
+  if (saturated !== '') {
+    g.append(svg('path', { class: 'info-path saturated', 'data-layer': t.label, d: saturated, fill: 'none', stroke: REFERENCE_GREY, 'stroke-width': 1, 'stroke-dasharray': '2 3' }));
+  }
+  const last = t.points.length - 1;
+  t.points.forEach((p, i) => {
+    const role = i === last ? (i === 0 ? 'start and end' : 'end') : i === 0 ? 'start' : '';
+    const cx = X(p.x);
+    const cy = Y(p.y);
+    // Size and shade follow the step: pale and small early, full colour and large late.
+    const r = 2.5 + 3.5 * p.age;
+    const paint = p.saturated ? { fill: '#ffffff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 } : { fill: tint(style.stroke, 0.75 * (1 - p.age)), stroke: style.stroke, 'stroke-width': 1.25 };
+    const cls = ['info-point', i === 0 ? 'info-start' : '', i === last ? 'info-end' : '', p.saturated ? 'saturated' : ''].filter((c) => c !== '').join(' ');
+    const data = { class: cls, 'data-step': p.step, 'data-x': p.x, 'data-y': p.y, ...paint };
+    const values = pairwise
+      ? `I(X;T) ${formatNumber(p.x)} bits${p.lower === null ? '' : ` (lower bound ${formatNumber(p.lower)})`}, I(T;Y) ${formatNumber(p.y)} bits${p.noiseVariance === null ? '' : `, σ² ${settingText(p.noiseVariance)}`}`
+      : `I(X;T) ${formatNumber(p.x)} bits, I(T;Y) ${formatNumber(p.y)} bits`;
+    const title = svg('title', {}, `${t.label}${role === '' ? '' : ` (${role})`} at step ${p.step}: ${values}${p.saturated ? ' (saturated: says nothing)' : ''}`);
+    if (i === last) {
+      // The end: a triangle of about the circle's area, a little larger so the latest window stands out.
+      const R = 1.6 * r + 1.5;
+      const d = `M${cx.toFixed(1)} ${(cy - R).toFixed(1)}L${(cx + 0.866 * R).toFixed(1)} ${(cy + R / 2).toFixed(1)}L${(cx - 0.866 * R).toFixed(1)} ${(cy + R / 2).toFixed(1)}Z`;
+      g.append(svg('path', { ...data, d }, title));
+    } else if (i === 0) {
+      // The start: a square, never smaller than 8 px across, so the earliest (smallest) marker still reads as one.
+      const h = Math.max(0.9 * r + 0.5, 4);
+      g.append(svg('rect', { ...data, x: (cx - h).toFixed(1), y: (cy - h).toFixed(1), width: (2 * h).toFixed(1), height: (2 * h).toFixed(1) }, title));
+    } else {
+      g.append(svg('circle', { ...data, cx, cy, r }, title));
+    }
+  });
+  return g;
+}
+
+const LEGEND_INK = '#333333';
+
+/** Legend of the information plane: a list of the layers, then one of what the markers' size, shapes and grey mean. */
+export function infoLegend(plane: InfoPlane): HTMLElement {
+  const list = (): HTMLUListElement => {
+    const ul = document.createElement('ul');
+    ul.className = 'legend';
+    return ul;
+  };
+  const item = (ul: HTMLUListElement, icon: SVGSVGElement, text: string): void => {
+    const li = document.createElement('li');
+    li.append(icon, ` ${text}`);
+    ul.append(li);
+  };
+  const layers = list();
+  for (const t of plane.trajectories) {
+    const s = layerStyle(t.index);
+    item(layers, svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('line', { x1: 0, x2: 26, y1: 6, y2: 6, stroke: s.stroke, 'stroke-width': 2, 'stroke-dasharray': s.dash.join(' ') }), svg('circle', { cx: 13, cy: 6, r: 3.5, fill: s.stroke })), t.label);
+  }
+  const marks = list();
+  const grow = svg('svg', { width: 40, height: 14, 'aria-hidden': 'true' });
+  [0, 0.5, 1].forEach((age, i) => grow.append(svg('circle', { cx: 6 + 14 * i, cy: 7, r: 2.5 + 3.5 * age, fill: tint(LEGEND_INK, 0.75 * (1 - age)), stroke: LEGEND_INK, 'stroke-width': 1 })));
+  item(marks, grow, 'later steps: larger and darker');
+  item(marks, svg('svg', { width: 16, height: 14, 'aria-hidden': 'true' }, svg('rect', { x: 3, y: 2, width: 10, height: 10, fill: tint(LEGEND_INK, 0.75), stroke: LEGEND_INK })), 'start (first probe window)');
+  item(marks, svg('svg', { width: 18, height: 16, 'aria-hidden': 'true' }, svg('path', { d: 'M9 1L16.8 14.5L1.2 14.5Z', fill: LEGEND_INK, stroke: LEGEND_INK })), 'end (latest probe window)');
+  if (plane.rows !== null || plane.labelCeiling !== null) {
+    item(marks, svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('line', { x1: 0, x2: 26, y1: 6, y2: 6, stroke: REFERENCE_GREY, 'stroke-width': 1, 'stroke-dasharray': '5 4' })), 'the most the estimate can read: log2 of the probe rows across, log2 of the classes up');
+  }
+  item(
+    marks,
+    svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 6, r: 4, fill: '#fff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 })),
+    plane.estimator === 'pairwise'
+      ? 'saturated: says nothing (every probe example stays apart through the added noise, so the estimate is at its ceiling)'
+      : 'saturated: says nothing (every probe example had its own bin, so the estimate is at its ceiling)',
+  );
+  const box = document.createElement('div');
+  box.className = 'plane-legend';
+  box.append(layers, marks);
+  return box;
 }
 
 /**

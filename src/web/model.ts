@@ -95,16 +95,21 @@ export function parseRoute(hash: string): Route {
   return { view: 'runs' };
 }
 
-/** The fragment with its step range replaced (or removed, for null); the rest of its query stays. */
-export function withRange(hash: string, range: StepRange | null): string {
+/** The fragment with one key of its query set (or removed, for null); the rest of its query stays. */
+function withQuery(hash: string, key: string, value: string | null): string {
   const h = hash.replace(/^#/, '');
   const i = h.indexOf('?');
   const path = i >= 0 ? h.slice(0, i) : h;
   const q = fragmentQuery(hash);
-  if (range === null) q.delete('steps');
-  else q.set('steps', `${Math.round(range.min)}-${Math.round(range.max)}`);
+  if (value === null) q.delete(key);
+  else q.set(key, value);
   const rest = q.toString().replace(/%2C/gi, ',');
   return `#${path}${rest === '' ? '' : `?${rest}`}`;
+}
+
+/** The fragment with its step range replaced (or removed, for null); the rest of its query stays. */
+export function withRange(hash: string, range: StepRange | null): string {
+  return withQuery(hash, 'steps', range === null ? null : `${Math.round(range.min)}-${Math.round(range.max)}`);
 }
 
 export function runHash(id: string): string {
@@ -371,50 +376,268 @@ export interface NoiseColumns {
   noise: (number | null)[];
   /** The window's mean batch size, null where unknown. */
   batch: (number | null)[];
+  /** Where a measurement did not resolve the noise scale: its lower bound (NoiseSample.noise_scale_low), else null. */
+  low: (number | null)[];
 }
 
 export function noiseColumns(windows: readonly WindowRecord[]): NoiseColumns {
   const ws = orderedWindows(windows);
-  return { steps: ws.map((w) => w.step), noise: ws.map((w) => positive(w.network.noise_scale)), batch: ws.map((w) => positive(w.batch_size)) };
+  return {
+    steps: ws.map((w) => w.step),
+    noise: ws.map((w) => positive(w.network.noise_scale)),
+    batch: ws.map((w) => positive(w.batch_size)),
+    low: ws.map((w) => (w.noise?.status === 'unresolved' ? positive(w.noise.noise_scale_low) : null)),
+  };
 }
 
 /** One sentence on what the recent fixed-weight noise scale implies for the batch size (analysis/batch-size-advice.ts). */
 export function noiseSentence(cols: NoiseColumns): string {
   const batch = [...cols.batch].reverse().find((b) => b !== null) ?? null;
-  return batchSizeAdvice(cols.noise, batch);
+  const readings = cols.steps.map((step, i) => ({ step, value: cols.noise[i] ?? null, low: cols.low[i] ?? null }));
+  return batchSizeAdvice(readings, batch, cols.steps.length === 0 ? null : cols.steps[cols.steps.length - 1]!);
 }
+
+// ---------------------------------------------------------------------------------------------
+// The information plane: each layer's path over the probe windows, under one estimator at a time.
+
+/**
+ * The estimate the plane shows: `pairwise`, the Kolchinsky & Tracey (2017) pairwise-distance estimate of the
+ * layer plus Gaussian noise (mi_input_upper across, mi_label_pairwise up), or `binned`, the plug-in estimate
+ * of the binned layer (mi_input across, mi_label up), the classic picture.
+ */
+export type PlaneEstimator = 'pairwise' | 'binned';
 
 export interface InfoPoint {
   step: number;
-  /** mi_input, bits. */
+  /** I(X;T), bits: mi_input_upper (pairwise) or mi_input (binned). */
   x: number;
-  /** mi_label, bits. */
+  /** I(T;Y), bits: mi_label_pairwise (pairwise) or mi_label (binned). */
   y: number;
+  /** The estimate says nothing here: mi_bounds_saturated (pairwise) or mi_saturated (binned) is 1. */
   saturated: boolean;
+  /** Pairwise: the Bhattacharyya-based lower bound on I(X;T), bits; null for binned or when not stored. */
+  lower: number | null;
+  /** Pairwise: σ² of the noise added to this layer in this window (mi_noise_variance); null when not stored. */
+  noiseVariance: number | null;
+  /** Where the step lies between the plane's first and last probe step, from 0 to 1 on a log scale: what the marker's size and shade show. */
+  age: number;
 }
 
 export interface InfoTrajectory {
   label: string;
   /** Layer index in the run, for its colour. */
   index: number;
+  /** In step order: the first is the path's start, the last its end. */
   points: InfoPoint[];
 }
 
-/** Per layer, the probe's (mi_input, mi_label) in step order; layers with no probe value are left out. Empty when no probe ran. */
-export function infoTrajectories(layerNames: readonly string[], windows: readonly WindowRecord[]): InfoTrajectory[] {
+/** The values of one estimator in a layer-window, or null when the window does not hold both of its pair. */
+function planePair(s: LayerStats | undefined, estimator: PlaneEstimator): Omit<InfoPoint, 'step' | 'age'> | null {
+  if (s === undefined) return null;
+  if (estimator === 'binned') {
+    const x = finite(s.mi_input);
+    const y = finite(s.mi_label);
+    return x === null || y === null ? null : { x, y, saturated: s.mi_saturated === 1, lower: null, noiseVariance: null };
+  }
+  const x = finite(s.mi_input_upper);
+  const y = finite(s.mi_label_pairwise);
+  return x === null || y === null ? null : { x, y, saturated: s.mi_bounds_saturated === 1, lower: finite(s.mi_input_lower), noiseVariance: positive(s.mi_noise_variance) };
+}
+
+/**
+ * Per layer, one estimator's (I(X;T), I(T;Y)) in step order; layers with no such value are left out, so the
+ * list is empty when no probe ran. Every point's `age` is measured on the steps of all layers together, so a
+ * step has the same marker in every layer.
+ */
+export function infoTrajectories(layerNames: readonly string[], windows: readonly WindowRecord[], estimator: PlaneEstimator = 'binned'): InfoTrajectory[] {
   const ws = orderedWindows(windows);
   const out: InfoTrajectory[] = [];
   layerNames.forEach((label, index) => {
     const points: InfoPoint[] = [];
     for (const w of ws) {
-      const s = w.layers[label];
-      const x = finite(s?.mi_input);
-      const y = finite(s?.mi_label);
-      if (x !== null && y !== null) points.push({ step: w.step, x, y, saturated: s?.mi_saturated === 1 });
+      const pair = planePair(w.layers[label], estimator);
+      if (pair !== null) points.push({ step: w.step, ...pair, age: 0 });
     }
     if (points.length > 0) out.push({ label, index, points });
   });
+  const steps = out.flatMap((t) => t.points.map((p) => p.step));
+  const lo = Math.log(Math.min(...steps));
+  const span = Math.log(Math.max(...steps)) - lo;
+  // One probe step in all: it is the start and the end at once, drawn at full size.
+  for (const t of out) for (const p of t.points) p.age = span > 0 ? (Math.log(p.step) - lo) / span : 1;
   return out;
+}
+
+/** What the run's config.probe says about the plane's two estimators; null where it does not say (older or imported runs). */
+export interface PlaneSettings {
+  /** Equal-width bins per unit of the binned estimate. */
+  bins: number | null;
+  /** Probe rows (the binned estimate's). */
+  rows: number | null;
+  /** Bits within which the binned H(T) of log2(rows) counts as saturated. */
+  marginBits: number | null;
+  /** The pairwise estimate's settings; null when the config records none (the bounds turned off, or a run before them). */
+  pairwise: {
+    /** One absolute σ² for every layer, when the probe used one. */
+    noiseVariance: number | null;
+    /** σ² as a share of each layer's spread (the total variance of its activations), when the probe scaled the noise to the layer. */
+    relative: number | null;
+    /** Rows entering the pairwise estimate: the estimate is at most log2 of it. */
+    rows: number | null;
+  } | null;
+  /** Label classes (bins of a regression target): I(T;Y) ≤ H(Y) ≤ log2 of it. */
+  classes: number | null;
+}
+
+const record = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
+const numberOrNull = (v: unknown): number | null => (typeof v === 'number' && Number.isFinite(v) ? v : null);
+
+/**
+ * Reads config.probe defensively (the shape the probe's describe() writes): `binned.bins`, `rows`,
+ * `binned.saturation_margin_bits`, `bounds.noise_variance` (an absolute σ²), `bounds.noise_ratio` (σ² as a share
+ * of each layer's spread), `bounds.rows` and `labels.classes`.
+ */
+export function planeSettings(config: Record<string, unknown>): PlaneSettings {
+  const p = record(config.probe) ?? {};
+  const binned = record(p.binned) ?? {};
+  const bounds = record(p.bounds);
+  return {
+    bins: numberOrNull(binned.bins),
+    rows: numberOrNull(p.rows),
+    marginBits: numberOrNull(binned.saturation_margin_bits),
+    pairwise: bounds === null ? null : { noiseVariance: numberOrNull(bounds.noise_variance), relative: numberOrNull(bounds.noise_ratio), rows: numberOrNull(bounds.rows) },
+    classes: numberOrNull(record(p.labels)?.classes),
+  };
+}
+
+export const NO_PLANE_SETTINGS: PlaneSettings = { bins: null, rows: null, marginBits: null, pairwise: null, classes: null };
+
+export interface InfoPlane {
+  /** The estimator drawn. */
+  estimator: PlaneEstimator;
+  /** The one asked for (the URL's); the other is drawn when the run's windows do not hold this one. */
+  requested: PlaneEstimator;
+  /** Whether any probe window of the run holds each estimator's pair. */
+  available: Record<PlaneEstimator, boolean>;
+  trajectories: InfoTrajectory[];
+  /** Layer-windows that hold the other estimator but not the one drawn (older windows of a run, say): not drawn. */
+  left: number;
+  /** Rows the drawn estimate was computed over (at most log2 of it, in bits); null when unknown. */
+  rows: number | null;
+  /** I(T;Y) is at most log2(classes), bits; null when the number of classes is unknown. */
+  labelCeiling: number | null;
+}
+
+/**
+ * The plane as drawn: the estimator asked for when the run's probe windows hold it, else the other one (a
+ * run recorded before the pairwise estimate, or with the bounds turned off, falls back to binned).
+ */
+export function infoPlane(layerNames: readonly string[], windows: readonly WindowRecord[], requested: PlaneEstimator = 'pairwise', settings: PlaneSettings = NO_PLANE_SETTINGS): InfoPlane {
+  const other: PlaneEstimator = requested === 'pairwise' ? 'binned' : 'pairwise';
+  const holds = { pairwise: 0, binned: 0, otherOnly: { pairwise: 0, binned: 0 } };
+  let binnedRows: number | null = null;
+  for (const w of orderedWindows(windows)) {
+    for (const label of layerNames) {
+      const s = w.layers[label];
+      const p = planePair(s, 'pairwise') !== null;
+      const b = planePair(s, 'binned') !== null;
+      if (p) holds.pairwise++;
+      if (b) holds.binned++;
+      if (p && !b) holds.otherOnly.pairwise++;
+      if (b && !p) holds.otherOnly.binned++;
+      const r = positive(s?.probe_rows);
+      if (b && r !== null) binnedRows = Math.max(binnedRows ?? 0, r);
+    }
+  }
+  const available = { pairwise: holds.pairwise > 0, binned: holds.binned > 0 };
+  const estimator = available[requested] || !available[other] ? requested : other;
+  const rows = estimator === 'pairwise' ? (settings.pairwise?.rows ?? null) : (binnedRows ?? settings.rows);
+  return {
+    estimator,
+    requested,
+    available,
+    trajectories: infoTrajectories(layerNames, windows, estimator),
+    // Windows holding only the estimator not drawn (e.g. binned values in windows before the pairwise one was recorded).
+    left: holds.otherOnly[estimator === 'pairwise' ? 'binned' : 'pairwise'],
+    rows,
+    labelCeiling: settings.classes !== null && settings.classes >= 2 ? Math.log2(settings.classes) : null,
+  };
+}
+
+/** `plane=binned` in the fragment's query: the run view's plane shows the binned estimate; pairwise otherwise. */
+export function planeOf(hash: string): PlaneEstimator {
+  return fragmentQuery(hash).get('plane') === 'binned' ? 'binned' : 'pairwise';
+}
+
+/** The fragment with the plane's estimator set (the default, pairwise, leaves no trace); the rest of its query stays. */
+export function withPlane(hash: string, estimator: PlaneEstimator): string {
+  return withQuery(hash, 'plane', estimator === 'pairwise' ? null : estimator);
+}
+
+/** Shown with the plane: what its numbers are and are not. */
+export const PLANE_CAUTION =
+  'Both estimators give estimates that depend on their settings (bins, σ², probe rows): read the shape of a path rather than exact values, and compare runs only at the same settings. ' +
+  'Whether a layer compresses depends on its activation and need not happen with ReLU (Saxe et al. 2018); confirm any decision on held-out data.';
+
+/** A setting in three significant digits without trailing zeros (σ² 0.0625, a ratio 0.2); very large or small values as formatNumber gives them. */
+export function settingText(v: number): string {
+  const a = Math.abs(v);
+  return Number.isFinite(v) && (a === 0 || (a >= 1e-3 && a < 1e6)) ? String(Number(v.toPrecision(3))) : formatNumber(v);
+}
+
+const bitsText = (rows: number): string => `log2 ${formatNumber(rows)} = ${formatNumber(Math.log2(rows))} bits`;
+
+/** The σ² of the pairwise estimate in words: what the windows stored per layer, else the config's absolute value. */
+function noiseText(plane: InfoPlane, settings: PlaneSettings): string {
+  const stored = plane.trajectories.flatMap((t) => t.points.map((p) => p.noiseVariance)).filter((v): v is number => v !== null);
+  const relative = settings.pairwise?.relative ?? null;
+  const scale = relative === null ? '' : ` (${settingText(relative)} × the layer's spread, the total variance of its activations)`;
+  if (stored.length > 0) {
+    const lo = Math.min(...stored);
+    const hi = Math.max(...stored);
+    return lo === hi ? `σ² = ${settingText(lo)}${scale}` : `σ² = ${settingText(lo)} to ${settingText(hi)} across layers and windows${scale}`;
+  }
+  const absolute = settings.pairwise?.noiseVariance ?? null;
+  if (absolute !== null) return `σ² = ${settingText(absolute)} (one absolute value for every layer)`;
+  if (relative !== null) return `σ² = ${settingText(relative)} × the layer's spread (the total variance of its activations)`;
+  return 'σ² not recorded';
+}
+
+/** One sentence naming the drawn estimator and its settings, after a word on a fallback or on windows left out. */
+export function planeSentence(plane: InfoPlane, settings: PlaneSettings): string {
+  const parts: string[] = [];
+  if (plane.estimator !== plane.requested) {
+    parts.push(
+      plane.estimator === 'binned'
+        ? 'This run\'s probe windows hold no pairwise estimate (recorded before it, or with the bounds turned off), so the plane shows the binned one.'
+        : 'This run\'s probe windows hold no binned estimate, so the plane shows the pairwise one.',
+    );
+  }
+  const n = plane.rows;
+  if (plane.estimator === 'pairwise') {
+    parts.push(
+      `Kolchinsky–Tracey pairwise estimate with Gaussian noise ${noiseText(plane, settings)} over ${n === null ? 'the probe rows' : `${formatNumber(n)} probe rows`}; ` +
+        `an estimate of a noise-regularised quantity, capped at ${n === null ? 'log2 of the rows' : bitsText(n)}. ` +
+        'Across: the KL-based estimate of I(X;T); up: the matching estimate of I(T;Y).',
+    );
+  } else {
+    const bins = settings.bins === null ? 'equal-width bins' : `${settingText(settings.bins)} equal-width bins per unit`;
+    const margin = String(settings.marginBits ?? 0.1);
+    parts.push(
+      `Binned plug-in estimate with ${bins} over ${n === null ? 'the probe rows' : `${formatNumber(n)} probe rows`}, capped at ${n === null ? 'log2 of the rows' : bitsText(n)}; ` +
+        `a window is saturated (a hollow grey ring) when H(T) is within ${margin} bit of that cap: every probe example has its own bin and the value says nothing.`,
+    );
+  }
+  if (plane.left > 0) parts.push(`${plane.left} layer-window${plane.left === 1 ? '' : 's'} without this estimate ${plane.left === 1 ? 'is' : 'are'} not drawn.`);
+  return parts.join(' ');
+}
+
+/** A colour mixed with white: `share` 0 keeps it, 1 gives white. The plane's early points are paler. */
+export function tint(hex: string, share: number): string {
+  const m = /^#([0-9a-f]{2})([0-9a-f]{2})([0-9a-f]{2})$/i.exec(hex);
+  if (m === null) return hex;
+  const k = Math.min(Math.max(share, 0), 1);
+  return `#${[m[1]!, m[2]!, m[3]!].map((c) => Math.round(parseInt(c, 16) + (255 - parseInt(c, 16)) * k).toString(16).padStart(2, '0')).join('')}`;
 }
 
 /** Windows of a run with more added (a live window, a backfill, the detail of a zoomed range): one per step, in step order. */

@@ -13,15 +13,21 @@ import {
   detailsText,
   floorEnd,
   formatNumber,
-  infoTrajectories,
+  infoPlane,
   latestAdvice,
   lossColumns,
   levelColumns,
   noiseColumns,
   noiseSentence,
   phaseRows,
+  planeOf,
+  planeSentence,
+  planeSettings,
+  PLANE_CAUTION,
   snrColumns,
   travelColumns,
+  withPlane,
+  type PlaneEstimator,
   type StepRange,
 } from './model.js';
 import { NETWORK_STYLE, REFERENCE_GREY, VAL_LOSS_STYLE } from './palette.js';
@@ -94,14 +100,33 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const infoSection = el('section', { class: 'info', 'data-testid': 'info-section', hidden: '' });
   const infoBox = el('div', { class: 'plane', 'data-testid': 'info-chart' });
   const infoLegendBox = el('div');
+  // The estimator shown: pairwise unless the URL asks for binned (`plane=binned`, kept like `steps=`).
+  let estimator: PlaneEstimator = planeOf(location.hash);
+  const choice = (value: PlaneEstimator, text: string): { label: HTMLLabelElement; input: HTMLInputElement } => {
+    const input = el('input', { type: 'radio', name: 'plane-estimator', value, 'data-testid': `plane-${value}` });
+    input.checked = value === estimator;
+    input.addEventListener('change', () => {
+      if (!input.checked) return;
+      estimator = value;
+      const hash = withPlane(location.hash, value);
+      if (hash !== location.hash) history.replaceState(null, '', `${location.pathname}${location.search}${hash}`);
+      drawInfo();
+    });
+    return { label: el('label', {}, input, ` ${text}`), input };
+  };
+  const pairwiseChoice = choice('pairwise', 'pairwise (Kolchinsky–Tracey, with added noise)');
+  const binnedChoice = choice('binned', 'binned (the classic picture)');
+  const infoSentence = el('p', { class: 'plane-sentence', 'data-testid': 'plane-sentence', 'aria-live': 'polite' });
   infoSection.append(
     el('h3', {}, 'Information plane (probe windows)'),
     el(
       'p',
       { class: 'note' },
-      'Per layer, the binned estimate of how much its activations say about the input (across) and about the label (up), joined in step order. ' +
-        'Hollow grey rings are windows where the estimate is saturated: says nothing, they are not measurements. Binned estimates depend on the bin count; read shapes, not exact values.',
+      'Per layer, an estimate of how much its activations say about the input (across) and about the label (up), one path per layer in step order from its first probe window to its latest.',
     ),
+    el('fieldset', { class: 'plane-choice', 'data-testid': 'plane-choice' }, el('legend', {}, 'Estimator'), pairwiseChoice.label, binnedChoice.label),
+    infoSentence,
+    el('p', { class: 'caution' }, PLANE_CAUTION),
     infoLegendBox,
     infoBox,
   );
@@ -299,16 +324,26 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     }));
   };
 
-  const drawInfo = (): void => {
-    const traj = infoTrajectories(layerNames(), windows());
-    if (traj.length === 0) {
+  function drawInfo(): void {
+    const settings = planeSettings(feed?.info?.config ?? {});
+    const plane = infoPlane(layerNames(), windows(), estimator, settings);
+    if (plane.trajectories.length === 0) {
       infoSection.hidden = true;
       return;
     }
     infoSection.hidden = false;
-    infoLegendBox.replaceChildren(infoLegend(traj));
-    drawInfoPlane(infoBox, traj, Math.max(280, Math.min(infoSection.clientWidth || 900, 900)));
-  };
+    infoSection.dataset.estimator = plane.estimator;
+    // The radios tell what is drawn; one whose estimator the run's windows lack cannot be chosen.
+    pairwiseChoice.input.disabled = !plane.available.pairwise;
+    binnedChoice.input.disabled = !plane.available.binned;
+    pairwiseChoice.input.checked = plane.estimator === 'pairwise';
+    binnedChoice.input.checked = plane.estimator === 'binned';
+    // Set only when it changes: the line is read out (aria-live) when the estimator changes, not at every live window.
+    const sentence = planeSentence(plane, settings);
+    if (infoSentence.textContent !== sentence) infoSentence.textContent = sentence;
+    infoLegendBox.replaceChildren(infoLegend(plane));
+    drawInfoPlane(infoBox, plane, Math.max(280, Math.min(infoSection.clientWidth || 900, 900)));
+  }
 
   const drawSeries = (): void => {
     drawSnr();

@@ -37,6 +37,8 @@ interface Check {
   scope: string;
   exact: number;
   measured: number | null;
+  /** The measurement's lower bound on the network's noise scale (NoiseSample.noise_scale_low); null on layers. */
+  low: number | null;
   windowed: number;
   /** grad_diff_norm² (consecutive minibatch differences) over the exact tr Σ/B: the phase detector's yardstick. */
   diffRatio: number;
@@ -68,7 +70,8 @@ async function run(lr: number, epochs: number, at: number[]): Promise<Check[]> {
       const s = scope === 'network' ? w.network : w.layers[scope]!;
       const e = scope === 'network' ? exact.network : exact.layers[scope]!;
       const traceOverB = e.traceSigma / BATCH;
-      checks.push({ step: w.step, scope, exact: e.bSimple, measured: s.noise_scale, windowed: windowedEstimate(w, s), diffRatio: (s.grad_diff_norm ?? Number.NaN) ** 2 / traceOverB });
+      const low = scope === 'network' ? (w.noise.noise_scale_low ?? null) : null;
+      checks.push({ step: w.step, scope, exact: e.bSimple, measured: s.noise_scale, low, windowed: windowedEstimate(w, s), diffRatio: (s.grad_diff_norm ?? Number.NaN) ** 2 / traceOverB });
     }
     report.push(
       `lr ${lr} step ${w.step}: ${w.noise.groups} groups of ${w.noise.group_rows} rows (${w.noise.ms.toFixed(0)} ms); ` +
@@ -88,6 +91,12 @@ async function run(lr: number, epochs: number, at: number[]): Promise<Check[]> {
 }
 
 function expectWithinFactor(checks: Check[], factor: number): void {
+  // The lower bound an unresolved measurement reports is below the exact value (it is tr Σ over |G|² plus two
+  // standard errors); checked here on the resolved ones, where the exact value is at hand.
+  for (const c of checks.filter((x) => x.scope === 'network')) {
+    expect(c.low, `step ${c.step}: no lower bound`).not.toBeNull();
+    expect(c.low!, `step ${c.step}: lower bound ${c.low}, exact ${c.exact}`).toBeLessThan(c.exact);
+  }
   for (const c of checks) {
     expect(c.measured, `step ${c.step} ${c.scope}: no value (exact ${c.exact})`).not.toBeNull();
     const ratio = c.measured! / c.exact;

@@ -15,8 +15,15 @@ import {
   windowsIn,
   withRange,
   decodeJson,
+  infoPlane,
   infoTrajectories,
   latestAdvice,
+  planeOf,
+  planeSentence,
+  planeSettings,
+  settingText,
+  tint,
+  withPlane,
   lossColumns,
   mergeRuns,
   noiseColumns,
@@ -229,7 +236,8 @@ describe('page model', () => {
     const set = (v: (number | null)[], batch: number | null) => ws.map((w, i) => ({ ...w, batch_size: batch, network: { ...w.network, noise_scale: v[i] ?? null } }));
     const high = noiseSentence(noiseColumns(set([1, 500, 400, 300, 200, 100], 32)));
     expect(high).toContain('McCandlish et al. 2018');
-    expect(high).toContain('about 300 examples');
+    // Steps 8–48: the latest stretch is steps ≥ 24, whose values 400, 300, 200, 100 have the median 250.
+    expect(high).toContain('Median of the last 4 measurements (steps 24–48): about 250 examples');
     expect(high).toContain('above the batch size of 32');
     expect(high).toMatch(/estimate/);
     expect(noiseSentence(noiseColumns(set([10, 10, 10, 10, 10, 10], 64)))).toContain('below the batch size of 64');
@@ -238,6 +246,11 @@ describe('page model', () => {
     expect(noiseSentence(noiseColumns(set([5, 5, 5, 5, 5, 5], null)))).toContain('batch size is unknown');
     const cols = noiseColumns(set([-1, 0, 3, null, 5, 6], 32));
     expect(cols.noise).toEqual([null, null, 3, null, 5, 6]);
+    // An unresolved latest measurement is read as its lower bound, not skipped for an earlier value.
+    const unresolved = set([10, 10, 10, 10, 10, null], 32).map((w, i) => (i === 5 ? { ...w, noise: { status: 'unresolved' as const, reason: 'lost in the noise', groups: 8, group_rows: 64, rows: 512, population: 3200, ms: 30, noise_scale_low: 700 } } : w));
+    const lowCols = noiseColumns(unresolved);
+    expect(lowCols.low).toEqual([null, null, null, null, null, 700]);
+    expect(noiseSentence(lowCols)).toContain('the noise scale is above about 700 examples, well above the batch size of 32');
   });
 
   it('collects the information trajectory per layer in step order, flagging saturated windows', () => {
@@ -257,7 +270,12 @@ describe('page model', () => {
     expect(t[0]!.index).toBe(1);
     expect(t[0]!.points.map((p) => p.step)).toEqual([8, 16, 24, 32]);
     expect(t[0]!.points.map((p) => p.saturated)).toEqual([true, false, false, false]);
-    expect(t[0]!.points[2]).toEqual({ step: 24, x: 3, y: 0.2 * 1, saturated: false });
+    // Binned points carry no pairwise extras; the age of step 24 between steps 8 and 32 on a log scale is
+    // ln(24/8)/ln(32/8) = log4(3) = 0.792481 (worked by hand).
+    expect(t[0]!.points[2]).toMatchObject({ step: 24, x: 3, y: 0.2, saturated: false, lower: null, noiseVariance: null });
+    expect(t[0]!.points[2]!.age).toBeCloseTo(0.792481, 6);
+    expect(t[0]!.points.map((p) => p.age)[0]).toBe(0);
+    expect(t[0]!.points.map((p) => p.age)[3]).toBe(1);
   });
 
   it('merges windows by step in step order, keeping the first copy, and counts those in a range', () => {
@@ -347,3 +365,207 @@ describe('levelColumns', () => {
   });
 });
 
+
+describe('information plane model', () => {
+  const run = fakeRun({ id: 'plane' });
+  const names = run.layers.map((l) => l.name);
+  /** What the probe's describe() writes into config.probe, with the noise scaled to each layer. */
+  const config = {
+    probe: {
+      rows: 1024,
+      every: 'auto',
+      budget: 0.03,
+      labels: { kind: 'classes', classes: 3 },
+      binned: { estimator: 'binned-plugin', bins: 30, saturation_margin_bits: 0.1 },
+      bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_variance: null, noise_ratio: 0.2, rows: 512 },
+    },
+  };
+  type Probe = Partial<Record<'mi_input' | 'mi_label' | 'mi_saturated' | 'mi_input_upper' | 'mi_input_lower' | 'mi_label_pairwise' | 'mi_bounds_saturated' | 'mi_noise_variance' | 'probe_rows', number>>;
+  /** Windows at steps 8, 16, …, 40; `probe[i][layer]` joins window i's layer (the third layer is never probed). */
+  const windowsWith = (probe: Record<number, Record<string, Probe>>) =>
+    fakeWindows(run, 5, 1, false).map((w, i) => ({
+      ...w,
+      layers: Object.fromEntries(Object.entries(w.layers).map(([name, s]) => [name, { ...s, ...(probe[i]?.[name] ?? {}) }])),
+    }));
+  // The demo's picture in small: the wide hidden layer's binned estimate saturated at log2 1024 = 10 bits in every
+  // probe window, its pairwise estimate moving; the second layer's pairwise estimate saturated in the first window.
+  const hidden = (upper: number, lower: number, label: number, variance: number): Probe => ({
+    mi_input: 10,
+    mi_label: 1.5,
+    mi_saturated: 1,
+    probe_rows: 1024,
+    mi_input_upper: upper,
+    mi_input_lower: lower,
+    mi_label_pairwise: label,
+    mi_bounds_saturated: 0,
+    mi_noise_variance: variance,
+  });
+  const out = (x: number, y: number, upper: number, label: number, sat: number): Probe => ({
+    mi_input: x,
+    mi_label: y,
+    mi_saturated: 0,
+    probe_rows: 1000,
+    mi_input_upper: upper,
+    mi_input_lower: upper - 1,
+    mi_label_pairwise: label,
+    mi_bounds_saturated: sat,
+    mi_noise_variance: 0.5,
+  });
+  const probed = windowsWith({
+    0: { dense_Dense1: hidden(6.5, 5, 0.5, 0.04), dense_Dense2: out(3, 0.25, 9, 0.1, 1) },
+    2: { dense_Dense1: hidden(5.75, 4.5, 1, 0.05), dense_Dense2: out(2.5, 0.75, 4, 0.9, 0) },
+    4: { dense_Dense1: hidden(5.25, 4, 1.25, 0.0625), dense_Dense2: out(2, 1, 3.5, 1.2, 0) },
+  });
+
+  it('reads the estimators and their settings from config.probe, and null where it does not say', () => {
+    expect(planeSettings(config)).toEqual({ bins: 30, rows: 1024, marginBits: 0.1, pairwise: { noiseVariance: null, relative: 0.2, rows: 512 }, classes: 3 });
+    expect(planeSettings({})).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, classes: null });
+    // Bounds turned off (boundRows 0) write bounds: null; values of the wrong type are not taken.
+    expect(planeSettings({ probe: { rows: '1024', binned: { bins: Number.NaN }, bounds: null, labels: [] } })).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, classes: null });
+    expect(planeSettings({ probe: { bounds: { noise_variance: 0.1, rows: 256 } } }).pairwise).toEqual({ noiseVariance: 0.1, relative: null, rows: 256 });
+  });
+
+  it('plots the pairwise estimate by default: mi_input_upper across, mi_label_pairwise up, its own saturation flag', () => {
+    const plane = infoPlane(names, [probed[4]!, probed[0]!, probed[2]!, probed[1]!], 'pairwise', planeSettings(config));
+    expect(plane.estimator).toBe('pairwise');
+    expect(plane.requested).toBe('pairwise');
+    expect(plane.available).toEqual({ pairwise: true, binned: true });
+    expect(plane.left).toBe(0);
+    // The pairwise estimate is capped at log2 of the bound's rows (512), not of the probe's 1024.
+    expect(plane.rows).toBe(512);
+    expect(plane.labelCeiling).toBeCloseTo(1.5849625, 6); // log2 3, from memory
+    // The never-probed third layer is left out; the others keep their index (their colour).
+    expect(plane.trajectories.map((t) => [t.label, t.index])).toEqual([
+      ['dense_Dense1', 0],
+      ['dense_Dense2', 1],
+    ]);
+    const [a, b] = plane.trajectories;
+    expect(a!.points.map((p) => p.step)).toEqual([8, 24, 40]);
+    expect(a!.points.map((p) => p.x)).toEqual([6.5, 5.75, 5.25]);
+    expect(a!.points.map((p) => p.y)).toEqual([0.5, 1, 1.25]);
+    expect(a!.points.map((p) => p.lower)).toEqual([5, 4.5, 4]);
+    expect(a!.points.map((p) => p.noiseVariance)).toEqual([0.04, 0.05, 0.0625]);
+    // The binned saturation of the hidden layer does not mark its pairwise points; the bounds' own flag does.
+    expect(a!.points.map((p) => p.saturated)).toEqual([false, false, false]);
+    expect(b!.points.map((p) => p.saturated)).toEqual([true, false, false]);
+    expect(b!.points.map((p) => p.x)).toEqual([9, 4, 3.5]);
+    // Start and end: age 0 at the first probe step, 1 at the last; step 24 between 8 and 40 on a log scale is
+    // ln 3 / ln 5 = 0.682606 (worked by hand), the same in both layers.
+    expect(a!.points.map((p) => p.age)).toEqual([0, expect.closeTo(0.682606, 6), 1]);
+    expect(b!.points.map((p) => p.age)).toEqual(a!.points.map((p) => p.age));
+  });
+
+  it('plots the binned pair when asked, with the binned saturation flag and rows', () => {
+    const plane = infoPlane(names, probed, 'binned', planeSettings(config));
+    expect(plane.estimator).toBe('binned');
+    expect(plane.rows).toBe(1024); // the largest probe_rows of a drawn window
+    const [a, b] = plane.trajectories;
+    expect(a!.points.map((p) => [p.x, p.y, p.saturated])).toEqual([
+      [10, 1.5, true],
+      [10, 1.5, true],
+      [10, 1.5, true],
+    ]);
+    expect(b!.points.map((p) => [p.x, p.y, p.saturated, p.lower, p.noiseVariance])).toEqual([
+      [3, 0.25, false, null, null],
+      [2.5, 0.75, false, null, null],
+      [2, 1, false, null, null],
+    ]);
+  });
+
+  it('falls back to the binned pair for windows without the pairwise one, and says so', () => {
+    const binnedOnly = windowsWith({ 1: { dense_Dense2: { mi_input: 4, mi_label: 0.5, mi_saturated: 0, probe_rows: 256 } }, 3: { dense_Dense2: { mi_input: 3, mi_label: 0.75, mi_saturated: 0, probe_rows: 256 } } });
+    const settings = planeSettings({ probe: { rows: 256, binned: { bins: 12 }, bounds: null } });
+    const plane = infoPlane(names, binnedOnly, 'pairwise', settings);
+    expect(plane.requested).toBe('pairwise');
+    expect(plane.estimator).toBe('binned');
+    expect(plane.available).toEqual({ pairwise: false, binned: true });
+    expect(plane.trajectories.map((t) => t.points.map((p) => [p.step, p.x, p.y]))).toEqual([
+      [
+        [16, 4, 0.5],
+        [32, 3, 0.75],
+      ],
+    ]);
+    expect(planeSentence(plane, settings)).toBe(
+      "This run's probe windows hold no pairwise estimate (recorded before it, or with the bounds turned off), so the plane shows the binned one. " +
+        'Binned plug-in estimate with 12 equal-width bins per unit over 256 probe rows, capped at log2 256 = 8 bits; ' +
+        'a window is saturated (a hollow grey ring) when H(T) is within 0.1 bit of that cap: every probe example has its own bin and the value says nothing.',
+    );
+    // The other way round: asked for binned, a run holding only the pairwise pair shows that.
+    const pairwiseOnly = windowsWith({ 2: { dense_Dense1: { mi_input_upper: 3, mi_label_pairwise: 0.5, mi_bounds_saturated: 0 } } });
+    const other = infoPlane(names, pairwiseOnly, 'binned');
+    expect(other.estimator).toBe('pairwise');
+    expect(planeSentence(other, planeSettings({}))).toMatch(/^This run's probe windows hold no binned estimate, so the plane shows the pairwise one\. Kolchinsky–Tracey/);
+    // No probe at all: nothing to draw, and the estimator asked for stays.
+    const none = infoPlane(names, windowsWith({}), 'pairwise');
+    expect(none.trajectories).toEqual([]);
+    expect(none.estimator).toBe('pairwise');
+    expect(none.available).toEqual({ pairwise: false, binned: false });
+  });
+
+  it('leaves out, and counts, the windows that hold only the other estimator', () => {
+    // The first probe window predates the pairwise estimate (binned only); the later ones hold both.
+    const mixed = windowsWith({
+      0: { dense_Dense1: { mi_input: 10, mi_label: 1.5, mi_saturated: 1 }, dense_Dense2: { mi_input: 3, mi_label: 0.25, mi_saturated: 0 } },
+      2: { dense_Dense1: hidden(5.75, 4.5, 1, 0.05), dense_Dense2: out(2.5, 0.75, 4, 0.9, 0) },
+      4: { dense_Dense1: hidden(5.25, 4, 1.25, 0.0625), dense_Dense2: out(2, 1, 3.5, 1.2, 0) },
+    });
+    const plane = infoPlane(names, mixed, 'pairwise', planeSettings(config));
+    expect(plane.estimator).toBe('pairwise');
+    expect(plane.left).toBe(2);
+    expect(plane.trajectories.map((t) => t.points.map((p) => p.step))).toEqual([
+      [24, 40],
+      [24, 40],
+    ]);
+    expect(planeSentence(plane, planeSettings(config))).toMatch(/ 2 layer-windows without this estimate are not drawn\.$/);
+    expect(infoPlane(names, mixed, 'binned').left).toBe(0);
+    // One probe window in all: its point is the start and the end, drawn at full size.
+    const single = infoPlane(names, windowsWith({ 3: { dense_Dense1: hidden(5, 4, 1, 0.05) } }), 'pairwise');
+    expect(single.trajectories[0]!.points).toEqual([{ step: 32, x: 5, y: 1, saturated: false, lower: 4, noiseVariance: 0.05, age: 1 }]);
+  });
+
+  it('names the pairwise estimator with the σ² it stored, its share of the spread, the rows and the cap', () => {
+    const settings = planeSettings(config);
+    expect(planeSentence(infoPlane(names, probed, 'pairwise', settings), settings)).toBe(
+      "Kolchinsky–Tracey pairwise estimate with Gaussian noise σ² = 0.04 to 0.5 across layers and windows (0.2 × the layer's spread, the total variance of its activations) over 512 probe rows; " +
+        'an estimate of a noise-regularised quantity, capped at log2 512 = 9 bits. Across: the KL-based estimate of I(X;T); up: the matching estimate of I(T;Y).',
+    );
+    // One σ² everywhere is given once.
+    const same = windowsWith({ 0: { dense_Dense1: hidden(6, 5, 0.5, 0.25) }, 1: { dense_Dense1: hidden(5, 4, 1, 0.25) } });
+    expect(planeSentence(infoPlane(names, same, 'pairwise', settings), settings)).toContain('Gaussian noise σ² = 0.25 (0.2 × the layer');
+    // Windows without mi_noise_variance (the noise was one absolute σ²): the config's value, said to be absolute.
+    const absolute = planeSettings({ probe: { rows: 300, bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_variance: 0.1, rows: 300 } } });
+    const old = windowsWith({ 0: { dense_Dense1: { mi_input_upper: 8.2, mi_label_pairwise: 1, mi_bounds_saturated: 0 } } });
+    expect(planeSentence(infoPlane(names, old, 'pairwise', absolute), absolute)).toBe(
+      'Kolchinsky–Tracey pairwise estimate with Gaussian noise σ² = 0.1 (one absolute value for every layer) over 300 probe rows; ' +
+        'an estimate of a noise-regularised quantity, capped at log2 300 = 8.23 bits. Across: the KL-based estimate of I(X;T); up: the matching estimate of I(T;Y).',
+    );
+    // Nothing recorded: says so rather than guessing.
+    expect(planeSentence(infoPlane(names, old, 'pairwise'), planeSettings({}))).toContain('Gaussian noise σ² not recorded over the probe rows; an estimate of a noise-regularised quantity, capped at log2 of the rows.');
+  });
+
+  it('keeps the estimator in the URL fragment beside the step range and the token', () => {
+    expect(planeOf('#/run/abc')).toBe('pairwise');
+    expect(planeOf('#/run/abc?steps=8-800&plane=binned')).toBe('binned');
+    expect(planeOf('#/run/abc?plane=nonsense')).toBe('pairwise');
+    expect(withPlane('#/run/abc?steps=8-800&token=t-1', 'binned')).toBe('#/run/abc?steps=8-800&token=t-1&plane=binned');
+    expect(withPlane('#/run/abc?steps=8-800&plane=binned', 'pairwise')).toBe('#/run/abc?steps=8-800');
+    expect(withPlane('#/run/abc?plane=binned', 'pairwise')).toBe('#/run/abc');
+    // A zoom keeps the estimator, and the route is the same with or without it.
+    expect(withRange('#/run/abc?plane=binned', { min: 16, max: 400 })).toBe('#/run/abc?plane=binned&steps=16-400');
+    expect(parseRoute('#/run/abc?plane=binned&steps=16-400')).toEqual({ view: 'run', id: 'abc', range: { min: 16, max: 400 } });
+  });
+
+  it('writes settings in three significant digits without trailing zeros', () => {
+    expect([0.2, 0.0625, 0.1, 30, 0.123456, 1234.5].map(settingText)).toEqual(['0.2', '0.0625', '0.1', '30', '0.123', '1230']);
+    expect(settingText(2e-5)).toBe('2.0e-5');
+  });
+
+  it('tints a colour towards white for the early markers', () => {
+    // Okabe & Ito blue #0072B2 halfway to white: 0 + 255/2 = 127.5 → 128 (0x80), 114 + 70.5 → 185 (0xb9), 178 + 38.5 → 217 (0xd9); by hand.
+    expect(tint('#0072B2', 0.5)).toBe('#80b9d9');
+    expect(tint('#0072B2', 0)).toBe('#0072b2');
+    expect(tint('#E69F00', 1)).toBe('#ffffff');
+    expect(tint('#E69F00', 2)).toBe('#ffffff');
+    expect(tint('not a colour', 0.5)).toBe('not a colour');
+  });
+});

@@ -12,6 +12,7 @@ import type { Marker, SinkRecord, WindowRecord } from '../../src/protocol/record
 import { startServer, type RunningServer } from '../../src/server/serve.js';
 import { openStore, type SqliteStore } from '../../src/storage/sqlite-store.js';
 import { CHROMIUM, countColour, ensurePageBuilt, haveChromium, inkPixels, launchChromium } from '../helpers/browser.js';
+import { formatNumber, settingText } from '../../src/web/model.js';
 import { fakeMarkers, fakeRun, fakeWindows } from '../helpers/window-records.js';
 
 const inCI = Boolean(process.env.CI);
@@ -35,6 +36,40 @@ function withProbe(ws: WindowRecord[]): WindowRecord[] {
   });
 }
 
+/**
+ * Both estimators on the even windows, as a probe with the noise scaled to each layer writes them: the two
+ * hidden layers' binned estimate saturated at log2 1024 = 10 bits (as on the demo), their pairwise one moving;
+ * the output layer unsaturated in both.
+ */
+function withPairwise(ws: WindowRecord[]): WindowRecord[] {
+  return ws.map((w) => {
+    if (w.index % 2 === 1) return w;
+    const k = w.index / 2;
+    const layers = Object.fromEntries(
+      Object.entries(w.layers).map(([name, s], j) => {
+        const hidden = j < 2;
+        const upper = hidden ? 6 - 0.3 * k + 0.5 * j : 3 - 0.2 * k;
+        return [
+          name,
+          {
+            ...s,
+            mi_input: hidden ? 10 : 4 - 0.2 * k,
+            mi_label: hidden ? 1.5 : 0.4 + 0.15 * k,
+            mi_saturated: hidden ? 1 : 0,
+            probe_rows: 1024,
+            mi_input_upper: upper,
+            mi_input_lower: upper - 1,
+            mi_label_pairwise: 0.3 + 0.2 * k + 0.05 * j,
+            mi_bounds_saturated: 0,
+            mi_noise_variance: 0.05 * (j + 1) * (1 + 0.1 * k),
+          },
+        ];
+      }),
+    );
+    return { ...w, layers };
+  });
+}
+
 describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
   let dir: string;
   let store: SqliteStore;
@@ -44,6 +79,21 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
   const windows = withProbe(fakeWindows(run, 14));
   // A second run with no probe values: its information plane stays hidden.
   const bare = fakeRun({ id: 'run-e2e-0002', name: 'no-probe-e2e' });
+  // A run with both estimators and the probe's settings in its config.
+  const paired = {
+    ...fakeRun({ id: 'run-e2e-0003', name: 'pairwise-e2e' }),
+    config: {
+      window: 'auto',
+      probe: {
+        rows: 1024,
+        every: 2,
+        labels: { kind: 'classes', classes: 3 },
+        binned: { estimator: 'binned-plugin', bins: 30, saturation_margin_bits: 0.1 },
+        bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_variance: null, noise_ratio: 0.2, rows: 512 },
+      },
+    },
+  };
+  const pairedWindows = withPairwise(fakeWindows(paired, 10));
   const advice: Marker = {
     run: run.id,
     layer: null,
@@ -66,6 +116,8 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     ]);
     store.beginRun(bare);
     store.append(fakeWindows(bare, 6).map((window): SinkRecord => ({ type: 'window', window })));
+    store.beginRun(paired);
+    store.append(pairedWindows.map((window): SinkRecord => ({ type: 'window', window })));
     server = await startServer({ store, port: 0, pollMs: 50, onError: () => {} });
     browser = await launchChromium();
   });
@@ -189,12 +241,20 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(sentence).toMatch(/estimate/);
 
     // Information plane: 7 probe windows per layer so far (0, 2, …, 12), the 2 saturated ones (0, 2) hollow.
+    // This run holds only the binned estimate, so the plane falls back to it and says so.
     const info = '[data-testid="info-section"]';
     expect(await page.isVisible(info)).toBe(true);
-    expect(await page.locator(`${info} circle.info-point`).count()).toBe(21);
-    expect(await page.locator(`${info} circle.info-point.saturated`).count()).toBe(6);
-    expect(await page.$$eval(`${info} circle.info-point.saturated`, (cs) => cs.every((c) => c.getAttribute('fill') === '#ffffff'))).toBe(true);
+    expect(await page.getAttribute(info, 'data-estimator')).toBe('binned');
+    expect(await page.textContent('[data-testid="plane-sentence"]')).toMatch(/^This run's probe windows hold no pairwise estimate .* the plane shows the binned one\. Binned plug-in estimate/);
+    expect(await page.isDisabled('[data-testid="plane-pairwise"]')).toBe(true);
+    expect(await page.isChecked('[data-testid="plane-binned"]')).toBe(true);
+    expect(await page.locator(`${info} .info-point`).count()).toBe(21);
+    expect(await page.locator(`${info} .info-point.saturated`).count()).toBe(6);
+    expect(await page.$$eval(`${info} .info-point.saturated`, (cs) => cs.every((c) => c.getAttribute('fill') === '#ffffff'))).toBe(true);
     expect(await page.locator(`${info} g.info-layer`).count()).toBe(3);
+    // The saturated windows are the first two: each layer's start is hollow, its end is not.
+    expect(await page.locator(`${info} .info-start.saturated`).count()).toBe(3);
+    expect(await page.locator(`${info} .info-end:not(.saturated)`).count()).toBe(3);
     expect(await page.textContent(info)).toContain('saturated: says nothing');
     if (SHOTS !== null) await page.screenshot({ path: join(SHOTS, 'run-charts.png'), fullPage: true });
 
@@ -205,10 +265,100 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
       { type: 'marker', marker: { run: run.id, layer: 'dense_Dense3', kind: 'drift-start', step: 64, detected_step: 112, confidence: 0.8, details: {} } },
     ]);
     await page.locator('[data-testid="run-step"]', { hasText: '112' }).waitFor({ timeout: 5_000 });
-    await page.waitForFunction(() => document.querySelectorAll('[data-testid="info-section"] circle.info-point').length === 24, undefined, { timeout: 5_000 });
+    await page.waitForFunction(() => document.querySelectorAll('[data-testid="info-section"] .info-point').length === 24, undefined, { timeout: 5_000 });
     await page.waitForFunction(() => document.querySelector('[data-testid="phase-strip"] g.phase-row[data-layer="dense_Dense3"] rect[data-phase="drift"]') !== null, undefined, { timeout: 5_000 });
     expect(await inkPixels(page, travel)).toBeGreaterThan(0);
     expect(inkBefore).toBeGreaterThan(0);
+    expect(errors).toEqual([]);
+    await page.close();
+  });
+
+  it('draws each layer\'s path in the pairwise estimate, and the binned one when switched with the keyboard', async () => {
+    const page = await browser.newPage({ viewport: { width: 1200, height: 900 } });
+    const errors: string[] = [];
+    page.on('pageerror', (e) => errors.push(String(e)));
+    await page.goto(`${server.url}/#/run/${paired.id}?steps=8-80`);
+    const info = '[data-testid="info-section"]';
+    await page.waitForSelector(`${info}[data-estimator="pairwise"] svg`, { timeout: 10_000 });
+    const layers = paired.layers.map((l) => l.name);
+    const probeWindows = pairedWindows.filter((w) => w.index % 2 === 0);
+    /** Per layer: measured paths, saturated paths, start and end markers, and each marker's (step, x, y, r). */
+    const drawn = (layer: string) =>
+      page.$eval(`${info} g.info-layer[data-layer="${layer}"]`, (g) => ({
+        paths: g.querySelectorAll('path.info-path:not(.saturated)').length,
+        saturatedPaths: g.querySelectorAll('path.info-path.saturated').length,
+        d: g.querySelector('path.info-path')?.getAttribute('d') ?? null,
+        starts: g.querySelectorAll('.info-start').length,
+        ends: g.querySelectorAll('.info-end').length,
+        points: Array.from(g.querySelectorAll('.info-point')).map((p) => ({
+          step: Number(p.getAttribute('data-step')),
+          x: Number(p.getAttribute('data-x')),
+          y: Number(p.getAttribute('data-y')),
+          r: p.tagName === 'circle' ? Number(p.getAttribute('r')) : null,
+          saturated: p.classList.contains('saturated'),
+          title: p.querySelector('title')?.textContent ?? '',
+        })),
+      }));
+    // Pairwise by default: one measured path per layer, a start and an end each, at the stored values.
+    const pairwise = [];
+    for (const [j, layer] of layers.entries()) {
+      const d = await drawn(layer);
+      pairwise.push(d);
+      expect(d.paths).toBe(1);
+      expect(d.saturatedPaths).toBe(0);
+      expect([d.starts, d.ends]).toEqual([1, 1]);
+      expect(d.points.map((p) => p.step)).toEqual(probeWindows.map((w) => w.step));
+      expect(d.points.map((p) => p.x)).toEqual(probeWindows.map((w) => w.layers[layer]!.mi_input_upper));
+      expect(d.points.map((p) => p.y)).toEqual(probeWindows.map((w) => w.layers[layer]!.mi_label_pairwise));
+      expect(d.points.every((p) => !p.saturated)).toBe(true);
+      // The middle markers (circles) grow with step.
+      const radii = d.points.map((p) => p.r).filter((r): r is number => r !== null);
+      expect(radii).toHaveLength(3);
+      expect(radii[0]!).toBeLessThan(radii[1]!);
+      expect(radii[1]!).toBeLessThan(radii[2]!);
+      expect(d.points[0]!.title).toContain(`${layer} (start) at step 8: I(X;T) ${formatNumber(probeWindows[0]!.layers[layer]!.mi_input_upper!)} bits`);
+      expect(d.points[4]!.title).toContain(`(end) at step 72`);
+      expect(d.points[4]!.title).toContain(`σ² ${settingText(0.05 * (j + 1) * 1.4)}`);
+    }
+    expect(await page.getAttribute('[data-testid="info-chart"] > svg', 'data-estimator')).toBe('pairwise');
+    const sentence = (await page.textContent('[data-testid="plane-sentence"]')) ?? '';
+    expect(sentence).toContain("Kolchinsky–Tracey pairwise estimate with Gaussian noise σ² = 0.05 to 0.21 across layers and windows (0.2 × the layer's spread");
+    expect(sentence).toContain('over 512 probe rows; an estimate of a noise-regularised quantity, capped at log2 512 = 9 bits.');
+    expect(await page.textContent(info)).toContain('confirm any decision on held-out data');
+    expect(await page.isChecked('[data-testid="plane-pairwise"]')).toBe(true);
+    if (SHOTS !== null) await page.locator(info).screenshot({ path: join(SHOTS, 'plane-pairwise.png') });
+
+    // To binned with the keyboard: the radio group takes the focus and an arrow key moves the choice.
+    await page.focus('[data-testid="plane-pairwise"]');
+    await page.keyboard.press('ArrowRight');
+    await page.waitForSelector(`${info}[data-estimator="binned"]`, { timeout: 5_000 });
+    expect(new URL(page.url()).hash).toBe(`#/run/${paired.id}?steps=8-80&plane=binned`);
+    for (const [j, layer] of layers.entries()) {
+      const d = await drawn(layer);
+      expect(d.points.map((p) => p.x)).toEqual(probeWindows.map((w) => w.layers[layer]!.mi_input));
+      expect([d.starts, d.ends]).toEqual([1, 1]);
+      if (j < 2) {
+        // The hidden layers' binned estimate is saturated everywhere: hollow grey markers on a dotted grey path.
+        expect(d.paths).toBe(0);
+        expect(d.saturatedPaths).toBe(1);
+        expect(d.points.every((p) => p.saturated)).toBe(true);
+      } else {
+        expect(d.paths).toBe(1);
+        expect(d.d).not.toBe(pairwise[j]!.d);
+      }
+    }
+    expect(await page.textContent('[data-testid="plane-sentence"]')).toContain('Binned plug-in estimate with 30 equal-width bins per unit over 1024 probe rows, capped at log2 1024 = 10 bits');
+    if (SHOTS !== null) await page.locator(info).screenshot({ path: join(SHOTS, 'plane-binned.png') });
+
+    // The URL reopens the binned plane; choosing pairwise again takes the estimator out of it.
+    const again = await browser.newPage({ viewport: { width: 1200, height: 900 } });
+    await again.goto(page.url());
+    await again.waitForSelector(`${info}[data-estimator="binned"] svg`, { timeout: 10_000 });
+    expect(await again.isChecked('[data-testid="plane-binned"]')).toBe(true);
+    await again.click('[data-testid="plane-pairwise"]');
+    await again.waitForSelector(`${info}[data-estimator="pairwise"]`, { timeout: 5_000 });
+    expect(new URL(again.url()).hash).toBe(`#/run/${paired.id}?steps=8-80`);
+    await again.close();
     expect(errors).toEqual([]);
     await page.close();
   });
