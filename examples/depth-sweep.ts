@@ -20,19 +20,17 @@ import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import {
   DEFAULT_PORT,
-  TidemarkError,
   connectStore,
   defaultStore,
   groupReport,
   monitor,
-  startServer,
   sweepOf,
   type GroupReport,
-  type RunningServer,
   type SweepReport,
 } from '../src/index.js';
 // The command line's text rendering of a group and a sweep (not part of the library's API).
 import { renderGroup, renderSweep } from '../src/cli/group.js';
+import { integerArgs, oncePerPress, serveWithFallback } from './cli-support.js';
 import { buildGearboxModel, makeGearboxData, mulberry32, toTensors } from './gearbox-data.js';
 
 /**
@@ -233,12 +231,7 @@ function parseCli(): SweepArgs {
   } catch (e) {
     fail(e instanceof Error ? e.message : String(e));
   }
-  const int = (name: string, raw: string | undefined, fallback: number, min: number, max = Number.MAX_SAFE_INTEGER): number => {
-    if (raw === undefined) return fallback;
-    const n = Number(raw);
-    if (!Number.isInteger(n) || n < min || n > max) fail(`--${name} must be an integer from ${min} to ${max}; received '${raw}'`);
-    return n;
-  };
+  const int = integerArgs(fail);
   const quick = values.quick === true;
   // The default store: $TIDEMARK_DB or tidemark.db, as the demo and monitor() use.
   const out = values.out ?? defaultStore();
@@ -258,21 +251,6 @@ function parseCli(): SweepArgs {
     portGiven: values.port !== undefined,
     verbose: values.verbose === true,
   };
-}
-
-/** Serves the store; a port in use falls back to a free one, as in the demo. */
-async function serveStore(db: string, port: number, portGiven: boolean): Promise<RunningServer> {
-  const onError = (e: unknown): void => console.error(`tidemark serve: ${e instanceof Error ? e.message : String(e)}`);
-  try {
-    return await startServer({ db, port, onError });
-  } catch (e) {
-    const cause = e instanceof TidemarkError ? (e.cause as { code?: string } | undefined)?.code : undefined;
-    if (cause !== 'EADDRINUSE' && cause !== 'EACCES') fail(e instanceof Error ? e.message : String(e));
-    const server = await startServer({ db, port: 0, onError }).catch((e2: unknown) => fail(e2 instanceof Error ? e2.message : String(e2)));
-    const why = cause === 'EADDRINUSE' ? 'is already in use' : 'is not open to this user';
-    console.log(`Port ${port} ${why}; serving on free port ${server.port} instead${portGiven ? '' : ' (--port N picks one)'}.\n`);
-    return server;
-  }
 }
 
 async function cli(): Promise<void> {
@@ -296,7 +274,7 @@ async function cli(): Promise<void> {
     // No store yet: the first monitor creates it.
   }
 
-  const server = args.serve ? await serveStore(outPath, args.port, args.portGiven) : null;
+  const server = args.serve ? await serveWithFallback(outPath, args.port, args.portGiven, fail, (e) => console.error(`tidemark serve: ${e instanceof Error ? e.message : String(e)}`)) : null;
   const base = server?.url ?? `http://127.0.0.1:${args.port}`;
   const groupLink = `${base}/#/group/${encodeURIComponent(args.group)}`;
 
@@ -309,15 +287,7 @@ async function cli(): Promise<void> {
     interrupted = true;
     console.log('Ctrl-C: stopping after the current minibatch and skipping the remaining runs (press it again to quit at once).');
   };
-  // A Ctrl-C in a terminal reaches this process more than once (from the terminal, and relayed by npm and
-  // tsx); copies within a second count as one press.
-  let lastSignalAt = 0;
-  const signalled = (): void => {
-    const now = Date.now();
-    if (now - lastSignalAt < 1000) return;
-    lastSignalAt = now;
-    onSignal();
-  };
+  const signalled = oncePerPress(() => onSignal());
   process.on('SIGINT', signalled);
   process.on('SIGTERM', signalled);
 

@@ -15,10 +15,8 @@ import cliProgress from 'cli-progress';
 import {
   DEFAULT_PORT,
   analysis,
-  TidemarkError,
   defaultStore,
   monitor,
-  startServer,
   type LayerStats,
   type Marker,
   type RunningServer,
@@ -26,6 +24,7 @@ import {
 } from '../src/index.js';
 // The batch-size sentence the page shows too (not part of the library's API).
 import { batchSizeAdvice } from '../src/analysis/batch-size-advice.js';
+import { integerArgs, oncePerPress, serveWithFallback } from './cli-support.js';
 import { buildGearboxModel, makeGearboxData, sliceGearboxData, toTensors } from './gearbox-data.js';
 
 const DEFAULT_EPOCHS = 120;
@@ -83,12 +82,7 @@ function parseCli(): DemoArgs {
   } catch (e) {
     fail(e instanceof Error ? e.message : String(e));
   }
-  const int = (name: string, raw: string | undefined, fallback: number, min: number, max = Number.MAX_SAFE_INTEGER): number => {
-    if (raw === undefined) return fallback;
-    const n = Number(raw);
-    if (!Number.isInteger(n) || n < min || n > max) fail(`--${name} must be an integer from ${min} to ${max}; received '${raw}'`);
-    return n;
-  };
+  const int = integerArgs(fail);
   const lr = values.lr === undefined ? 0.01 : Number(values.lr);
   if (!(lr > 0 && lr < 10)) fail(`--lr must be a positive number below 10; received '${values.lr}'`);
   // The default store: $TIDEMARK_DB or tidemark.db; a path ending in .jsonl writes JSON Lines instead.
@@ -348,17 +342,7 @@ async function serveStore(): Promise<RunningServer | null> {
     console.log(`The live page reads a SQLite store; ${args.out} is JSON Lines, so this run is written without it.\n`);
     return null;
   }
-  const onError = (e: unknown): void => say(`tidemark serve: ${e instanceof Error ? e.message : String(e)}`);
-  try {
-    return await startServer({ db: outPath, port: args.port, onError });
-  } catch (e) {
-    const cause = e instanceof TidemarkError ? (e.cause as { code?: string } | undefined)?.code : undefined;
-    if (cause !== 'EADDRINUSE' && cause !== 'EACCES') fail(e instanceof Error ? e.message : String(e));
-    const server = await startServer({ db: outPath, port: 0, onError }).catch((e2: unknown) => fail(e2 instanceof Error ? e2.message : String(e2)));
-    const why = cause === 'EADDRINUSE' ? 'is already in use' : 'is not open to this user';
-    console.log(`Port ${args.port} ${why}; serving on free port ${server.port} instead${args.portGiven ? '' : ' (--port N picks one)'}.\n`);
-    return server;
-  }
+  return serveWithFallback(outPath, args.port, args.portGiven, fail, (e) => say(`tidemark serve: ${e instanceof Error ? e.message : String(e)}`));
 }
 
 const server = await serveStore();
@@ -389,15 +373,7 @@ let onSignal: () => void = () => {
   model.stopTraining = true;
   say('Ctrl-C: stopping after the current minibatch (press it again to quit at once).');
 };
-// A Ctrl-C in a terminal reaches this process more than once: from the terminal, and relayed by the
-// launchers around it (npm, tsx). Copies within a second count as one press.
-let lastSignalAt = 0;
-const signalled = (): void => {
-  const now = Date.now();
-  if (now - lastSignalAt < 1000) return;
-  lastSignalAt = now;
-  onSignal();
-};
+const signalled = oncePerPress(() => onSignal());
 process.on('SIGINT', signalled);
 process.on('SIGTERM', signalled);
 
