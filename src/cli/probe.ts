@@ -2,6 +2,7 @@
  * The activation probe's latest values per layer for `tidemark show`. The probe runs only in some
  * windows, so each layer's values come from the last step where it ran, not from the run's last step.
  */
+import { readProbeConfig } from '../protocol/probe-config.js';
 import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
 import type { RunDetail } from '../storage/store.js';
 import { fmt, printable, table } from './format.js';
@@ -58,25 +59,16 @@ export const BOUNDS_SATURATED_NOTE = 'every probe example told apart through the
 export const PROBE_CAUTION =
   'Both are estimates that depend on their settings (the noise σ², the bin count, the probe rows) and on the activation function; compare them only between runs with the same settings, and confirm any decision on held-out data.';
 
-const obj = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
-const numOrNull = (v: unknown): number | null => (typeof v === 'number' ? v : null);
-const strOrNull = (v: unknown): string | null => (typeof v === 'string' ? v : null);
-
 /** Reads config.probe defensively: stores written by older versions, or imported, may lack parts of it. */
 export function probeSettings(config: Record<string, unknown>): ProbeSettings {
-  const p = obj(config.probe) ?? {};
-  const binned = obj(p.binned) ?? {};
-  const bounds = obj(p.bounds);
+  const c = readProbeConfig(config);
   return {
-    estimator: strOrNull(binned.estimator),
-    bins: numOrNull(binned.bins),
-    rows: numOrNull(p.rows),
-    every: typeof p.every === 'number' || typeof p.every === 'string' ? p.every : null,
-    budget: numOrNull(p.budget),
-    bounds:
-      bounds === null
-        ? null
-        : { estimator: strOrNull(bounds.estimator), noise_ratio: numOrNull(bounds.noise_ratio), noise_variance: numOrNull(bounds.noise_variance), rows: numOrNull(bounds.rows) },
+    estimator: c.binned.estimator,
+    bins: c.binned.bins,
+    rows: c.rows,
+    every: c.every,
+    budget: c.budget,
+    bounds: c.bounds === null ? null : { estimator: c.bounds.estimator, noise_ratio: c.bounds.noiseRatio, noise_variance: c.bounds.noiseVariance, rows: c.bounds.rows },
   };
 }
 

@@ -6,6 +6,7 @@
 import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
 import { displacementLevelDb } from '../analysis/phase-detector.js';
 import { decodeJson } from '../protocol/json-codec.js';
+import { readProbeConfig } from '../protocol/probe-config.js';
 import type { RunSummary } from '../protocol/messages.js';
 import type { LayerStats, Marker, WindowRecord } from '../protocol/records.js';
 import { groupRouteOf, type GroupRoute } from './group-model.js';
@@ -489,24 +490,15 @@ export interface PlaneSettings {
   classes: number | null;
 }
 
-const record = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
-const numberOrNull = (v: unknown): number | null => (typeof v === 'number' && Number.isFinite(v) ? v : null);
-
-/**
- * Reads config.probe defensively (the shape the probe's describe() writes): `binned.bins`, `rows`,
- * `binned.saturation_margin_bits`, `bounds.noise_variance` (an absolute σ²), `bounds.noise_ratio` (σ² as a share
- * of each layer's spread), `bounds.rows` and `labels.classes`.
- */
+/** The plane's part of config.probe (protocol/probe-config.ts reads it). */
 export function planeSettings(config: Record<string, unknown>): PlaneSettings {
-  const p = record(config.probe) ?? {};
-  const binned = record(p.binned) ?? {};
-  const bounds = record(p.bounds);
+  const c = readProbeConfig(config);
   return {
-    bins: numberOrNull(binned.bins),
-    rows: numberOrNull(p.rows),
-    marginBits: numberOrNull(binned.saturation_margin_bits),
-    pairwise: bounds === null ? null : { noiseVariance: numberOrNull(bounds.noise_variance), relative: numberOrNull(bounds.noise_ratio), rows: numberOrNull(bounds.rows) },
-    classes: numberOrNull(record(p.labels)?.classes),
+    bins: c.binned.bins,
+    rows: c.rows,
+    marginBits: c.binned.marginBits,
+    pairwise: c.bounds === null ? null : { noiseVariance: c.bounds.noiseVariance, relative: c.bounds.noiseRatio, rows: c.bounds.rows },
+    classes: c.classes,
   };
 }
 
