@@ -45,12 +45,13 @@
  * - the full budget.
  */
 import { createHash } from 'node:crypto';
-import { readFileSync } from 'node:fs';
+import { readFileSync, writeFileSync } from 'node:fs';
 import { availableParallelism } from 'node:os';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import { buildGearboxModel, makeGearboxData, toTensors, type GearboxData } from '../examples/gearbox-data.js';
-import { monitor, type Marker } from '../src/index.js';
+import { adviceChanged, adviseStop, detectPhases } from '../src/analysis/index.js';
+import { monitor, type Marker, type WindowRecord } from '../src/index.js';
 import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { withSeededShuffle } from '../test/helpers/phase-runs.js';
 import { mulberry32, shuffleInPlace } from '../test/helpers/random.js';
@@ -66,6 +67,8 @@ const FULL_SEEDS = [1, 2, 3];
 const PATIENCES = [5, 10, 20] as const;
 const MNIST_SIZES = { train: 3000, validation: 1000, test: 1000, seed: 1 } as const;
 const GEARBOX_SIZES = { samples: 4000, train: 2400, validation: 800, test: 800, dataSeed: 1, splitSeed: 1 } as const;
+/** Seed of the development data (--dev). */
+const DEV_SEED = 2;
 
 interface Config {
   id: string;
@@ -84,13 +87,22 @@ const USAGE = `usage: node --import tsx bench/advice.ts [--quick] [--epochs N] [
   --quick      1 seed, ${QUICK_EPOCHS} epochs, ${CONFIGS[0]!.id} only (a check that the script works; its figures mean nothing)
   --epochs N   epochs per run, the budget (default ${FULL_EPOCHS})
   --seeds L    run seeds (default ${FULL_SEEDS.join(',')})
-  --configs L  configurations (default all)`;
+  --configs L  configurations (default all)
+  --dev        the development data: MNIST rows drawn with split seed 2 from the digits outside the benchmark's
+               test part, gearbox data seed 2 and split seed 2. A policy is worked out on these, never on the
+               benchmark's own runs
+  --save FILE  also write every run (its windows, logs and per-epoch figures) to FILE as JSON
+  --replay FILE  train nothing: read runs saved with --save and give the advice the current policy gives
+               on their windows (the phase detector and the advisor re-run offline, as tidemark analyze does)`;
 
 interface Settings {
   quick: boolean;
   epochs: number;
   seeds: number[];
   configs: Config[];
+  dev: boolean;
+  save: string | null;
+  replay: string | null;
 }
 
 function readSettings(): Settings | null {
@@ -100,6 +112,9 @@ function readSettings(): Settings | null {
       epochs: { type: 'string' },
       seeds: { type: 'string' },
       configs: { type: 'string' },
+      dev: { type: 'boolean', default: false },
+      save: { type: 'string' },
+      replay: { type: 'string' },
       help: { type: 'boolean', short: 'h', default: false },
     },
   });
@@ -118,7 +133,7 @@ function readSettings(): Settings | null {
     if (!c) throw new RangeError(`--configs: unknown configuration '${id}' (known: ${CONFIGS.map((x) => x.id).join(', ')})`);
     return c;
   });
-  return { quick, epochs, seeds, configs };
+  return { quick, epochs, seeds, configs, dev: values.dev, save: values.save ?? null, replay: values.replay ?? null };
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -140,13 +155,16 @@ function disposeData(d: DataSet): void {
   tf.dispose([d.train.xs, d.train.ys, d.validation.xs, d.validation.ys, d.test.xs, d.test.ys]);
 }
 
-function mnistData(): DataSet {
-  const split = mnistSplit(MNIST_SIZES);
+function mnistData(dev: boolean): DataSet {
+  const bench = mnistSplit(MNIST_SIZES);
+  const split = dev ? mnistSplit({ ...MNIST_SIZES, seed: DEV_SEED, exclude: bench.test }) : bench;
   return {
     train: mnistTensors(split.train),
     validation: mnistTensors(split.validation),
     test: mnistTensors(split.test),
-    describe: `mnist package, stratified split seed ${MNIST_SIZES.seed}: ${split.train.rows} train / ${split.validation.rows} validation / ${split.test.rows} test`,
+    describe:
+      `mnist package, stratified split seed ${split.seed}${dev ? ` (DEV: none of the benchmark's ${bench.test.rows} test digits)` : ''}: ` +
+      `${split.train.rows} train / ${split.validation.rows} validation / ${split.test.rows} test`,
   };
 }
 
@@ -155,8 +173,8 @@ function mnistData(): DataSet {
  * re-standardised with the train part's mean and standard deviation. The generator standardised over all rows;
  * standardising is affine per band, so this equals standardising the raw log energies on the train rows.
  */
-function gearboxData(): DataSet {
-  const g = GEARBOX_SIZES;
+function gearboxData(dev: boolean): DataSet {
+  const g = dev ? { ...GEARBOX_SIZES, dataSeed: DEV_SEED, splitSeed: DEV_SEED } : GEARBOX_SIZES;
   const all = makeGearboxData({ samples: g.samples, seed: g.dataSeed });
   const rng = mulberry32(g.splitSeed);
   const order = shuffleInPlace(Array.from({ length: g.samples }, (_, i) => i), rng);
@@ -178,7 +196,7 @@ function gearboxData(): DataSet {
     validation: validation!,
     test: test!,
     describe:
-      `gearbox, ${g.samples} samples (data seed ${g.dataSeed}, 8 % label noise), split seed ${g.splitSeed}: ` +
+      `gearbox${dev ? ' (DEV)' : ''}, ${g.samples} samples (data seed ${g.dataSeed}, 8 % label noise), split seed ${g.splitSeed}: ` +
       `${g.train} train / ${g.validation} validation / ${g.test} test, standardised on the train rows`,
   };
 }
@@ -211,6 +229,8 @@ interface RunRecord extends RuleInput {
   wallMs: number;
   monitorWarnings: string[];
   windows: number;
+  /** The monitor's windows, kept for --save and --replay. */
+  trail: readonly WindowRecord[];
   lastWindowStep: number | null;
   finalAdvice: string | null;
 }
@@ -277,6 +297,7 @@ async function trainRun(c: Config, data: DataSet, seed: number, epochs: number):
     wallMs,
     monitorWarnings: mon.warnings().map((w) => w.code),
     windows: windows.length,
+    trail: windows,
     lastWindowStep: windows.at(-1)?.step ?? null,
     finalAdvice: mon.advice()?.verdict ?? null,
   };
@@ -481,6 +502,64 @@ function reportConfig(c: Config, runs: readonly RunRecord[], s: Settings): void 
 
 // ---------------------------------------------------------------------------------------------
 
+// ---------------------------------------------------------------------------------------------
+// Training, saving and replaying
+
+interface SavedBench {
+  dev: boolean;
+  epochs: number;
+  /** sha256 prefix of the advice policy the runs were trained under (their online markers are its). */
+  policy: string;
+  configs: { id: string; runs: RunRecord[] }[];
+}
+
+function policyHash(): string {
+  const policy = new URL('../src/analysis/stop-advice.ts', import.meta.url);
+  return createHash('sha256').update(readFileSync(policy)).digest('hex').slice(0, 12);
+}
+
+async function trainConfig(c: Config, s: Settings): Promise<RunRecord[]> {
+  const data = c.id === 'gearbox' ? gearboxData(s.dev) : mnistData(s.dev);
+  console.log(`\n=== ${c.title}: ${data.describe}; batch ${c.batch}, plain SGD lr ${c.lr}`);
+  const runs: RunRecord[] = [];
+  for (const seed of s.seeds) {
+    progress(`${c.title}, seed ${seed}: ${s.epochs} epochs`);
+    const r = await trainRun(c, data, seed, s.epochs);
+    runs.push(r);
+    progress(
+      `${c.title}, seed ${seed}: ${(r.wallMs / 1000).toFixed(1)} s, ${r.windows} windows, final val_acc ${pct(r.valAcc.at(-1) ?? Number.NaN)}, ` +
+        `${adviceTrail(r)}`,
+    );
+  }
+  disposeData(data);
+  return runs;
+}
+
+function readSaved(path: string, s: Settings): SavedBench {
+  const saved = JSON.parse(readFileSync(path, 'utf8')) as SavedBench;
+  if (saved.epochs !== s.epochs) throw new RangeError(`--replay: ${path} holds ${saved.epochs}-epoch runs; pass --epochs ${saved.epochs}`);
+  console.log(
+    `REPLAY of ${path}: ${saved.dev ? 'DEVELOPMENT data' : "the benchmark's data"}, trained under policy ${saved.policy}; ` +
+      `advice now from policy ${policyHash()}, re-run offline on the stored windows`,
+  );
+  return saved;
+}
+
+/** The saved runs of one configuration, their advice given again by the current policy. */
+function replayConfig(c: Config, saved: SavedBench): RunRecord[] {
+  const runs = saved.configs.find((x) => x.id === c.id)?.runs;
+  if (runs === undefined) throw new RangeError(`--replay: no runs of ${c.id} saved (saved: ${saved.configs.map((x) => x.id).join(', ')})`);
+  console.log(`\n=== ${c.title}: replayed, ${runs.length} saved runs; batch ${c.batch}, plain SGD lr ${c.lr}`);
+  return runs.map((r) => {
+    const { states } = detectPhases(r.trail);
+    const advices = adviseStop(r.trail, states);
+    const advice = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a)).map((a) => ({ step: a.step, verdict: a.verdict }));
+    const before = adviceTrail(r);
+    const replayed = { ...r, advice, finalAdvice: advices.at(-1)?.verdict ?? null };
+    console.log(`seed ${r.seed}: online ${before}\n        replayed ${adviceTrail(replayed)}`);
+    return replayed;
+  });
+}
 
 async function main(): Promise<void> {
   const s = readSettings();
@@ -496,29 +575,22 @@ async function main(): Promise<void> {
       `monitor: store 'memory', advice.act false, other options default`,
   );
   // The advice policy is under revision: name the version of the file this run loaded.
-  const policy = new URL('../src/analysis/stop-advice.ts', import.meta.url);
-  console.log(`advice policy: src/analysis/stop-advice.ts, sha256 ${createHash('sha256').update(readFileSync(policy)).digest('hex').slice(0, 12)} at start`);
+  console.log(`advice policy: src/analysis/stop-advice.ts, sha256 ${policyHash()} at start${s.dev ? '; DEVELOPMENT data (--dev)' : ''}`);
   if (s.quick) {
     console.log('QUICK MODE: 1 seed, 30 epochs, one configuration. These figures only show that the script works; they mean nothing for the question the bench asks.');
   }
   const tensorsAtStart = tf.memory().numTensors;
   const wall: [string, number][] = [];
+  const saved: SavedBench = { dev: s.dev, epochs: s.epochs, policy: policyHash(), configs: [] };
+  const replayed = s.replay === null ? null : readSaved(s.replay, s);
   for (const c of s.configs) {
-    const data = c.id === 'gearbox' ? gearboxData() : mnistData();
-    console.log(`\n=== ${c.title}: ${data.describe}; batch ${c.batch}, plain SGD lr ${c.lr}`);
-    const runs: RunRecord[] = [];
     const tc = performance.now();
-    for (const seed of s.seeds) {
-      progress(`${c.title}, seed ${seed}: ${s.epochs} epochs`);
-      const r = await trainRun(c, data, seed, s.epochs);
-      runs.push(r);
-      progress(
-        `${c.title}, seed ${seed}: ${(r.wallMs / 1000).toFixed(1)} s, ${r.windows} windows, final val_acc ${pct(r.valAcc.at(-1) ?? Number.NaN)}, ` +
-          `${adviceTrail(r)}`,
-      );
-    }
+    const runs = replayed !== null ? replayConfig(c, replayed) : await trainConfig(c, s);
     wall.push([c.title, performance.now() - tc]);
-    disposeData(data);
+    if (s.save !== null) {
+      saved.configs.push({ id: c.id, runs });
+      writeFileSync(s.save, JSON.stringify(saved));
+    }
     const first = runs[0]!;
     console.log(`logged keys (tfjs ${tf.version.tfjs}, first epoch): ${first.logKeys.join(', ')}`);
     for (const r of runs) {

@@ -295,6 +295,20 @@ describe('mnistSplit (the mnist package, 1.1.0)', () => {
     expect(mnistDigits()[5]!.count).toBe(863);
     expect(() => mnistSplit({ train: 8000, test: 1000 })).toThrow(/class 5/);
   });
+
+  it('keeps excluded digits out of every part (a development split that never sees a benchmark’s test rows)', () => {
+    const bench = mnistSplit({ train: 3000, validation: 1000, test: 1000, seed: 1 });
+    const dev = mnistSplit({ train: 3000, validation: 1000, test: 1000, seed: 2, exclude: bench.test });
+    const key = (labels: number[], source: number[]) => labels.map((l, i) => `${l}:${source[i]}`);
+    const held = new Set(key(bench.test.labels, bench.test.source));
+    expect(held.size).toBe(1000);
+    for (const part of [dev.train, dev.validation, dev.test]) {
+      expect(part.rows).toBe(part === dev.train ? 3000 : 1000);
+      expect(key(part.labels, part.source).filter((k) => held.has(k))).toEqual([]);
+    }
+    // 863 digits of class 5, 100 of them excluded: 763 remain for the parts' 500.
+    expect(() => mnistSplit({ train: 7000, test: 700, exclude: bench.test })).toThrow(/763 not excluded/);
+  });
 });
 
 describe('exactNoiseScale on MNIST (784→64→32→10 relu, after 315 SGD steps)', () => {

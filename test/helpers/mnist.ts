@@ -82,6 +82,11 @@ export interface MnistSplitOptions {
   test?: number;
   /** Seed of the mulberry32 generator behind every random choice; default 1. */
   seed?: number;
+  /**
+   * Digits no part may hold, e.g. another split's test part, so that a development split never sees them.
+   * Default none. They leave each class's order after it is shuffled, so the split stays seeded.
+   */
+  exclude?: Pick<MnistPart, 'labels' | 'source'>;
 }
 
 /**
@@ -107,7 +112,10 @@ export function mnistSplit(options: MnistSplitOptions): MnistSplit {
   const rng = mulberry32(seed);
 
   // 1. Every class's samples in a seeded random order.
-  const order = digits.map((c) => shuffleInPlace(Array.from({ length: c.count }, (_, i) => i), rng));
+  const shuffled = digits.map((c) => shuffleInPlace(Array.from({ length: c.count }, (_, i) => i), rng));
+  const excluded = digits.map(() => new Set<number>());
+  options.exclude?.labels.forEach((d, i) => excluded[d]!.add(options.exclude!.source[i]!));
+  const order = shuffled.map((o, d) => (excluded[d]!.size === 0 ? o : o.filter((i) => !excluded[d]!.has(i))));
 
   // 2. Per part and class, how many digits: ⌊n/10⌋, plus one for n mod 10 classes drawn at random.
   const counts = sizes.map((n) => {
@@ -117,9 +125,9 @@ export function mnistSplit(options: MnistSplitOptions): MnistSplit {
   });
   for (let d = 0; d < MNIST_CLASSES; d++) {
     const need = counts.reduce((s, part) => s + part[d]!, 0);
-    if (need > digits[d]!.count) {
+    if (need > order[d]!.length) {
       throw new Error(
-        `mnistSplit: the parts need ${need} digits of class ${d} but the package has ${digits[d]!.count}; ` +
+        `mnistSplit: the parts need ${need} digits of class ${d} but the package has ${order[d]!.length}${excluded[d]!.size > 0 ? ' not excluded' : ''}; ` +
           `ask for fewer rows (at most ${digits[5]!.count * MNIST_CLASSES} in all)`,
       );
     }
