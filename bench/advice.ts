@@ -50,7 +50,7 @@ import { availableParallelism } from 'node:os';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import { buildGearboxModel, makeGearboxData, toTensors, type GearboxData } from '../examples/gearbox-data.js';
-import { adviceChanged, adviseStop, detectPhases } from '../src/analysis/index.js';
+import { adviceChanged, adviseStop, detectPhases, type AdviceOptions } from '../src/analysis/index.js';
 import { monitor, type Marker, type WindowRecord } from '../src/index.js';
 import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { withSeededShuffle } from '../test/helpers/phase-runs.js';
@@ -93,7 +93,8 @@ const USAGE = `usage: node --import tsx bench/advice.ts [--quick] [--epochs N] [
                benchmark's own runs
   --save FILE  also write every run (its windows, logs and per-epoch figures) to FILE as JSON
   --replay FILE  train nothing: read runs saved with --save and give the advice the current policy gives
-               on their windows (the phase detector and the advisor re-run offline, as tidemark analyze does)`;
+               on their windows (the phase detector and the advisor re-run offline, as tidemark analyze does)
+  --advice J   with --replay: advice options as JSON, e.g. '{"patience":5}' (default: the monitor's defaults)`;
 
 interface Settings {
   quick: boolean;
@@ -103,6 +104,7 @@ interface Settings {
   dev: boolean;
   save: string | null;
   replay: string | null;
+  advice: AdviceOptions;
 }
 
 function readSettings(): Settings | null {
@@ -115,6 +117,7 @@ function readSettings(): Settings | null {
       dev: { type: 'boolean', default: false },
       save: { type: 'string' },
       replay: { type: 'string' },
+      advice: { type: 'string' },
       help: { type: 'boolean', short: 'h', default: false },
     },
   });
@@ -133,7 +136,9 @@ function readSettings(): Settings | null {
     if (!c) throw new RangeError(`--configs: unknown configuration '${id}' (known: ${CONFIGS.map((x) => x.id).join(', ')})`);
     return c;
   });
-  return { quick, epochs, seeds, configs, dev: values.dev, save: values.save ?? null, replay: values.replay ?? null };
+  const advice = values.advice === undefined ? {} : (JSON.parse(values.advice) as AdviceOptions);
+  if (values.advice !== undefined && values.replay === undefined) throw new RangeError('--advice goes with --replay: a training run uses the monitor defaults');
+  return { quick, epochs, seeds, configs, dev: values.dev, save: values.save ?? null, replay: values.replay ?? null, advice };
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -540,19 +545,19 @@ function readSaved(path: string, s: Settings): SavedBench {
   if (saved.epochs !== s.epochs) throw new RangeError(`--replay: ${path} holds ${saved.epochs}-epoch runs; pass --epochs ${saved.epochs}`);
   console.log(
     `REPLAY of ${path}: ${saved.dev ? 'DEVELOPMENT data' : "the benchmark's data"}, trained under policy ${saved.policy}; ` +
-      `advice now from policy ${policyHash()}, re-run offline on the stored windows`,
+      `advice now from policy ${policyHash()}${Object.keys(s.advice).length > 0 ? ` with ${JSON.stringify(s.advice)}` : ''}, re-run offline on the stored windows`,
   );
   return saved;
 }
 
 /** The saved runs of one configuration, their advice given again by the current policy. */
-function replayConfig(c: Config, saved: SavedBench): RunRecord[] {
+function replayConfig(c: Config, saved: SavedBench, options: AdviceOptions): RunRecord[] {
   const runs = saved.configs.find((x) => x.id === c.id)?.runs;
   if (runs === undefined) throw new RangeError(`--replay: no runs of ${c.id} saved (saved: ${saved.configs.map((x) => x.id).join(', ')})`);
   console.log(`\n=== ${c.title}: replayed, ${runs.length} saved runs; batch ${c.batch}, plain SGD lr ${c.lr}`);
   return runs.map((r) => {
     const { states } = detectPhases(r.trail);
-    const advices = adviseStop(r.trail, states);
+    const advices = adviseStop(r.trail, states, options);
     const advice = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a)).map((a) => ({ step: a.step, verdict: a.verdict }));
     const before = adviceTrail(r);
     const replayed = { ...r, advice, finalAdvice: advices.at(-1)?.verdict ?? null };
@@ -585,7 +590,7 @@ async function main(): Promise<void> {
   const replayed = s.replay === null ? null : readSaved(s.replay, s);
   for (const c of s.configs) {
     const tc = performance.now();
-    const runs = replayed !== null ? replayConfig(c, replayed) : await trainConfig(c, s);
+    const runs = replayed !== null ? replayConfig(c, replayed, s.advice) : await trainConfig(c, s);
     wall.push([c.title, performance.now() - tc]);
     if (s.save !== null) {
       saved.configs.push({ id: c.id, runs });
