@@ -15,6 +15,7 @@ export * from './stop-advice.js';
 export * from './entropy.js';
 export * from './binned-information.js';
 export * from './pairwise-information.js';
+export * from './linear-probe-information.js';
 export * from './label-bins.js';
 export * from './random.js';
 export * from './compression-detector.js';

@@ -2,11 +2,12 @@
  * The activation probe: every few windows, one predict call on a multi-output view of the model reads
  * each tracked layer's activations on a fixed probe set, and turns them into activation health and
  * information estimates (binned I(X;T), I(T;Y); pairwise bounds on I(X;T) for the layer plus Gaussian
- * noise). It runs between windows, after the optimizer step has returned, never inside the tap.
+ * noise; a linear read-out's lower bound on I(T;Y)). It runs between windows, after the optimizer step has returned, never inside the tap.
  */
 import * as tf from '@tensorflow/tfjs';
 import { binnedInformation } from '../analysis/binned-information.js';
 import { labelClasses, type LabelKind } from '../analysis/label-bins.js';
+import { LINEAR_PROBE_DEFAULTS, linearProbeInformation } from '../analysis/linear-probe-information.js';
 import { DEFAULT_NOISE_RATIO, pairwiseInformationBounds } from '../analysis/pairwise-information.js';
 import { mulberry32 } from '../analysis/random.js';
 import { TidemarkError, TidemarkRangeError, TidemarkTypeError } from '../errors.js';
@@ -40,6 +41,11 @@ export interface ProbeOptions {
   noiseVariance?: number;
   /** Rows entering the O(rows²·units) pairwise bounds (subsampled with a fixed seed); 0 turns the bounds off. Default 512. */
   boundRows?: number;
+  /**
+   * Rows entering the linear read-out's lower bound on I(T;Y) (a softmax regression per layer, cross-fitted on
+   * two halves; subsampled with a fixed seed); 0 turns it off. Default 512.
+   */
+  linearRows?: number;
   /** How to read `y`: 'auto' (default), 'onehot', 'sparse' or 'regression'. */
   labels?: 'auto' | LabelKind;
   /** Quantile bins for regression targets. Default 10. */
@@ -56,6 +62,7 @@ export const PROBE_DEFAULTS = {
   noiseRatio: DEFAULT_NOISE_RATIO,
   noiseVariance: null,
   boundRows: 512,
+  linearRows: 512,
   labels: 'auto',
   labelBins: 10,
   maxBytes: 256 * 1024 * 1024,
@@ -67,7 +74,7 @@ export type ResolvedProbeOptions = Readonly<Required<Omit<ProbeOptions, 'noiseRa
   readonly noiseVariance: number | null;
 };
 
-const NUMBERS = ['every', 'budget', 'size', 'bins', 'noiseRatio', 'noiseVariance', 'boundRows', 'labelBins', 'maxBytes'] as const;
+const NUMBERS = ['every', 'budget', 'size', 'bins', 'noiseRatio', 'noiseVariance', 'boundRows', 'linearRows', 'labelBins', 'maxBytes'] as const;
 const REALS: readonly string[] = ['noiseRatio', 'noiseVariance'];
 export const PROBE_OPTION_NAMES = ['x', 'y', 'labels', ...NUMBERS] as const;
 
@@ -98,7 +105,7 @@ export function resolveProbeOptions(value: unknown): ResolvedProbeOptions | null
       continue;
     }
     const real = REALS.includes(k);
-    const min = k === 'boundRows' || real ? 0 : k === 'every' ? 1 : 2;
+    const min = k === 'boundRows' || k === 'linearRows' || real ? 0 : k === 'every' ? 1 : 2;
     if (typeof v !== 'number' || !Number.isFinite(v) || (!real && !Number.isInteger(v)) || v < min || (real && v <= 0)) {
       throw new TidemarkRangeError(
         'TIDEMARK_ERR_OPTION_INVALID',
@@ -155,6 +162,10 @@ export interface ProbeLayerValues {
   mi_bounds_saturated?: number;
   /** σ² of the noise the pairwise values assume (noiseRatio × the layer's total variance, or noiseVariance). */
   mi_noise_variance?: number;
+  /** Lower bound on I(T;Y) from a cross-fitted linear read-out (Barber & Agakov 2003), bits; absent with linearRows 0. */
+  mi_label_linear?: number;
+  /** Held-out accuracy of that linear read-out. */
+  linear_accuracy?: number;
   /** Rows that entered the binned estimate (rows with a NaN or infinite activation are left out). */
   probe_rows: number;
 }
@@ -165,8 +176,8 @@ export interface ProbeResult {
   dropped: Record<string, number>;
   /** Time the probe took (forward pass and estimates), ms. */
   ms: number;
-  /** Where that time went, ms: the forward pass with the read-back, the binned estimates, the pairwise bounds. */
-  timing: { forward: number; binned: number; bounds: number };
+  /** Where that time went, ms: the forward pass with the read-back, the binned estimates, the pairwise bounds, the linear read-outs. */
+  timing: { forward: number; binned: number; bounds: number; linear: number };
 }
 
 const BOUNDED: Record<string, [number, number]> = {
@@ -406,6 +417,10 @@ export class Probe {
               rows: Math.min(o.boundRows, this.rows),
             }
           : null,
+      linear:
+        o.linearRows > 0
+          ? { estimator: 'linear-probe-barber-agakov', rows: Math.min(o.linearRows, this.rows), folds: LINEAR_PROBE_DEFAULTS.folds, l2: '1/fitting rows' }
+          : null,
       layers: Object.fromEntries(this.layers.map((l) => [l.name, { activation: l.activation, range: l.range, units: l.units }])),
       skipped: this.skipped,
     };
@@ -431,7 +446,7 @@ export class Probe {
       const r = this.probeModel.predict(this.xs.length === 1 ? this.xs[0]! : this.xs, { batchSize: 512 });
       return Array.isArray(r) ? r : [r];
     });
-    const timing = { forward: 0, binned: 0, bounds: 0 };
+    const timing = { forward: 0, binned: 0, bounds: 0, linear: 0 };
     const result: ProbeResult = { layers: {}, dropped: {}, ms: 0, timing };
     try {
       const acts = await Promise.all(outs.map(async (o) => (await o.data()) as Float32Array));
@@ -479,6 +494,15 @@ export class Probe {
       values.mi_bounds_saturated = b.saturated ? 1 : 0;
       if (Number.isFinite(b.noise_variance)) values.mi_noise_variance = b.noise_variance;
       timing.bounds += performance.now() - t1;
+    }
+    if (o.linearRows > 0) {
+      const t2 = performance.now();
+      const r = linearProbeInformation(acts, shape, this.classes, { maxRows: o.linearRows });
+      if (Number.isFinite(r.mi_label_lower)) {
+        values.mi_label_linear = r.mi_label_lower;
+        values.linear_accuracy = r.accuracy;
+      }
+      timing.linear += performance.now() - t2;
     }
     return values;
   }

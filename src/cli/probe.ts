@@ -16,6 +16,8 @@ export const PROBE_METRICS = [
   'mi_label_pairwise',
   'mi_bounds_saturated',
   'mi_noise_variance',
+  'mi_label_linear',
+  'linear_accuracy',
   'act_mean',
   'act_std',
   'act_saturation',
@@ -42,6 +44,8 @@ export interface ProbeSettings {
   budget: number | null;
   /** noise_ratio: σ² as a share of each layer's spread; noise_variance: one absolute σ² (runs before the ratio, or asked for). */
   bounds: { estimator: string | null; noise_ratio: number | null; noise_variance: number | null; rows: number | null } | null;
+  /** The linear read-out's lower bound on I(T;Y); null when off or not recorded. */
+  linear: { estimator: string | null; rows: number | null; folds: number | null } | null;
 }
 
 export interface ProbeLatest {
@@ -57,7 +61,7 @@ export const BOUNDS_SATURATED_MARK = '†';
 export const SATURATED_NOTE = 'every probe example in its own bin: this value says nothing about the layer';
 export const BOUNDS_SATURATED_NOTE = 'every probe example told apart through the added noise: these bounds say nothing about the layer';
 export const PROBE_CAUTION =
-  'Both are estimates that depend on their settings (the noise σ², the bin count, the probe rows) and on the activation function; compare them only between runs with the same settings, and confirm any decision on held-out data.';
+  'All are estimates that depend on their settings (the noise σ², the bin count, the probe rows) and on the activation function; the linear read-out gives a lower bound on I(T;Y) (with its held-out accuracy), which misses what a linear map cannot reach. Compare them only between runs with the same settings, and confirm any decision on held-out data.';
 
 /** Reads config.probe defensively: stores written by older versions, or imported, may lack parts of it. */
 export function probeSettings(config: Record<string, unknown>): ProbeSettings {
@@ -69,6 +73,7 @@ export function probeSettings(config: Record<string, unknown>): ProbeSettings {
     every: c.every,
     budget: c.budget,
     bounds: c.bounds === null ? null : { estimator: c.bounds.estimator, noise_ratio: c.bounds.noiseRatio, noise_variance: c.bounds.noiseVariance, rows: c.bounds.rows },
+    linear: c.linear,
   };
 }
 
@@ -107,6 +112,7 @@ function settingsLine(s: ProbeSettings): string {
     const noise = s.bounds.noise_ratio !== null ? `σ² ${s.bounds.noise_ratio} × each layer's spread` : `σ² ${s.bounds.noise_variance ?? '?'}`;
     parts.push(`bounds ${s.bounds.estimator ?? 'pairwise'}, ${noise}, ${s.bounds.rows ?? '?'} rows`);
   }
+  if (s.linear !== null) parts.push(`I(T;Y) ≥ ${s.linear.estimator ?? 'linear read-out'}, ${s.linear.rows ?? '?'} rows in ${s.linear.folds ?? '?'} folds`);
   if (typeof s.every === 'number') parts.push(`every ${s.every} window${s.every === 1 ? '' : 's'}`);
   else if (s.every !== null) parts.push(`every: ${printable(s.every, 20)}${s.budget !== null ? ` (at most ${fmt(100 * s.budget, 1)}% of training time)` : ''}`);
   return parts.join('; ');
@@ -120,7 +126,7 @@ function marked(text: string, flag: number | null, mark: string): string {
 /** The probe section of `tidemark show`, as lines. */
 export function renderProbe(p: ProbeLatest): string[] {
   // The noise-regularised values first: they stay informative on wide layers, where the binned ones sit at log2(rows).
-  const rows = [['layer', 'probe step', 'noisy I(X;T) bounds', 'noisy I(T;Y)', 'noise σ²', 'binned I(X;T)', 'binned I(T;Y)', 'at limit', 'rows']];
+  const rows = [['layer', 'probe step', 'noisy I(X;T) bounds', 'noisy I(T;Y)', 'noise σ²', 'I(T;Y) ≥ linear', 'its accuracy', 'binned I(X;T)', 'binned I(T;Y)', 'at limit', 'rows']];
   let sat = false;
   let boundsSat = false;
   for (const { layer, step, values: v } of p.layers) {
@@ -133,6 +139,8 @@ export function renderProbe(p: ProbeLatest): string[] {
       marked(bounds, v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
       v.mi_label_pairwise === null ? '—' : marked(fmt(v.mi_label_pairwise), v.mi_bounds_saturated, BOUNDS_SATURATED_MARK),
       v.mi_noise_variance === null ? '—' : v.mi_noise_variance.toPrecision(3),
+      v.mi_label_linear === null ? '—' : fmt(v.mi_label_linear),
+      v.linear_accuracy === null ? '—' : `${(100 * v.linear_accuracy).toFixed(1)}%`,
       marked(fmt(v.mi_input), v.mi_saturated, SATURATED_MARK),
       marked(fmt(v.mi_label), v.mi_saturated, SATURATED_MARK),
       // A percentage, as the demo prints it: the share of activations pinned near the ends of their range.

@@ -12,6 +12,8 @@ export interface ProbeConfig {
   binned: { estimator: string | null; bins: number | null; marginBits: number | null };
   /** Null when the config records no pairwise bounds (turned off, or a run before them). */
   bounds: { estimator: string | null; noiseRatio: number | null; noiseVariance: number | null; rows: number | null } | null;
+  /** Null when the config records no linear read-out (turned off, or a run before it). */
+  linear: { estimator: string | null; rows: number | null; folds: number | null } | null;
 }
 
 const record = (v: unknown): Record<string, unknown> | null => (typeof v === 'object' && v !== null && !Array.isArray(v) ? (v as Record<string, unknown>) : null);
@@ -22,6 +24,7 @@ export function readProbeConfig(config: Record<string, unknown>): ProbeConfig {
   const p = record(config.probe) ?? {};
   const binned = record(p.binned) ?? {};
   const bounds = record(p.bounds);
+  const linear = record(p.linear);
   return {
     rows: num(p.rows),
     every: typeof p.every === 'number' || typeof p.every === 'string' ? p.every : null,
@@ -32,5 +35,6 @@ export function readProbeConfig(config: Record<string, unknown>): ProbeConfig {
       bounds === null
         ? null
         : { estimator: str(bounds.estimator), noiseRatio: num(bounds.noise_ratio), noiseVariance: num(bounds.noise_variance), rows: num(bounds.rows) },
+    linear: linear === null ? null : { estimator: str(linear.estimator), rows: num(linear.rows), folds: num(linear.folds) },
   };
 }

@@ -83,6 +83,10 @@ export interface LayerStats extends VariableStats {
   mi_bounds_saturated?: number;
   /** σ² of the noise the pairwise values assume in this window: probe.noiseRatio × the layer's total variance, or the absolute probe.noiseVariance. */
   mi_noise_variance?: number;
+  /** Lower bound on I(T;Y) from a linear read-out of the layer, cross-fitted on the probe rows (Barber & Agakov 2003), bits. */
+  mi_label_linear?: number;
+  /** Held-out accuracy of that linear read-out. */
+  linear_accuracy?: number;
   /** Probe rows that entered the binned estimate (rows with non-finite activations are left out). */
   probe_rows?: number;
 }

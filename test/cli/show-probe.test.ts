@@ -22,7 +22,7 @@ async function run(...args: string[]) {
 }
 
 const LEGEND = '* every probe example in its own bin: this value says nothing about the layer';
-const CAUTION_START = 'Both are estimates that depend on their settings';
+const CAUTION_START = 'All are estimates that depend on their settings';
 
 /** The whitespace-separated cells of the row of `layer` in the probe table (the line after the "probe" line). */
 function probeRow(out: string, layer: string): string[] {
@@ -73,7 +73,7 @@ describe('tidemark show with probe values', () => {
   it('lists each layer at its latest probe step, with stored values and saturated ones marked', async () => {
     const r = await run('show', 'fine', '--db', db);
     expect(r.code).toBe(EXIT.ok);
-    expect(r.out).toContain("  probe    binned-plugin, 30 bins per unit, 64 rows; bounds pairwise-kolchinsky-tracey, σ² 0.2 × each layer's spread, 64 rows; every 2 windows");
+    expect(r.out).toContain("  probe    binned-plugin, 30 bins per unit, 64 rows; bounds pairwise-kolchinsky-tracey, σ² 0.2 × each layer's spread, 64 rows; I(T;Y) ≥ linear-probe-barber-agakov, 64 rows in 2 folds; every 2 windows");
     expect(r.out).toContain(CAUTION_START);
     const flags: number[] = [];
     for (const layer of layerNames.fine!) {
@@ -90,11 +90,14 @@ describe('tidemark show with probe values', () => {
       expect(cells[2]).toBe(`${fmt(v('mi_input_lower'))}–${fmt(v('mi_input_upper'))}${boundsMark}`);
       expect(cells[3]).toBe(fmt(v('mi_label_pairwise')) + boundsMark);
       expect(cells[4]).toBe(v('mi_noise_variance')!.toPrecision(3));
-      expect(cells[5]).toBe(fmt(v('mi_input')) + mark);
-      expect(cells[6]).toBe(fmt(v('mi_label')) + mark);
+      // The linear read-out's lower bound, with its held-out accuracy.
+      expect(cells[5]).toBe(fmt(v('mi_label_linear')));
+      expect(cells[6]).toBe(`${(100 * v('linear_accuracy')!).toFixed(1)}%`);
+      expect(cells[7]).toBe(fmt(v('mi_input')) + mark);
+      expect(cells[8]).toBe(fmt(v('mi_label')) + mark);
       // The share of activations at their limit, in per cent as the demo prints it.
-      expect(cells[7]).toBe(`${(100 * v('act_saturation')!).toFixed(1)}%`);
-      expect(cells[8]).toBe('64');
+      expect(cells[9]).toBe(`${(100 * v('act_saturation')!).toFixed(1)}%`);
+      expect(cells[10]).toBe('64');
     }
     // The first (6-unit tanh) layer is saturated at 30 bins here; the mark and its legend must show.
     expect(flags[0]).toBe(1);
@@ -109,8 +112,8 @@ describe('tidemark show with probe values', () => {
       const cells = probeRow(r.out, layer);
       expect(cells[1]).toBe('16');
       expect(stored(db, ids.coarse, layer, 16, 'mi_saturated')).toBe(0);
-      expect(cells[5]).toBe(fmt(stored(db, ids.coarse, layer, 16, 'mi_input')));
-      expect(cells[6]).toBe(fmt(stored(db, ids.coarse, layer, 16, 'mi_label')));
+      expect(cells[7]).toBe(fmt(stored(db, ids.coarse, layer, 16, 'mi_input')));
+      expect(cells[8]).toBe(fmt(stored(db, ids.coarse, layer, 16, 'mi_label')));
     }
     expect(r.out).not.toContain('*');
     expect(r.out).not.toContain(LEGEND);
@@ -128,6 +131,7 @@ describe('tidemark show with probe values', () => {
       every: 2,
       budget: null,
       bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_ratio: 0.2, noise_variance: null, rows: 64 },
+      linear: { estimator: 'linear-probe-barber-agakov', rows: 64, folds: 2 },
     });
     expect(probe.layers.map((l) => l.layer)).toEqual(layerNames.fine);
     for (const l of probe.layers) {
@@ -190,8 +194,8 @@ describe('tidemark show with partial probe values', () => {
       '  probe    binned-plugin, 12 bins per unit, 256 rows; bounds pairwise-kolchinsky-tracey, σ² 0.25, 128 rows; every: auto (at most 3.0% of training time)',
     );
     // A run stored before the noise ratio: no pairwise I(T;Y) or σ² per layer, an absolute σ² in its config.
-    expect(probeRow(r.out, 'dense_Dense1')).toEqual(['dense_Dense1', '24', '6.990–7.000†', '—', '—', '3.250', '0.750', '—', '250']);
-    expect(probeRow(r.out, 'dense_Dense2')).toEqual(['dense_Dense2', '8', '—', '—', '—', '8.000*', '1.500*', '12.5%', '256']);
+    expect(probeRow(r.out, 'dense_Dense1')).toEqual(['dense_Dense1', '24', '6.990–7.000†', '—', '—', '—', '—', '3.250', '0.750', '—', '250']);
+    expect(probeRow(r.out, 'dense_Dense2')).toEqual(['dense_Dense2', '8', '—', '—', '—', '—', '—', '8.000*', '1.500*', '12.5%', '256']);
     // dense_Dense3 appears in the gradient table only.
     expect(r.out.split('\n').filter((l) => l.trim().startsWith('dense_Dense3'))).toHaveLength(1);
     expect(r.out).toContain(LEGEND);
