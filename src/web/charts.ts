@@ -345,14 +345,16 @@ export function drawInfoPlane(box: HTMLElement, plane: InfoPlane, width: number)
   const ymax = Math.max(...all.map((p) => p.y), plane.labelCeiling ?? 0, 1e-9) * 1.05;
   const X = (v: number): number => m.left + (pw * v) / xmax;
   const Y = (v: number): number => m.top + ph - (ph * v) / ymax;
-  const pairwise = plane.estimator === 'pairwise';
+  // Pairwise and linear share the noisy I(X;T) across; they differ in what is up.
+  const noisy = plane.estimator !== 'binned';
+  const linear = plane.estimator === 'linear';
   const root = svg('svg', {
     width,
     height,
     viewBox: `0 0 ${width} ${height}`,
     role: 'img',
     'data-estimator': plane.estimator,
-    'aria-label': `Information plane, ${pairwise ? 'pairwise' : 'binned'} estimate: input information against label information, one path per layer over training`,
+    'aria-label': `Information plane, ${plane.estimator} estimate: input information against label information, one path per layer over training`,
   });
   const axes = svg('g', { class: 'axes', 'font-size': 11, fill: '#333' });
   axes.append(svg('rect', { x: m.left, y: m.top, width: pw, height: ph, fill: 'none', stroke: '#bbb' }));
@@ -367,9 +369,13 @@ export function drawInfoPlane(box: HTMLElement, plane: InfoPlane, width: number)
     svg(
       'text',
       { x: m.left + pw / 2, y: height - 8, 'text-anchor': 'middle', 'data-testid': 'plane-x-title' },
-      pw >= 460 ? `I(X;T), bits: what the layer keeps about the input (${pairwise ? 'pairwise, noise added' : 'binned estimate'})` : 'I(X;T), bits: about the input',
+      pw >= 460 ? `I(X;T), bits: what the layer keeps about the input (${noisy ? 'pairwise, noise added' : 'binned estimate'})` : 'I(X;T), bits: about the input',
     ),
-    svg('text', { x: 14, y: m.top + ph / 2, 'text-anchor': 'middle', transform: `rotate(-90 14 ${m.top + ph / 2})` }, 'I(T;Y), bits: about the label'),
+    svg(
+      'text',
+      { x: 14, y: m.top + ph / 2, 'text-anchor': 'middle', transform: `rotate(-90 14 ${m.top + ph / 2})`, 'data-testid': 'plane-y-title' },
+      linear ? 'I(T;Y) ≥, bits: linear read-out' : 'I(T;Y), bits: about the label',
+    ),
   );
   root.append(axes);
   // The caps, where they are known: nothing the estimate reads can lie past them.
@@ -389,12 +395,12 @@ export function drawInfoPlane(box: HTMLElement, plane: InfoPlane, width: number)
     );
   }
   root.append(caps);
-  for (const t of plane.trajectories) root.append(layerPath(t, X, Y, pairwise));
+  for (const t of plane.trajectories) root.append(layerPath(t, X, Y, plane.estimator));
   box.replaceChildren(root);
 }
 
 /** One layer's path: its segments (saturated ones grey and dotted), then a marker per probe window. */
-function layerPath(t: InfoTrajectory, X: (v: number) => number, Y: (v: number) => number, pairwise: boolean): SVGGElement {
+function layerPath(t: InfoTrajectory, X: (v: number) => number, Y: (v: number) => number, estimator: InfoPlane['estimator']): SVGGElement {
   const style = layerStyle(t.index);
   const g = svg('g', { class: 'info-layer', 'data-layer': t.label });
   // One path per layer for the measured segments, one for those touching a saturated window.
@@ -423,9 +429,11 @@ function layerPath(t: InfoTrajectory, X: (v: number) => number, Y: (v: number) =
     const paint = p.saturated ? { fill: '#ffffff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 } : { fill: tint(style.stroke, 0.75 * (1 - p.age)), stroke: style.stroke, 'stroke-width': 1.25 };
     const cls = ['info-point', i === 0 ? 'info-start' : '', i === last ? 'info-end' : '', p.saturated ? 'saturated' : ''].filter((c) => c !== '').join(' ');
     const data = { class: cls, 'data-step': p.step, 'data-x': p.x, 'data-y': p.y, ...paint };
-    const values = pairwise
-      ? `I(X;T) ${formatNumber(p.x)} bits${p.lower === null ? '' : ` (lower bound ${formatNumber(p.lower)})`}, I(T;Y) ${formatNumber(p.y)} bits${p.noiseVariance === null ? '' : `, σ² ${settingText(p.noiseVariance)}`}`
-      : `I(X;T) ${formatNumber(p.x)} bits, I(T;Y) ${formatNumber(p.y)} bits`;
+    const label = estimator === 'linear' ? `I(T;Y) ≥ ${formatNumber(p.y)} bits (linear read-out)` : `I(T;Y) ${formatNumber(p.y)} bits`;
+    const values =
+      estimator === 'binned'
+        ? `I(X;T) ${formatNumber(p.x)} bits, ${label}`
+        : `I(X;T) ${formatNumber(p.x)} bits${p.lower === null ? '' : ` (lower bound ${formatNumber(p.lower)})`}, ${label}${p.noiseVariance === null ? '' : `, σ² ${settingText(p.noiseVariance)}`}`;
     const title = svg('title', {}, `${t.label}${role === '' ? '' : ` (${role})`} at step ${p.step}: ${values}${p.saturated ? ' (saturated: says nothing)' : ''}`);
     if (i === last) {
       // The end: a triangle of about the circle's area, a little larger so the latest window stands out.
@@ -474,7 +482,7 @@ export function infoLegend(plane: InfoPlane): HTMLElement {
   item(
     marks,
     svg('svg', { width: 26, height: 12, 'aria-hidden': 'true' }, svg('circle', { cx: 13, cy: 6, r: 4, fill: '#fff', stroke: REFERENCE_GREY, 'stroke-width': 1.5 })),
-    plane.estimator === 'pairwise'
+    plane.estimator !== 'binned'
       ? 'saturated: says nothing (every probe example stays apart through the added noise, so the estimate is at its ceiling)'
       : 'saturated: says nothing (every probe example had its own bin, so the estimate is at its ceiling)',
   );

@@ -403,20 +403,24 @@ export function noiseSentence(cols: NoiseColumns): string {
 
 /**
  * The estimate the plane shows: `pairwise`, the Kolchinsky & Tracey (2017) pairwise-distance estimate of the
- * layer plus Gaussian noise (mi_input_upper across, mi_label_pairwise up), or `binned`, the plug-in estimate
- * of the binned layer (mi_input across, mi_label up), the classic picture.
+ * layer plus Gaussian noise (mi_input_upper across, mi_label_pairwise up); `linear`, the same across and the
+ * linear read-out's lower bound on I(T;Y) up (mi_label_linear, Barber & Agakov 2003), which needs no noise; or
+ * `binned`, the plug-in estimate of the binned layer (mi_input across, mi_label up), the classic picture.
  */
-export type PlaneEstimator = 'pairwise' | 'binned';
+export type PlaneEstimator = 'pairwise' | 'linear' | 'binned';
+
+/** The order in which the plane falls back when the estimator asked for is not in the run's windows. */
+const PLANE_ESTIMATORS: readonly PlaneEstimator[] = ['pairwise', 'linear', 'binned'];
 
 export interface InfoPoint {
   step: number;
   /** I(X;T), bits: mi_input_upper (pairwise) or mi_input (binned). */
   x: number;
-  /** I(T;Y), bits: mi_label_pairwise (pairwise) or mi_label (binned). */
+  /** I(T;Y), bits: mi_label_pairwise (pairwise), mi_label_linear (linear, a lower bound) or mi_label (binned). */
   y: number;
   /** The estimate says nothing here: mi_bounds_saturated (pairwise) or mi_saturated (binned) is 1. */
   saturated: boolean;
-  /** Pairwise: the Bhattacharyya-based lower bound on I(X;T), bits; null for binned or when not stored. */
+  /** Pairwise and linear: the Bhattacharyya-based lower bound on I(X;T), bits; null for binned or when not stored. */
   lower: number | null;
   /** Pairwise: σ² of the noise added to this layer in this window (mi_noise_variance); null when not stored. */
   noiseVariance: number | null;
@@ -441,7 +445,7 @@ function planePair(s: LayerStats | undefined, estimator: PlaneEstimator): Omit<I
     return x === null || y === null ? null : { x, y, saturated: s.mi_saturated === 1, lower: null, noiseVariance: null };
   }
   const x = finite(s.mi_input_upper);
-  const y = finite(s.mi_label_pairwise);
+  const y = finite(estimator === 'linear' ? s.mi_label_linear : s.mi_label_pairwise);
   return x === null || y === null ? null : { x, y, saturated: s.mi_bounds_saturated === 1, lower: finite(s.mi_input_lower), noiseVariance: positive(s.mi_noise_variance) };
 }
 
@@ -469,7 +473,7 @@ export function infoTrajectories(layerNames: readonly string[], windows: readonl
   return out;
 }
 
-/** What the run's config.probe says about the plane's two estimators; null where it does not say (older or imported runs). */
+/** What the run's config.probe says about the plane's estimators; null where it does not say (older or imported runs). */
 export interface PlaneSettings {
   /** Equal-width bins per unit of the binned estimate. */
   bins: number | null;
@@ -486,6 +490,8 @@ export interface PlaneSettings {
     /** Rows entering the pairwise estimate: the estimate is at most log2 of it. */
     rows: number | null;
   } | null;
+  /** The linear read-out's settings; null when the config records none (turned off, or a run before it). */
+  linear: { rows: number | null; folds: number | null } | null;
   /** Label classes (bins of a regression target): I(T;Y) ≤ H(Y) ≤ log2 of it. */
   classes: number | null;
 }
@@ -498,21 +504,22 @@ export function planeSettings(config: Record<string, unknown>): PlaneSettings {
     rows: c.rows,
     marginBits: c.binned.marginBits,
     pairwise: c.bounds === null ? null : { noiseVariance: c.bounds.noiseVariance, relative: c.bounds.noiseRatio, rows: c.bounds.rows },
+    linear: c.linear === null ? null : { rows: c.linear.rows, folds: c.linear.folds },
     classes: c.classes,
   };
 }
 
-export const NO_PLANE_SETTINGS: PlaneSettings = { bins: null, rows: null, marginBits: null, pairwise: null, classes: null };
+export const NO_PLANE_SETTINGS: PlaneSettings = { bins: null, rows: null, marginBits: null, pairwise: null, linear: null, classes: null };
 
 export interface InfoPlane {
   /** The estimator drawn. */
   estimator: PlaneEstimator;
-  /** The one asked for (the URL's); the other is drawn when the run's windows do not hold this one. */
+  /** The one asked for (the URL's); another is drawn when the run's windows do not hold this one. */
   requested: PlaneEstimator;
   /** Whether any probe window of the run holds each estimator's pair. */
   available: Record<PlaneEstimator, boolean>;
   trajectories: InfoTrajectory[];
-  /** Layer-windows that hold the other estimator but not the one drawn (older windows of a run, say): not drawn. */
+  /** Layer-windows that hold another estimator but not the one drawn (older windows of a run, say): not drawn. */
   left: number;
   /** Rows the drawn estimate was computed over (at most log2 of it, in bits); null when unknown. */
   rows: number | null;
@@ -521,44 +528,46 @@ export interface InfoPlane {
 }
 
 /**
- * The plane as drawn: the estimator asked for when the run's probe windows hold it, else the other one (a
- * run recorded before the pairwise estimate, or with the bounds turned off, falls back to binned).
+ * The plane as drawn: the estimator asked for when the run's probe windows hold it, else the first one they
+ * hold in the order pairwise, linear, binned (a run recorded before the pairwise estimate, or with the bounds
+ * turned off, falls back to binned).
  */
 export function infoPlane(layerNames: readonly string[], windows: readonly WindowRecord[], requested: PlaneEstimator = 'pairwise', settings: PlaneSettings = NO_PLANE_SETTINGS): InfoPlane {
-  const other: PlaneEstimator = requested === 'pairwise' ? 'binned' : 'pairwise';
-  const holds = { pairwise: 0, binned: 0, otherOnly: { pairwise: 0, binned: 0 } };
+  const holds: Record<PlaneEstimator, number> = { pairwise: 0, linear: 0, binned: 0 };
+  // Per estimator, the layer-windows that hold some other estimator but not this one.
+  const missing: Record<PlaneEstimator, number> = { pairwise: 0, linear: 0, binned: 0 };
   let binnedRows: number | null = null;
   for (const w of orderedWindows(windows)) {
     for (const label of layerNames) {
       const s = w.layers[label];
-      const p = planePair(s, 'pairwise') !== null;
-      const b = planePair(s, 'binned') !== null;
-      if (p) holds.pairwise++;
-      if (b) holds.binned++;
-      if (p && !b) holds.otherOnly.pairwise++;
-      if (b && !p) holds.otherOnly.binned++;
+      const has = PLANE_ESTIMATORS.map((e) => planePair(s, e) !== null);
+      PLANE_ESTIMATORS.forEach((e, i) => {
+        if (has[i]) holds[e]++;
+        else if (has.some(Boolean)) missing[e]++;
+      });
       const r = positive(s?.probe_rows);
-      if (b && r !== null) binnedRows = Math.max(binnedRows ?? 0, r);
+      if (has[2] && r !== null) binnedRows = Math.max(binnedRows ?? 0, r);
     }
   }
-  const available = { pairwise: holds.pairwise > 0, binned: holds.binned > 0 };
-  const estimator = available[requested] || !available[other] ? requested : other;
-  const rows = estimator === 'pairwise' ? (settings.pairwise?.rows ?? null) : (binnedRows ?? settings.rows);
+  const available = { pairwise: holds.pairwise > 0, linear: holds.linear > 0, binned: holds.binned > 0 };
+  const estimator = available[requested] ? requested : (PLANE_ESTIMATORS.find((e) => available[e]) ?? requested);
+  const rows = estimator === 'binned' ? (binnedRows ?? settings.rows) : (settings.pairwise?.rows ?? null);
   return {
     estimator,
     requested,
     available,
     trajectories: infoTrajectories(layerNames, windows, estimator),
-    // Windows holding only the estimator not drawn (e.g. binned values in windows before the pairwise one was recorded).
-    left: holds.otherOnly[estimator === 'pairwise' ? 'binned' : 'pairwise'],
+    // Windows holding only estimators not drawn (e.g. binned values in windows before the pairwise one was recorded).
+    left: missing[estimator],
     rows,
     labelCeiling: settings.classes !== null && settings.classes >= 2 ? Math.log2(settings.classes) : null,
   };
 }
 
-/** `plane=binned` in the fragment's query: the run view's plane shows the binned estimate; pairwise otherwise. */
+/** `plane=binned` or `plane=linear` in the fragment's query: the run view's plane shows that estimate; pairwise otherwise. */
 export function planeOf(hash: string): PlaneEstimator {
-  return fragmentQuery(hash).get('plane') === 'binned' ? 'binned' : 'pairwise';
+  const asked = fragmentQuery(hash).get('plane');
+  return asked === 'binned' || asked === 'linear' ? asked : 'pairwise';
 }
 
 /** The fragment with the plane's estimator set (the default, pairwise, leaves no trace); the rest of its query stays. */
@@ -568,7 +577,7 @@ export function withPlane(hash: string, estimator: PlaneEstimator): string {
 
 /** Shown with the plane: what its numbers are and are not. */
 export const PLANE_CAUTION =
-  'Both estimators give estimates that depend on their settings (bins, σ², probe rows): read the shape of a path rather than exact values, and compare runs only at the same settings. ' +
+  'Every estimator gives estimates that depend on its settings (bins, σ², probe rows): read the shape of a path rather than exact values, and compare runs only at the same settings. ' +
   'Whether a layer compresses depends on its activation and need not happen with ReLU (Saxe et al. 2018); confirm any decision on held-out data.';
 
 /** A setting in three significant digits without trailing zeros (σ² 0.0625, a ratio 0.2); very large or small values as formatNumber gives them. */
@@ -599,14 +608,23 @@ function noiseText(plane: InfoPlane, settings: PlaneSettings): string {
 export function planeSentence(plane: InfoPlane, settings: PlaneSettings): string {
   const parts: string[] = [];
   if (plane.estimator !== plane.requested) {
-    parts.push(
-      plane.estimator === 'binned'
-        ? 'This run\'s probe windows hold no pairwise estimate (recorded before it, or with the bounds turned off), so the plane shows the binned one.'
-        : 'This run\'s probe windows hold no binned estimate, so the plane shows the pairwise one.',
-    );
+    const why: Record<PlaneEstimator, string> = {
+      pairwise: 'no pairwise estimate (recorded before it, or with the bounds turned off)',
+      linear: 'no linear read-out (recorded before it, or with it turned off)',
+      binned: 'no binned estimate',
+    };
+    parts.push(`This run's probe windows hold ${why[plane.requested]}, so the plane shows the ${plane.estimator} one.`);
   }
   const n = plane.rows;
-  if (plane.estimator === 'pairwise') {
+  if (plane.estimator === 'linear') {
+    const folds = settings.linear?.folds ?? null;
+    const lrows = settings.linear?.rows ?? null;
+    parts.push(
+      `Up: a lower bound on I(T;Y) from a linear read-out of the layer (Barber–Agakov, a softmax regression scored on ${lrows === null ? 'probe rows' : `${formatNumber(lrows)} probe rows`} it was not fitted to${folds === null ? '' : `, ${folds} folds`}): ` +
+        'no noise is added and it cannot saturate, but it misses what a linear map cannot reach. ' +
+        `Across: the Kolchinsky–Tracey KL-based estimate of I(X;T) with Gaussian noise ${noiseText(plane, settings)}, capped at ${n === null ? 'log2 of the rows' : bitsText(n)}.`,
+    );
+  } else if (plane.estimator === 'pairwise') {
     parts.push(
       `Kolchinsky–Tracey pairwise estimate with Gaussian noise ${noiseText(plane, settings)} over ${n === null ? 'the probe rows' : `${formatNumber(n)} probe rows`}; ` +
         `an estimate of a noise-regularised quantity, capped at ${n === null ? 'log2 of the rows' : bitsText(n)}. ` +

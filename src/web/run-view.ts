@@ -100,7 +100,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
   const infoSection = el('section', { class: 'info', 'data-testid': 'info-section', hidden: '' });
   const infoBox = el('div', { class: 'plane', 'data-testid': 'info-chart' });
   const infoLegendBox = el('div');
-  // The estimator shown: pairwise unless the URL asks for binned (`plane=binned`, kept like `steps=`).
+  // The estimator shown: pairwise unless the URL asks for another (`plane=linear`, `plane=binned`, kept like `steps=`).
   let estimator: PlaneEstimator = planeOf(location.hash);
   const choice = (value: PlaneEstimator, text: string): { label: HTMLLabelElement; input: HTMLInputElement } => {
     const input = el('input', { type: 'radio', name: 'plane-estimator', value, 'data-testid': `plane-${value}` });
@@ -115,6 +115,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     return { label: el('label', {}, input, ` ${text}`), input };
   };
   const pairwiseChoice = choice('pairwise', 'pairwise (Kolchinsky–Tracey, with added noise)');
+  const linearChoice = choice('linear', 'linear read-out for I(T;Y), a lower bound');
   const binnedChoice = choice('binned', 'binned (the classic picture)');
   const infoSentence = el('p', { class: 'plane-sentence', 'data-testid': 'plane-sentence', 'aria-live': 'polite' });
   infoSection.append(
@@ -124,7 +125,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       { class: 'note' },
       'Per layer, an estimate of how much its activations say about the input (across) and about the label (up), one path per layer in step order from its first probe window to its latest.',
     ),
-    el('fieldset', { class: 'plane-choice', 'data-testid': 'plane-choice' }, el('legend', {}, 'Estimator'), pairwiseChoice.label, binnedChoice.label),
+    el('fieldset', { class: 'plane-choice', 'data-testid': 'plane-choice' }, el('legend', {}, 'Estimator'), pairwiseChoice.label, linearChoice.label, binnedChoice.label),
     infoSentence,
     el('p', { class: 'caution' }, PLANE_CAUTION),
     infoLegendBox,
@@ -334,10 +335,10 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     infoSection.hidden = false;
     infoSection.dataset.estimator = plane.estimator;
     // The radios tell what is drawn; one whose estimator the run's windows lack cannot be chosen.
-    pairwiseChoice.input.disabled = !plane.available.pairwise;
-    binnedChoice.input.disabled = !plane.available.binned;
-    pairwiseChoice.input.checked = plane.estimator === 'pairwise';
-    binnedChoice.input.checked = plane.estimator === 'binned';
+    for (const [c, e] of [[pairwiseChoice, 'pairwise'], [linearChoice, 'linear'], [binnedChoice, 'binned']] as const) {
+      c.input.disabled = !plane.available[e];
+      c.input.checked = plane.estimator === e;
+    }
     // Set only when it changes: the line is read out (aria-live) when the estimator changes, not at every live window.
     const sentence = planeSentence(plane, settings);
     if (infoSentence.textContent !== sentence) infoSentence.textContent = sentence;

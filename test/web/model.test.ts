@@ -380,7 +380,7 @@ describe('information plane model', () => {
       bounds: { estimator: 'pairwise-kolchinsky-tracey', noise_variance: null, noise_ratio: 0.2, rows: 512 },
     },
   };
-  type Probe = Partial<Record<'mi_input' | 'mi_label' | 'mi_saturated' | 'mi_input_upper' | 'mi_input_lower' | 'mi_label_pairwise' | 'mi_bounds_saturated' | 'mi_noise_variance' | 'probe_rows', number>>;
+  type Probe = Partial<Record<'mi_input' | 'mi_label' | 'mi_saturated' | 'mi_input_upper' | 'mi_input_lower' | 'mi_label_pairwise' | 'mi_label_linear' | 'mi_bounds_saturated' | 'mi_noise_variance' | 'probe_rows', number>>;
   /** Windows at steps 8, 16, …, 40; `probe[i][layer]` joins window i's layer (the third layer is never probed). */
   const windowsWith = (probe: Record<number, Record<string, Probe>>) =>
     fakeWindows(run, 5, 1, false).map((w, i) => ({
@@ -418,10 +418,11 @@ describe('information plane model', () => {
   });
 
   it('reads the estimators and their settings from config.probe, and null where it does not say', () => {
-    expect(planeSettings(config)).toEqual({ bins: 30, rows: 1024, marginBits: 0.1, pairwise: { noiseVariance: null, relative: 0.2, rows: 512 }, classes: 3 });
-    expect(planeSettings({})).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, classes: null });
+    expect(planeSettings(config)).toEqual({ bins: 30, rows: 1024, marginBits: 0.1, pairwise: { noiseVariance: null, relative: 0.2, rows: 512 }, linear: null, classes: 3 });
+    expect(planeSettings({})).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, linear: null, classes: null });
     // Bounds turned off (boundRows 0) write bounds: null; values of the wrong type are not taken.
-    expect(planeSettings({ probe: { rows: '1024', binned: { bins: Number.NaN }, bounds: null, labels: [] } })).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, classes: null });
+    expect(planeSettings({ probe: { rows: '1024', binned: { bins: Number.NaN }, bounds: null, labels: [] } })).toEqual({ bins: null, rows: null, marginBits: null, pairwise: null, linear: null, classes: null });
+    expect(planeSettings({ probe: { linear: { estimator: 'linear-probe-barber-agakov', rows: 512, folds: 2 } } }).linear).toEqual({ rows: 512, folds: 2 });
     expect(planeSettings({ probe: { bounds: { noise_variance: 0.1, rows: 256 } } }).pairwise).toEqual({ noiseVariance: 0.1, relative: null, rows: 256 });
   });
 
@@ -429,7 +430,7 @@ describe('information plane model', () => {
     const plane = infoPlane(names, [probed[4]!, probed[0]!, probed[2]!, probed[1]!], 'pairwise', planeSettings(config));
     expect(plane.estimator).toBe('pairwise');
     expect(plane.requested).toBe('pairwise');
-    expect(plane.available).toEqual({ pairwise: true, binned: true });
+    expect(plane.available).toEqual({ pairwise: true, linear: false, binned: true });
     expect(plane.left).toBe(0);
     // The pairwise estimate is capped at log2 of the bound's rows (512), not of the probe's 1024.
     expect(plane.rows).toBe(512);
@@ -478,7 +479,7 @@ describe('information plane model', () => {
     const plane = infoPlane(names, binnedOnly, 'pairwise', settings);
     expect(plane.requested).toBe('pairwise');
     expect(plane.estimator).toBe('binned');
-    expect(plane.available).toEqual({ pairwise: false, binned: true });
+    expect(plane.available).toEqual({ pairwise: false, linear: false, binned: true });
     expect(plane.trajectories.map((t) => t.points.map((p) => [p.step, p.x, p.y]))).toEqual([
       [
         [16, 4, 0.5],
@@ -499,7 +500,36 @@ describe('information plane model', () => {
     const none = infoPlane(names, windowsWith({}), 'pairwise');
     expect(none.trajectories).toEqual([]);
     expect(none.estimator).toBe('pairwise');
-    expect(none.available).toEqual({ pairwise: false, binned: false });
+    expect(none.available).toEqual({ pairwise: false, linear: false, binned: false });
+  });
+
+  it('plots the linear read-out bound up against the noisy I(X;T) across when asked, and falls back to pairwise without it', () => {
+    // The layers' windows 2 and 4 hold the linear bound; window 0 predates it.
+    const linear = windowsWith({
+      0: { dense_Dense1: hidden(6.5, 5, 0.5, 0.04) },
+      2: { dense_Dense1: { ...hidden(5.75, 4.5, 1, 0.05), mi_label_linear: 1.3 } as Probe },
+      4: { dense_Dense1: { ...hidden(5.25, 4, 1.25, 0.0625), mi_label_linear: 1.55 } as Probe },
+    });
+    const settings = planeSettings({ ...config, probe: { ...(config.probe as object), linear: { estimator: 'linear-probe-barber-agakov', rows: 512, folds: 2 } } });
+    const plane = infoPlane(names, linear, 'linear', settings);
+    expect(plane.estimator).toBe('linear');
+    expect(plane.available).toEqual({ pairwise: true, linear: true, binned: true });
+    expect(plane.trajectories[0]!.points.map((p) => [p.step, p.x, p.y])).toEqual([
+      [24, 5.75, 1.3],
+      [40, 5.25, 1.55],
+    ]);
+    expect(plane.left).toBe(1);
+    expect(plane.rows).toBe(512);
+    expect(planeSentence(plane, settings)).toBe(
+      'Up: a lower bound on I(T;Y) from a linear read-out of the layer (Barber–Agakov, a softmax regression scored on 512 probe rows it was not fitted to, 2 folds): ' +
+        'no noise is added and it cannot saturate, but it misses what a linear map cannot reach. ' +
+        "Across: the Kolchinsky–Tracey KL-based estimate of I(X;T) with Gaussian noise σ² = 0.05 to 0.0625 across layers and windows (0.2 × the layer's spread, the total variance of its activations), capped at log2 512 = 9 bits. " +
+        '1 layer-window without this estimate is not drawn.',
+    );
+    // A run recorded before the linear read-out: asked for it, the plane shows the pairwise estimate and says why.
+    const before = infoPlane(names, probed, 'linear', planeSettings(config));
+    expect(before.estimator).toBe('pairwise');
+    expect(planeSentence(before, planeSettings(config))).toMatch(/^This run's probe windows hold no linear read-out \(recorded before it, or with it turned off\), so the plane shows the pairwise one\. Kolchinsky–Tracey/);
   });
 
   it('leaves out, and counts, the windows that hold only the other estimator', () => {
@@ -547,6 +577,7 @@ describe('information plane model', () => {
     expect(planeOf('#/run/abc')).toBe('pairwise');
     expect(planeOf('#/run/abc?steps=8-800&plane=binned')).toBe('binned');
     expect(planeOf('#/run/abc?plane=nonsense')).toBe('pairwise');
+    expect(planeOf('#/run/abc?plane=linear')).toBe('linear');
     expect(withPlane('#/run/abc?steps=8-800&token=t-1', 'binned')).toBe('#/run/abc?steps=8-800&token=t-1&plane=binned');
     expect(withPlane('#/run/abc?steps=8-800&plane=binned', 'pairwise')).toBe('#/run/abc?steps=8-800');
     expect(withPlane('#/run/abc?plane=binned', 'pairwise')).toBe('#/run/abc');

@@ -60,6 +60,7 @@ function withPairwise(ws: WindowRecord[]): WindowRecord[] {
             mi_input_upper: upper,
             mi_input_lower: upper - 1,
             mi_label_pairwise: 0.3 + 0.2 * k + 0.05 * j,
+            mi_label_linear: 0.8 + 0.1 * k + 0.05 * j,
             mi_bounds_saturated: 0,
             mi_noise_variance: 0.05 * (j + 1) * (1 + 0.1 * k),
           },
@@ -328,8 +329,20 @@ describe.skipIf(!haveChromium && !inCI)('the page in chromium', () => {
     expect(await page.isChecked('[data-testid="plane-pairwise"]')).toBe(true);
     if (SHOTS !== null) await page.locator(info).screenshot({ path: join(SHOTS, 'plane-pairwise.png') });
 
-    // To binned with the keyboard: the radio group takes the focus and an arrow key moves the choice.
+    // To the linear read-out, then to binned, with the keyboard: the radio group takes the focus and an arrow key
+    // moves the choice.
     await page.focus('[data-testid="plane-pairwise"]');
+    await page.keyboard.press('ArrowRight');
+    await page.waitForSelector(`${info}[data-estimator="linear"]`, { timeout: 5_000 });
+    expect(new URL(page.url()).hash).toBe(`#/run/${paired.id}?steps=8-80&plane=linear`);
+    for (const layer of layers) {
+      const d = await drawn(layer);
+      // The noisy I(X;T) across as for pairwise; the linear read-out's bound up.
+      expect(d.points.map((p) => p.x)).toEqual(probeWindows.map((w) => w.layers[layer]!.mi_input_upper));
+      expect(d.points.map((p) => p.y)).toEqual(probeWindows.map((w) => w.layers[layer]!.mi_label_linear));
+    }
+    expect(await page.textContent('[data-testid="plane-y-title"]')).toBe('I(T;Y) ≥, bits: linear read-out');
+    expect(await page.textContent('[data-testid="plane-sentence"]')).toMatch(/^Up: a lower bound on I\(T;Y\) from a linear read-out/);
     await page.keyboard.press('ArrowRight');
     await page.waitForSelector(`${info}[data-estimator="binned"]`, { timeout: 5_000 });
     expect(new URL(page.url()).hash).toBe(`#/run/${paired.id}?steps=8-80&plane=binned`);
