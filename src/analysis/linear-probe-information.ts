@@ -19,7 +19,7 @@
 import { TidemarkRangeError } from '../errors.js';
 import { checkActivations, checkOptionNames } from './binned-information.js';
 import { LN2 } from './entropy.js';
-import { mulberry32 } from './random.js';
+import { mulberry32, subsample } from './random.js';
 
 export interface LinearProbeOptions {
   /** Folds of the cross-fitting, an integer ≥ 2. Default 2. */
@@ -264,7 +264,6 @@ export function linearProbeInformation(
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'l2' must be a finite number ≥ 0; received ${String(o.l2)}.`);
   }
 
-  const rng = mulberry32(o.seed);
   let used: number[] = [];
   for (let r = 0; r < rows; r++) {
     let ok = true;
@@ -272,13 +271,7 @@ export function linearProbeInformation(
     if (ok) used.push(r);
   }
   const dropped = rows - used.length;
-  if (used.length > maxRows) {
-    for (let i = 0; i < maxRows; i++) {
-      const j = i + Math.floor(rng() * (used.length - i));
-      [used[i], used[j]] = [used[j]!, used[i]!];
-    }
-    used = used.slice(0, maxRows).sort((a, b) => a - b);
-  }
+  if (used.length > maxRows) used = subsample(used, maxRows, o.seed);
   const n = used.length;
   const classOf = new Map<number, number>();
   const y = new Int32Array(n);
@@ -301,6 +294,7 @@ export function linearProbeInformation(
   if (k < 2) return { mi_label_lower: 0, cross_entropy: 0, label_entropy: 0, accuracy: 1, ...base };
 
   // Folds dealt class by class in a seeded order, so every fold holds every class in proportion.
+  const rng = mulberry32(o.seed + 1);
   const fold = new Int32Array(n);
   let dealt = 0;
   for (let c = 0; c < k; c++) {

@@ -23,7 +23,7 @@
  * log-sum-exp shift already, so the sums never underflow to 0 and the logs never see 0.
  */
 
-import { mulberry32 } from './random.js';
+import { subsample } from './random.js';
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
 import { checkActivations, checkOptionNames, SATURATION_MARGIN_BITS } from './binned-information.js';
 import { LN2 } from './entropy.js';
@@ -95,19 +95,6 @@ export interface PairwiseInformation {
   /** The ratio σ²/V used; null when an absolute `noiseVariance` was given. */
   noise_ratio: number | null;
   estimator: 'pairwise-kolchinsky-tracey';
-}
-
-/** `k` of the indices `items`, uniformly without replacement (partial Fisher–Yates), returned sorted. */
-function subsample(items: number[], k: number, seed: number): number[] {
-  const rng = mulberry32(seed);
-  const a = items.slice();
-  for (let i = 0; i < k; i++) {
-    const j = i + Math.floor(rng() * (a.length - i));
-    const t = a[i] as number;
-    a[i] = a[j] as number;
-    a[j] = t;
-  }
-  return a.slice(0, k).sort((x, y) => x - y);
 }
 
 interface PairSums {

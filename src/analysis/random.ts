@@ -14,3 +14,16 @@ export function mulberry32(seed: number): () => number {
     return ((t ^ (t >>> 14)) >>> 0) / 4294967296;
   };
 }
+
+/** `k` of the indices `items`, uniformly without replacement (partial Fisher–Yates), returned sorted. */
+export function subsample(items: number[], k: number, seed: number): number[] {
+  const rng = mulberry32(seed);
+  const a = items.slice();
+  for (let i = 0; i < k; i++) {
+    const j = i + Math.floor(rng() * (a.length - i));
+    const t = a[i] as number;
+    a[i] = a[j] as number;
+    a[j] = t;
+  }
+  return a.slice(0, k).sort((x, y) => x - y);
+}
