@@ -61,6 +61,11 @@ export const LINEAR_PROBE_DEFAULTS = Object.freeze({ folds: 2, maxIterations: 20
 
 const OPTION_NAMES = ['folds', 'l2', 'maxIterations', 'maxRows', 'seed'] as const;
 
+/** Floor of a unit's spread in the standardisation, as a share of the layer's root-mean-square unit spread. */
+const SCALE_FLOOR = 0.1;
+/** Share of the read-out's distribution given to the uniform one (costs at most −ln(1 − ε) ≈ 0.001 nats a row). */
+const UNIFORM_SHARE = 1e-3;
+
 function checkInteger(where: string, name: string, v: number, min: number): number {
   if (!Number.isInteger(v) || v < min) {
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option '${name}' must be an integer ≥ ${min}; received ${String(v)}.`);
@@ -326,9 +331,24 @@ export function linearProbeInformation(
         scale[c] = (scale[c] as number) + dv * dv;
       }
     }
+    // A unit that barely moves on the fitting rows (a ReLU unit alive on one of them) would be blown up by its own
+    // spread, and a held-out row where it moves would get an absurd logit; its scale is floored at a tenth of the
+    // layer's typical unit spread.
+    let sdSq = 0;
+    let live = 0;
     for (let c = 0; c < cols; c++) {
       const sd = Math.sqrt((scale[c] as number) / train.length);
-      scale[c] = sd > 1e-12 * (1 + Math.abs(mean[c] as number)) ? 1 / sd : 0;
+      const alive = sd > 1e-12 * (1 + Math.abs(mean[c] as number));
+      scale[c] = alive ? sd : 0;
+      if (alive) {
+        sdSq += sd * sd;
+        live++;
+      }
+    }
+    const floor = live > 0 ? SCALE_FLOOR * Math.sqrt(sdSq / live) : 0;
+    for (let c = 0; c < cols; c++) {
+      const sd = scale[c] as number;
+      scale[c] = sd > 0 ? 1 / Math.max(sd, floor) : 0;
     }
     const design = (idx: number[]): FitData => {
       const x = new Float64Array(idx.length * cols);
@@ -363,7 +383,10 @@ export function linearProbeInformation(
       }
       let sum = 0;
       for (let c = 0; c < k; c++) sum += Math.exp((z[c] as number) - max);
-      nats += Math.log(sum) - ((z[held.y[a] as number] as number) - max);
+      // q = (1 − ε)·softmax + ε/K: still a conditional distribution, so still a valid bound, and one confidently
+      // wrong row costs at most ln(K/ε) nats instead of any amount.
+      const pSoft = Math.exp((z[held.y[a] as number] as number) - max) / sum;
+      nats -= Math.log((1 - UNIFORM_SHARE) * pSoft + UNIFORM_SHARE / k);
       if (best === held.y[a]) correct++;
       scored++;
     }

@@ -131,6 +131,26 @@ describe('linearProbeInformation: the Barber–Agakov bound with a cross-fitted 
     expect(linearProbeInformation(lifted, [n, 3], labels).mi_label_lower).toBeGreaterThan(0.6);
   });
 
+  it('is not thrown off by a unit that is nearly always zero (a ReLU unit alive on a few rows)', () => {
+    // Two Gaussian classes in 8 units, and a ninth unit that is 0.01 on ten rows of class 1, 3 on one row of class 0
+    // and 0 elsewhere. In the fold that holds the 3 out, the unit barely moves on the fitting rows and predicts class 1;
+    // standardised by its own spread the held-out 3 becomes thousands of spreads, an absurd logit for the wrong class,
+    // and that one row would pull the bound to nothing. (Seen on MNIST before the fix: 0.76 bits where the
+    // neighbouring windows read 2.7.)
+    const n = 1000;
+    const { acts: base, labels } = twoGaussians(n, 8, 1, 21);
+    const acts = new Float64Array(n * 9);
+    const ones = labels.flatMap((y, i) => (y === 1 ? [i] : [])).slice(0, 10);
+    const spike = labels.indexOf(0);
+    for (let i = 0; i < n; i++) {
+      acts.set(base.subarray(i * 8, i * 8 + 8), i * 9);
+      acts[i * 9 + 8] = ones.includes(i) ? 0.01 : i === spike ? 3 : 0;
+    }
+    const without = linearProbeInformation(base, [n, 8], labels);
+    const withUnit = linearProbeInformation(acts, [n, 9], labels);
+    expect(Math.abs(withUnit.mi_label_lower - without.mi_label_lower)).toBeLessThan(0.03);
+  });
+
   it('is seeded, drops non-finite rows, subsamples, and checks its options', () => {
     const { acts, labels } = twoGaussians(600, 4, 1, 2);
     acts[5] = Number.NaN;
