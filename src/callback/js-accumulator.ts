@@ -12,24 +12,19 @@ import type { GradientPair } from './optimizer-tap.js';
 
 type Values = ArrayLike<number>;
 
-function sumSq(a: Values): number {
-  let s = 0;
-  for (let i = 0; i < a.length; i++) {
-    const x = a[i]!;
-    s += x * x;
+/** ‖a − b‖² and ‖a‖² in one pass: the update ratio's two sums on a window's first step, travel and weight norm at its close. */
+function diffAndSumSq(a: Values, b: Values, out: Float64Array): void {
+  let d2 = 0;
+  let s2 = 0;
+  for (let k = 0; k < a.length; k++) {
+    const x = a[k]!;
+    const d = x - b[k]!;
+    d2 += d * d;
+    s2 += x * x;
   }
-  return s;
+  out[0] = d2;
+  out[1] = s2;
 }
-
-function diffSq(a: Values, b: Values): number {
-  let s = 0;
-  for (let i = 0; i < a.length; i++) {
-    const d = a[i]! - b[i]!;
-    s += d * d;
-  }
-  return s;
-}
-
 
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
@@ -48,6 +43,8 @@ export class JsAccumulator implements Accumulator {
   private readonly weightBuffers: { before: Float32Array[]; after: Float32Array[] } | null;
   private updateSq: Float64Array;
   private updateWeightSq: Float64Array;
+  /** Scratch for diffAndSumSq's two sums. */
+  private readonly pair: Float64Array;
   private sampled = false;
   private steps = 0;
 
@@ -73,6 +70,7 @@ export class JsAccumulator implements Accumulator {
       : null;
     this.updateSq = new Float64Array(n);
     this.updateWeightSq = new Float64Array(n);
+    this.pair = new Float64Array(2);
   }
 
   get pending(): number {
@@ -142,8 +140,9 @@ export class JsAccumulator implements Accumulator {
       const before = this.beforeWeights[v.index];
       if (before == null) continue;
       const now = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
-      this.updateSq[v.index] = diffSq(now, before);
-      this.updateWeightSq[v.index] = sumSq(now);
+      diffAndSumSq(now, before, this.pair);
+      this.updateSq[v.index] = this.pair[0]!;
+      this.updateWeightSq[v.index] = this.pair[1]!;
       this.beforeWeights[v.index] = null;
     }
     this.sampled = true;
@@ -154,14 +153,15 @@ export class JsAccumulator implements Accumulator {
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
       const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
+      diffAndSumSq(w, this.initial[v.index]!, this.pair);
       return {
         count: m.count,
         meanSquaredNorm: m.meanSquaredNorm(),
         varianceTrace: m.varianceTrace(),
         diffTrace: m.successiveDiffTrace(),
         nonfinite: this.nonfinite[v.index]!,
-        weightSq: sumSq(w),
-        travelSq: diffSq(w, this.initial[v.index]!),
+        weightSq: this.pair[1]!,
+        travelSq: this.pair[0]!,
         updateSq: this.sampled ? this.updateSq[v.index]! : null,
         updateWeightSq: this.sampled ? this.updateWeightSq[v.index]! : null,
       };
