@@ -42,7 +42,7 @@ async function perCall(rows: number, boundRows: number, reps: number): Promise<{
   const model = buildReferenceModel();
   const px = x.slice([0, 0], [rows, FEATURES]);
   const py = y.slice([0, 0], [rows, CLASSES]);
-  const probe = new Probe(model, viewModel(model), resolveProbeOptions({ x: px, y: py, boundRows })!);
+  const probe = new Probe(model, viewModel(model), resolveProbeOptions({ x: px, y: py, boundRows, size: rows })!);
   const t: { forward: number[]; binned: number[]; bounds: number[]; linear: number[]; total: number[] } = { forward: [], binned: [], bounds: [], linear: [], total: [] };
   for (let r = 0; r < reps + 1; r++) {
     const m = await probe.measure();
@@ -135,7 +135,7 @@ for (const epochs of quick ? [10] : [10, 40]) {
   }
 }
 printTable(
-  `Table 2. Training the reference model with the monitor, without and with the probe (${SAMPLES} rows, default size/bins/boundRows), cpu, median s`,
+  `Table 2. Training the reference model with the monitor, without and with the probe (a set of ${SAMPLES} rows, default size ${PROBE_DEFAULTS.size}, bins, boundRows, linearRows), cpu, median s`,
   ['epochs', 'steps', 'probe every', 'probes', 'no probe', 'with probe', 'added (wall)', 'probe share (own clock)', `≤ ${TARGET * 100} %`],
   shareRows,
   [
