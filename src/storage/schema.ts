@@ -165,32 +165,18 @@ export interface SchemaState {
 
 /** Reads the header fields and counts schema objects; the first read also proves it is a SQLite file. */
 export function readSchemaState(db: Database.Database): SchemaState {
-  let state = readOnce(db);
-  // Read apart, a second process creating the file can commit between the header and the schema count:
-  // its tables then show without its application_id, and a half-seen tidemark store would look like another
-  // program's. Its commit is atomic, so a later read sees it whole; a file that stays so is refused after
-  // about a quarter of a second. Only that suspicious case pays the retry; every other open reads once.
-  for (let retry = 0; retry < SETTLE_RETRIES && state.applicationId === 0 && state.objects > 0; retry++) {
-    sleepMs(SETTLE_WAIT_MS);
-    state = readOnce(db);
-  }
-  return state;
-}
-
-const SETTLE_RETRIES = 5;
-const SETTLE_WAIT_MS = 50;
-
-function readOnce(db: Database.Database): SchemaState {
-  return {
-    applicationId: db.pragma('application_id', { simple: true }) as number,
-    version: db.pragma('user_version', { simple: true }) as number,
-    objects: (db.prepare('SELECT count(*) AS n FROM sqlite_schema').get() as { n: number }).n,
-  };
-}
-
-/** Blocks the thread for `ms`: opening a store is synchronous. */
-function sleepMs(ms: number): void {
-  Atomics.wait(new Int32Array(new SharedArrayBuffer(4)), 0, 0, ms);
+  // One read transaction: read apart, a second process creating the file could commit between the
+  // header and the schema count, and a half-seen tidemark store would look like another program's. The
+  // creator writes its tables and application_id in one transaction (migrate), so one snapshot sees both
+  // or neither; an empty snapshot then goes on to migrate, which re-reads the version under the write lock.
+  const read = db.transaction(
+    (): SchemaState => ({
+      applicationId: db.pragma('application_id', { simple: true }) as number,
+      version: db.pragma('user_version', { simple: true }) as number,
+      objects: (db.prepare('SELECT count(*) AS n FROM sqlite_schema').get() as { n: number }).n,
+    }),
+  );
+  return read.deferred();
 }
 
 /**
