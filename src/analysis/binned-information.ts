@@ -90,6 +90,36 @@ export function checkOptionNames(where: string, options: object, known: readonly
   for (const name of Object.keys(options)) if (!known.includes(name)) throw unknownOption(name, known, { owner: where });
 }
 
+/** The rows of the row-major `rows × cols` matrix whose values are all finite, in order. */
+export function finiteRows(acts: ArrayLike<number>, rows: number, cols: number): number[] {
+  const out: number[] = [];
+  for (let r = 0; r < rows; r++) {
+    let ok = true;
+    for (let c = 0; c < cols && ok; c++) ok = Number.isFinite(acts[r * cols + c]);
+    if (ok) out.push(r);
+  }
+  return out;
+}
+
+/** Compact class ids (0, 1, … in order of first appearance) of `labels[rows[i]]`, and each class's count. */
+export function compactClasses(labels: ArrayLike<number>, rows: readonly number[]): { cls: Int32Array; sizes: number[] } {
+  const classOf = new Map<number, number>();
+  const cls = new Int32Array(rows.length);
+  const sizes: number[] = [];
+  rows.forEach((r, i) => {
+    const y = labels[r] as number;
+    let k = classOf.get(y);
+    if (k === undefined) {
+      k = sizes.length;
+      classOf.set(y, k);
+      sizes.push(0);
+    }
+    sizes[k] = (sizes[k] as number) + 1;
+    cls[i] = k;
+  });
+  return { cls, sizes };
+}
+
 /**
  * Validates the (activations, shape, labels) triple the information estimators take: `acts` is row-major
  * rows×cols, `labels` one non-negative integer class index per row (pass `null` to skip the labels).

@@ -17,7 +17,7 @@
  */
 
 import { TidemarkRangeError } from '../errors.js';
-import { checkActivations, checkOptionNames } from './binned-information.js';
+import { checkActivations, checkOptionNames, compactClasses, finiteRows } from './binned-information.js';
 import { LN2 } from './entropy.js';
 import { mulberry32, subsample } from './random.js';
 
@@ -162,8 +162,8 @@ function dot(a: Float64Array, b: Float64Array): number {
 function fitSoftmax(data: FitData, l2: number, maxIterations: number, init: Float64Array): Float64Array {
   const m = 8;
   const size = init.length;
-  let p = init.slice();
-  let g = new Float64Array(size);
+  const p = init.slice();
+  const g = new Float64Array(size);
   let f = objective(p, g, data, l2);
   const ss: Float64Array[] = [];
   const ys: Float64Array[] = [];
@@ -226,8 +226,8 @@ function fitSoftmax(data: FitData, l2: number, maxIterations: number, init: Floa
     }
     // The bound is read to a few thousandths of a bit; a gain below 1e-5 nats per iteration changes nothing there.
     const converged = f - fTrial <= 1e-5;
-    p = trial.slice();
-    g = gTrial.slice();
+    p.set(trial);
+    g.set(gTrial);
     f = fTrial;
     if (converged) break;
   }
@@ -269,31 +269,14 @@ export function linearProbeInformation(
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'l2' must be a finite number ≥ 0; received ${String(o.l2)}.`);
   }
 
-  let used: number[] = [];
-  for (let r = 0; r < rows; r++) {
-    let ok = true;
-    for (let c = 0; c < cols && ok; c++) ok = Number.isFinite(acts[r * cols + c]);
-    if (ok) used.push(r);
-  }
+  let used = finiteRows(acts, rows, cols);
   const dropped = rows - used.length;
   if (used.length > maxRows) used = subsample(used, maxRows, o.seed);
   const n = used.length;
-  const classOf = new Map<number, number>();
-  const y = new Int32Array(n);
-  used.forEach((r, i) => {
-    const label = labels[r] as number;
-    let c = classOf.get(label);
-    if (c === undefined) {
-      c = classOf.size;
-      classOf.set(label, c);
-    }
-    y[i] = c;
-  });
-  const k = classOf.size;
+  const { cls: y, sizes: counts } = compactClasses(labels, used);
+  const k = counts.length;
   const base = { rows: n, dropped, classes: k, estimator: 'linear-probe-barber-agakov' as const };
   if (n === 0) return { mi_label_lower: Number.NaN, cross_entropy: Number.NaN, label_entropy: Number.NaN, accuracy: Number.NaN, ...base };
-  const counts = new Array<number>(k).fill(0);
-  for (let i = 0; i < n; i++) counts[y[i] as number]!++;
   let hy = 0;
   for (const c of counts) hy -= (c / n) * Math.log(c / n);
   if (k < 2) return { mi_label_lower: 0, cross_entropy: 0, label_entropy: 0, accuracy: 1, ...base };
@@ -373,8 +356,7 @@ export function linearProbeInformation(
       let max = -Infinity;
       let best = 0;
       for (let c = 0; c < k; c++) {
-        let v = p[cols * k + c] as number;
-        for (let j = 0; j < cols; j++) v += (held.x[a * cols + j] as number) * (p[c * cols + j] as number);
+        const v = (p[cols * k + c] as number) + rowDot(held.x, a * cols, p, c * cols, cols);
         z[c] = v;
         if (v > max) {
           max = v;

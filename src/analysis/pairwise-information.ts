@@ -25,7 +25,7 @@
 
 import { subsample } from './random.js';
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
-import { checkActivations, checkOptionNames, SATURATION_MARGIN_BITS } from './binned-information.js';
+import { checkActivations, checkOptionNames, compactClasses, finiteRows, SATURATION_MARGIN_BITS } from './binned-information.js';
 import { LN2 } from './entropy.js';
 
 /** Mixture entropy bounds, nats. */
@@ -298,17 +298,7 @@ export function pairwiseInformationBounds(
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'seed' must be an integer; received ${String(seed)}.`);
   }
 
-  let finite: number[] = [];
-  for (let r = 0; r < rows; r++) {
-    let ok = true;
-    for (let c = 0; c < cols; c++) {
-      if (!Number.isFinite(acts[r * cols + c])) {
-        ok = false;
-        break;
-      }
-    }
-    if (ok) finite.push(r);
-  }
+  let finite = finiteRows(acts, rows, cols);
   const dropped = rows - finite.length;
   const subsampled = finite.length > maxRows;
   if (subsampled) finite = subsample(finite, maxRows, seed);
@@ -326,20 +316,7 @@ export function pairwiseInformationBounds(
     return { mi_input_upper: 0, mi_input_lower: 0, mi_label: 0, saturated: Math.log2(p) <= SATURATION_MARGIN_BITS, rows: p, ...base };
   }
 
-  const classOf = new Map<number, number>();
-  const cls = new Int32Array(p);
-  const classSize: number[] = [];
-  for (let a = 0; a < p; a++) {
-    const y = labels[finite[a] as number] as number;
-    let k = classOf.get(y);
-    if (k === undefined) {
-      k = classSize.length;
-      classOf.set(y, k);
-      classSize.push(0);
-    }
-    classSize[k] = (classSize[k] as number) + 1;
-    cls[a] = k;
-  }
+  const { cls, sizes: classSize } = compactClasses(labels, finite);
   const w = new Float64Array(p).fill(1 / p);
   const s = pairSums(acts, cols, finite, w, cls, variance);
   let up = 0;
