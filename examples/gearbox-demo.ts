@@ -22,8 +22,6 @@ import {
   type RunningServer,
   type WindowRecord,
 } from '../src/index.js';
-// The batch-size sentence the page shows too (not part of the library's API).
-import { batchSizeAdvice } from '../src/analysis/batch-size-advice.js';
 import { integerArgs, oncePerPress, serveWithFallback } from './cli-support.js';
 import { buildGearboxModel, makeGearboxData, sliceGearboxData, toTensors } from './gearbox-data.js';
 
@@ -552,11 +550,7 @@ const resolved = noiseTaken.filter((w) => w.noise?.status === 'measured').length
 summary.push(
   `   probe ran in ${probeWindows} of ${windowsSeen} windows, on ${PROBE_ROWS} held-out measurements`,
   '',
-  `Batch size: ${batchSizeAdvice(
-    mon.windows().map((w) => ({ step: w.step, value: w.network.noise_scale, low: w.noise?.status === 'unresolved' ? (w.noise.noise_scale_low ?? null) : null })),
-    BATCH_SIZE,
-    mon.windows().at(-1)?.step ?? null,
-  )}`,
+  `Batch size: ${analysis.batchSizeAdvice(mon.windows().map(analysis.noiseReading), BATCH_SIZE, mon.windows().at(-1)?.step ?? null)}`,
   `   (noise measured in ${measured} of ${windowsSeen} windows, ${resolved} of them resolved, taking ${((mon.noiseCost()?.ms ?? 0) / 1000).toFixed(1)} s of training time)`,
   '',
   `Stored ${mon.windows().length} windows of run ${mon.runId} in ${outPath}`,

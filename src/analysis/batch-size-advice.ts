@@ -29,6 +29,20 @@ export interface NoiseReading {
   low: number | null;
 }
 
+/** What batchSizeAdvice reads of a window: its step, its network noise scale and its noise measurement (a WindowRecord fits). */
+export interface NoiseWindow {
+  step: number;
+  network: { noise_scale?: number | null };
+  noise?: { status: string; noise_scale_low?: number | null } | null;
+}
+
+const positive = (v: number | null | undefined): number | null => (typeof v === 'number' && Number.isFinite(v) && v > 0 ? v : null);
+
+/** A window's noise reading: the resolved noise scale, or an unresolved measurement's lower bound. */
+export function noiseReading(w: NoiseWindow): NoiseReading {
+  return { step: w.step, value: positive(w.network.noise_scale), low: w.noise?.status === 'unresolved' ? positive(w.noise.noise_scale_low) : null };
+}
+
 /**
  * One sentence on the batch size, read from what the latest measurements say, when they were taken,
  * and at which step training is now (`nowStep`, null when unknown):
@@ -45,7 +59,8 @@ export function batchSizeAdvice(readings: readonly NoiseReading[], batchSize: nu
   const lead =
     'The gradient noise scale estimates the batch size beyond which larger batches give diminishing returns (McCandlish et al. 2018); ' +
     'tidemark measures it at fixed weights, from gradients of disjoint groups of training rows.';
-  const usable = readings.filter((r) => (r.value !== null && Number.isFinite(r.value) && r.value > 0) || (r.low !== null && Number.isFinite(r.low) && r.low > 0));
+  const resolved = (r: NoiseReading): r is NoiseReading & { value: number } => positive(r.value) !== null;
+  const usable = readings.filter((r) => resolved(r) || positive(r.low) !== null);
   if (usable.length === 0) return `${lead} No estimate yet: no noise measurement has resolved the mean gradient from the noise.`;
   const latest = usable[usable.length - 1]!;
   const batch = batchSize !== null && batchSize > 0 ? batchSize : null;
@@ -54,7 +69,6 @@ export function batchSizeAdvice(readings: readonly NoiseReading[], batchSize: nu
     nowStep !== null && latest.step < nowStep / 4
       ? ` It was measured at step ${formatCount(latest.step)}, long before step ${formatCount(nowStep)} now; the noise scale tends to grow as the loss falls (McCandlish et al. 2018), so this likely understates it.`
       : '';
-  const resolved = (r: NoiseReading): r is NoiseReading & { value: number } => r.value !== null && Number.isFinite(r.value) && r.value > 0;
   if (!resolved(latest)) {
     const low = latest.low!;
     const est = `The latest measurement (step ${formatCount(latest.step)}) could not tell the mean gradient from the noise: the noise scale is above about ${formatCount(low)} examples`;

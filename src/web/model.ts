@@ -3,7 +3,7 @@
  * non-finite numbers, filtering the runs list, turning windows into chart columns, the route in the URL
  * fragment and the stop advice sentence.
  */
-import { batchSizeAdvice } from '../analysis/batch-size-advice.js';
+import { batchSizeAdvice, noiseReading } from '../analysis/batch-size-advice.js';
 import { displacementLevelDb } from '../analysis/phase-detector.js';
 import { decodeJson } from '../protocol/json-codec.js';
 import { readProbeConfig } from '../protocol/probe-config.js';
@@ -383,11 +383,12 @@ export interface NoiseColumns {
 
 export function noiseColumns(windows: readonly WindowRecord[]): NoiseColumns {
   const ws = orderedWindows(windows);
+  const readings = ws.map(noiseReading);
   return {
     steps: ws.map((w) => w.step),
-    noise: ws.map((w) => positive(w.network.noise_scale)),
+    noise: readings.map((r) => r.value),
     batch: ws.map((w) => positive(w.batch_size)),
-    low: ws.map((w) => (w.noise?.status === 'unresolved' ? positive(w.noise.noise_scale_low) : null)),
+    low: readings.map((r) => r.low),
   };
 }
 
