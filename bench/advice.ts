@@ -50,7 +50,7 @@ import { availableParallelism } from 'node:os';
 import { parseArgs } from 'node:util';
 import * as tf from '@tensorflow/tfjs';
 import { buildGearboxModel, makeGearboxData, toTensors, type GearboxData } from '../examples/gearbox-data.js';
-import { adviceChanged, adviseStop, detectPhases, type AdviceOptions } from '../src/analysis/index.js';
+import { adviceChanges, adviseStop, detectPhases, type AdviceOptions } from '../src/analysis/index.js';
 import { monitor, type Marker, type WindowRecord } from '../src/index.js';
 import { mnistModel, mnistSplit, mnistTensors } from '../test/helpers/mnist.js';
 import { withSeededShuffle } from '../test/helpers/phase-runs.js';
@@ -558,7 +558,7 @@ function replayConfig(c: Config, saved: SavedBench, options: AdviceOptions): Run
   return runs.map((r) => {
     const { states } = detectPhases(r.trail);
     const advices = adviseStop(r.trail, states, options);
-    const advice = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a)).map((a) => ({ step: a.step, verdict: a.verdict }));
+    const advice = adviceChanges(advices).map((a) => ({ step: a.step, verdict: a.verdict }));
     const before = adviceTrail(r);
     const replayed = { ...r, advice, finalAdvice: advices.at(-1)?.verdict ?? null };
     console.log(`seed ${r.seed}: online ${before}\n        replayed ${adviceTrail(replayed)}`);

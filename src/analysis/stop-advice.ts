@@ -104,6 +104,11 @@ export function adviceChanged(previous: Advice | null, next: Advice): boolean {
   return previous === null || previous.verdict !== next.verdict || previous.stage !== next.stage;
 }
 
+/** The advices of a run worth a marker (adviceChanged), as the monitor records them online. */
+export function adviceChanges(advices: readonly Advice[]): Advice[] {
+  return advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a));
+}
+
 /** The gradient sizes of a window's network or layer entry, to tell a network that no longer learns. */
 export interface AdviceGradients {
   grad_mean_norm: number;

@@ -5,7 +5,7 @@
 import { TidemarkRangeError } from '../errors.js';
 import { closestName } from '../option-check.js';
 import { detectPhases, type PhaseChange, type PhaseOptions } from '../analysis/phase-detector.js';
-import { adviceChanged, adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
+import { adviceChanges, adviseStop, type Advice, type AdviceOptions } from '../analysis/stop-advice.js';
 import type { Marker } from '../protocol/records.js';
 import { toAsyncStore, type AnyStore } from '../storage/async-store.js';
 
@@ -69,7 +69,7 @@ export async function analyzeRun(anyStore: AnyStore, runId: string, phases: Phas
   const { states, changes } = detectPhases(windows, phases);
   const advices = adviseStop(windows, states, advice);
   const online = (await store.markers(runId)).filter((m) => PHASE_KINDS.has(m.kind) && m.details.source !== 'offline');
-  const adviceChanges = advices.filter((a, i) => adviceChanged(i === 0 ? null : advices[i - 1]!, a));
+  const changedAdvice = adviceChanges(advices);
   return {
     runId,
     windows: windows.length,
@@ -77,7 +77,7 @@ export async function analyzeRun(anyStore: AnyStore, runId: string, phases: Phas
     online,
     ...compareMarkers(changes, online),
     advice: advices.at(-1) ?? null,
-    adviceChanges,
+    adviceChanges: changedAdvice,
   };
 }
 
