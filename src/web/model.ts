@@ -457,13 +457,22 @@ function planePair(s: LayerStats | undefined, estimator: PlaneEstimator): Omit<I
  */
 export function infoTrajectories(layerNames: readonly string[], windows: readonly WindowRecord[], estimator: PlaneEstimator = 'binned'): InfoTrajectory[] {
   const ws = orderedWindows(windows);
+  return trajectoriesOf(layerNames, ws, (layer, j) => planePair(ws[j]!.layers[layerNames[layer]!], estimator));
+}
+
+/** The trajectories of `pairOf(layer index, window index)` over the ordered windows `ws`, with their ages. */
+function trajectoriesOf(
+  layerNames: readonly string[],
+  ws: readonly WindowRecord[],
+  pairOf: (layer: number, window: number) => Omit<InfoPoint, 'step' | 'age'> | null,
+): InfoTrajectory[] {
   const out: InfoTrajectory[] = [];
   layerNames.forEach((label, index) => {
     const points: InfoPoint[] = [];
-    for (const w of ws) {
-      const pair = planePair(w.layers[label], estimator);
+    ws.forEach((w, j) => {
+      const pair = pairOf(index, j);
       if (pair !== null) points.push({ step: w.step, ...pair, age: 0 });
-    }
+    });
     if (points.length > 0) out.push({ label, index, points });
   });
   const steps = out.flatMap((t) => t.points.map((p) => p.step));
@@ -534,22 +543,24 @@ export interface InfoPlane {
  * turned off, falls back to binned).
  */
 export function infoPlane(layerNames: readonly string[], windows: readonly WindowRecord[], requested: PlaneEstimator = 'pairwise', settings: PlaneSettings = NO_PLANE_SETTINGS): InfoPlane {
+  const ws = orderedWindows(windows);
+  // One pass: every layer-window's pair under each estimator, kept for the trajectories of the one drawn.
+  const pairs = layerNames.map((label) => ws.map((w) => Object.fromEntries(PLANE_ESTIMATORS.map((e) => [e, planePair(w.layers[label], e)])) as Record<PlaneEstimator, Omit<InfoPoint, 'step' | 'age'> | null>));
   const holds: Record<PlaneEstimator, number> = { pairwise: 0, linear: 0, binned: 0 };
   // Per estimator, the layer-windows that hold some other estimator but not this one.
   const missing: Record<PlaneEstimator, number> = { pairwise: 0, linear: 0, binned: 0 };
   let binnedRows: number | null = null;
-  for (const w of orderedWindows(windows)) {
-    for (const label of layerNames) {
-      const s = w.layers[label];
-      const has = PLANE_ESTIMATORS.map((e) => planePair(s, e) !== null);
-      PLANE_ESTIMATORS.forEach((e, i) => {
-        if (has[i]) holds[e]++;
-        else if (has.some(Boolean)) missing[e]++;
-      });
-      const r = positive(s?.probe_rows);
-      if (has[2] && r !== null) binnedRows = Math.max(binnedRows ?? 0, r);
-    }
-  }
+  pairs.forEach((row, layer) =>
+    row.forEach((cell, j) => {
+      const any = PLANE_ESTIMATORS.some((e) => cell[e] !== null);
+      for (const e of PLANE_ESTIMATORS) {
+        if (cell[e] !== null) holds[e]++;
+        else if (any) missing[e]++;
+      }
+      const r = positive(ws[j]!.layers[layerNames[layer]!]?.probe_rows);
+      if (cell.binned !== null && r !== null) binnedRows = Math.max(binnedRows ?? 0, r);
+    }),
+  );
   const available = { pairwise: holds.pairwise > 0, linear: holds.linear > 0, binned: holds.binned > 0 };
   const estimator = available[requested] ? requested : (PLANE_ESTIMATORS.find((e) => available[e]) ?? requested);
   const rows = estimator === 'binned' ? (binnedRows ?? settings.rows) : (settings.pairwise?.rows ?? null);
@@ -557,7 +568,7 @@ export function infoPlane(layerNames: readonly string[], windows: readonly Windo
     estimator,
     requested,
     available,
-    trajectories: infoTrajectories(layerNames, windows, estimator),
+    trajectories: trajectoriesOf(layerNames, ws, (layer, j) => pairs[layer]![j]![estimator]),
     // Windows holding only estimators not drawn (e.g. binned values in windows before the pairwise one was recorded).
     left: missing[estimator],
     rows,

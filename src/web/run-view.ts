@@ -114,9 +114,11 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     });
     return { label: el('label', {}, input, ` ${text}`), input };
   };
-  const pairwiseChoice = choice('pairwise', 'pairwise (Kolchinsky–Tracey, with added noise)');
-  const linearChoice = choice('linear', 'linear read-out for I(T;Y), a lower bound');
-  const binnedChoice = choice('binned', 'binned (the classic picture)');
+  const choices: Record<PlaneEstimator, ReturnType<typeof choice>> = {
+    pairwise: choice('pairwise', 'pairwise (Kolchinsky–Tracey, with added noise)'),
+    linear: choice('linear', 'linear read-out for I(T;Y), a lower bound'),
+    binned: choice('binned', 'binned (the classic picture)'),
+  };
   const infoSentence = el('p', { class: 'plane-sentence', 'data-testid': 'plane-sentence', 'aria-live': 'polite' });
   infoSection.append(
     el('h3', {}, 'Information plane (probe windows)'),
@@ -125,7 +127,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
       { class: 'note' },
       'Per layer, an estimate of how much its activations say about the input (across) and about the label (up), one path per layer in step order from its first probe window to its latest.',
     ),
-    el('fieldset', { class: 'plane-choice', 'data-testid': 'plane-choice' }, el('legend', {}, 'Estimator'), pairwiseChoice.label, linearChoice.label, binnedChoice.label),
+    el('fieldset', { class: 'plane-choice', 'data-testid': 'plane-choice' }, el('legend', {}, 'Estimator'), ...Object.values(choices).map((c) => c.label)),
     infoSentence,
     el('p', { class: 'caution' }, PLANE_CAUTION),
     infoLegendBox,
@@ -335,7 +337,7 @@ export function runView(root: HTMLElement, live: Live, id: string, initial: Step
     infoSection.hidden = false;
     infoSection.dataset.estimator = plane.estimator;
     // The radios tell what is drawn; one whose estimator the run's windows lack cannot be chosen.
-    for (const [c, e] of [[pairwiseChoice, 'pairwise'], [linearChoice, 'linear'], [binnedChoice, 'binned']] as const) {
+    for (const [e, c] of Object.entries(choices) as [PlaneEstimator, ReturnType<typeof choice>][]) {
       c.input.disabled = !plane.available[e];
       c.input.checked = plane.estimator === e;
     }
