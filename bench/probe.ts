@@ -1,9 +1,8 @@
 /**
  * What the activation probe costs: per call at 512, 2048 and 4096 probe rows on the reference model,
  * split into the forward pass with read-back, the binned estimates, the pairwise bounds and the linear
- * read-outs; and as a
- * share of training time at the default cadence, measured side by side with the same monitor without
- * a probe.
+ * read-outs; and as a share of training time at the default cadence, measured side by side with the same
+ * monitor without a probe.
  *
  *   npx tsx bench/probe.ts            # about two minutes
  *   npx tsx bench/probe.ts --quick    # fewer repetitions and epochs

@@ -23,6 +23,7 @@
  *
  * Nothing here imports tfjs, so the generator runs anywhere; `toTensors` takes the caller's tfjs module.
  */
+import type * as tfjs from '@tensorflow/tfjs';
 import { mulberry32 } from '../src/analysis/random.js';
 
 export { mulberry32 };
@@ -40,7 +41,6 @@ export async function withSeededShuffle<T>(seed: number, fn: () => Promise<T>): 
     Math.random = original;
   }
 }
-import type * as tfjs from '@tensorflow/tfjs';
 
 /** Class names in label order. */
 export const GEARBOX_CLASSES = ['healthy', 'bearing wear', 'gear tooth crack', 'shaft misalignment'] as const;
