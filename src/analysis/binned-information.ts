@@ -395,33 +395,19 @@ export function binnedInformation(
     return { mi_input: nan, mi_label: nan, saturated: false, h_t: nan, h_t_given_y: nan, h_y: nan, occupied: 0, rows: 0, dropped, bins, range, estimator };
   }
 
-  // Compact class ids, symbol counts, and joint (symbol, class) counts.
-  const classOf = new Map<number, number>();
-  const classCount: number[] = [];
-  const symbolCount = new Float64Array(count);
-  const rowClass = new Int32Array(rows);
-  for (let r = 0; r < rows; r++) {
-    const s = symbol[r] as number;
-    if (s < 0) continue;
-    const y = labels[r] as number;
-    let k = classOf.get(y);
-    if (k === undefined) {
-      k = classCount.length;
-      classOf.set(y, k);
-      classCount.push(0);
-    }
-    classCount[k] = (classCount[k] as number) + 1;
-    rowClass[r] = k;
-    symbolCount[s] = (symbolCount[s] as number) + 1;
-  }
+  // Compact class ids, symbol counts, and joint (symbol, class) counts, over the rows that have a symbol.
+  const kept: number[] = [];
+  for (let r = 0; r < rows; r++) if ((symbol[r] as number) >= 0) kept.push(r);
+  const { cls, sizes: classCount } = compactClasses(labels, kept);
   const nClasses = classCount.length;
+  const symbolCount = new Float64Array(count);
   const joint = new Map<number, number>();
-  for (let r = 0; r < rows; r++) {
+  kept.forEach((r, i) => {
     const s = symbol[r] as number;
-    if (s < 0) continue;
-    const key = s * nClasses + (rowClass[r] as number);
+    symbolCount[s] = (symbolCount[s] as number) + 1;
+    const key = s * nClasses + (cls[i] as number);
     joint.set(key, (joint.get(key) ?? 0) + 1);
-  }
+  });
   // H(T|Y=y) = log2 N_y − (1/N_y) Σ n log2 n over the cells of class y, gathered in one pass over the joint.
   const sumNlogN = new Float64Array(nClasses);
   const occupiedIn = new Float64Array(nClasses);
