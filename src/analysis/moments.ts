@@ -169,6 +169,28 @@ export class ShiftedMoments {
   }
 
   /**
+   * For a {@link SimdFold} that folds the blocks of all its vectors in one call (`foldAll`): before the
+   * fold, a fresh instance takes the block's first vector as its reference, as pushBlock does.
+   */
+  adoptReference(first: ArrayLike<number>): void {
+    if (this.n > 0) return;
+    if (first.length !== this.size) throw new RangeError(`expected ${this.size} values, got ${first.length}`);
+    for (let j = 0; j < this.size; j++) this.ref[j] = first[j]!;
+  }
+
+  /**
+   * After such a fold added a block of `m` vectors to this instance's sums, with every value finite:
+   * counts it, with its sum of squared deviations `y` and of consecutive differences `q`.
+   */
+  recordBlock(m: number, y: number, q: number): void {
+    this.sq += y;
+    this.n += m;
+    this.diffSq += q;
+    this.pairs += m - 1;
+    this.blockDiffSq = q;
+  }
+
+  /**
    * Half the mean squared difference of consecutive vectors (von Neumann et al. 1941, "Distribution of the
    * ratio of the mean square successive difference to the variance", Ann. Math. Statist. 12, from memory),
    * summed over coordinates: for independent draws around a slowly moving mean it estimates the trace of
@@ -210,16 +232,20 @@ export class ShiftedMoments {
     let y = 0;
     if (block.length === 4) {
       const [a, b, c, e] = block as [ArrayLike<number>, ArrayLike<number>, ArrayLike<number>, ArrayLike<number>];
-      let start = 0;
       const fold = this.fold;
-      if (fold !== null && fold.owns(a) && fold.owns(b) && fold.owns(c) && fold.owns(e)) {
-        // The kernel does the same sums two coordinates at a time; the loop below finishes what it left.
-        const done = fold.fold4([a, b, c, e], ref, s1, end, sign);
-        start = done.stop;
-        y = done.y;
-        q = done.q;
+      if (end === this.size && fold !== null && fold.owns(a) && fold.owns(b) && fold.owns(c) && fold.owns(e)) {
+        // The kernel does the same sums two coordinates at a time, over the whole vector.
+        const done = fold.fold4([a, b, c, e], ref, s1, sign);
+        if (Number.isFinite(done.y) && Number.isFinite(done.q)) {
+          this.sq += sign * done.y;
+          this.blockDiffSq = done.q;
+          return end;
+        }
+        // It added the finite coordinates only: take exactly those back, and add nothing.
+        fold.fold4([a, b, c, e], ref, s1, sign === 1 ? -1 : 1);
+        return 0;
       }
-      for (let j = start; j < end; j++) {
+      for (let j = 0; j < end; j++) {
         const r = ref[j]!;
         const d1 = a[j]! - r;
         const d2 = b[j]! - r;

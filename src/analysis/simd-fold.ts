@@ -1,18 +1,18 @@
 /**
  * Memory shared by a set of ShiftedMoments and a WebAssembly SIMD kernel that runs their block fold
- * (ShiftedMoments.pushBlock for blocks of four) about twice as fast as the JavaScript loop: f64x2
- * lanes and no bounds checks. The vectors to fold must already sit in the kernel's memory, so an
- * arena hands out every buffer at once (growing a WebAssembly memory detaches every view of it):
- * per vector of `size` values, four float32 block slots and the float64 reference and sums.
- * Without WebAssembly SIMD (an old runtime) `SimdFold.create` returns null and the JavaScript loop runs.
+ * (ShiftedMoments.pushBlock for blocks of four) with f64x2 lanes and no bounds checks, for every vector
+ * in one call. The vectors to fold must already sit in the kernel's memory, so an arena hands out every
+ * buffer at once (growing a WebAssembly memory detaches every view of it). The vectors lie end to end,
+ * each padded with zeros to a multiple of four coordinates: four float32 block regions, the float64
+ * reference and sums, the kernel's segment table and its per-vector results. Padding coordinates stay
+ * zero and add nothing. Without WebAssembly SIMD (an old runtime) `SimdFold.create` returns null and the
+ * JavaScript loop runs.
  */
 import { SIMD_FOLD_BASE64 } from './simd-fold-bytes.js';
 
 interface FoldExports {
   memory: WebAssembly.Memory;
-  y: WebAssembly.Global;
-  q: WebAssembly.Global;
-  fold4(a: number, b: number, c: number, e: number, ref: number, s1: number, end: number, sign: number): number;
+  fold4(a: number, b: number, c: number, e: number, ref: number, s1: number, ends: number, count: number, out: number, sign: number): void;
 }
 
 /** Storage of one vector's statistics and its four block slots, all views of the kernel's memory. */
@@ -22,9 +22,9 @@ export interface FoldSlots {
   readonly s1: Float64Array;
 }
 
+type Four = readonly [Float32Array, Float32Array, Float32Array, Float32Array];
+
 const PAGE = 65_536;
-/** Every region starts on a 16-byte boundary, the width of a SIMD load. */
-const ALIGN = 16;
 
 let compiled: WebAssembly.Module | null | undefined;
 
@@ -40,32 +40,49 @@ function kernelModule(): WebAssembly.Module | null {
   return compiled;
 }
 
-const align = (n: number): number => Math.ceil(n / ALIGN) * ALIGN;
+/** Four float32 coordinates are 16 bytes, the width of a SIMD load: every vector starts aligned. */
+const pad4 = (n: number): number => Math.ceil(n / 4) * 4;
 
 export class SimdFold {
   private readonly kernel: FoldExports;
   private readonly buffer: ArrayBuffer;
   readonly vectors: readonly FoldSlots[];
+  /** Byte offsets of the four block regions, the reference and the sums (vector 0's views). */
+  private readonly base: { slots: Four; ref: Float64Array; s1: Float64Array };
+  /** Segment ends of every vector, then one spare entry for a single vector's fold. */
+  private readonly ends: Int32Array;
+  /** Per vector Σ (v_k − ref)² and Σ (v_{k+1} − v_k)², then a spare pair for a single vector's fold. */
+  private readonly out: Float64Array;
 
   private constructor(kernel: FoldExports, sizes: readonly number[]) {
     this.kernel = kernel;
-    let bytes = 0;
-    for (const n of sizes) bytes += 4 * align(4 * n) + 2 * align(8 * n);
+    const padded = sizes.map(pad4);
+    const total = padded.reduce((a, b) => a + b, 0);
+    const count = sizes.length;
+    const bytes = 4 * (4 * total) + 2 * (8 * total) + 4 * pad4(count + 1) + 8 * (2 * count + 2);
     const have = kernel.memory.buffer.byteLength;
     if (bytes > have) kernel.memory.grow(Math.ceil((bytes - have) / PAGE));
-    this.buffer = kernel.memory.buffer;
+    const buffer = kernel.memory.buffer;
+    this.buffer = buffer;
     let at = 0;
-    const take = <T>(make: (offset: number) => T, len: number): T => {
+    const region = <T>(make: (offset: number) => T, byteLength: number): T => {
       const view = make(at);
-      at += align(len);
+      at += byteLength;
       return view;
     };
-    this.vectors = sizes.map((n) => {
-      const f32 = (): Float32Array => take((o) => new Float32Array(this.buffer, o, n), 4 * n);
-      const slots = [f32(), f32(), f32(), f32()] as const;
-      const ref = take((o) => new Float64Array(this.buffer, o, n), 8 * n);
-      const s1 = take((o) => new Float64Array(this.buffer, o, n), 8 * n);
-      return { slots, ref, s1 };
+    const slotRegions = [0, 1, 2, 3].map(() => region((o) => new Float32Array(buffer, o, total), 4 * total)) as unknown as Four;
+    const ref = region((o) => new Float64Array(buffer, o, total), 8 * total);
+    const s1 = region((o) => new Float64Array(buffer, o, total), 8 * total);
+    this.ends = region((o) => new Int32Array(buffer, o, count + 1), 4 * pad4(count + 1));
+    this.out = region((o) => new Float64Array(buffer, o, 2 * count + 2), 8 * (2 * count + 2));
+    this.base = { slots: slotRegions, ref, s1 };
+    let start = 0;
+    this.vectors = sizes.map((n, i) => {
+      const at0 = start;
+      start += padded[i]!;
+      this.ends[i] = start;
+      const slots = slotRegions.map((r) => r.subarray(at0, at0 + n)) as unknown as Four;
+      return { slots, ref: ref.subarray(at0, at0 + n), s1: s1.subarray(at0, at0 + n) };
     });
   }
 
@@ -90,18 +107,29 @@ export class SimdFold {
   }
 
   /**
-   * The kernel's fold over coordinates [0, end) of four float32 vectors held by this arena (see
-   * simd-fold.wat): returns where it stopped and the sums of squares of the coordinates done.
+   * The kernel's fold of one vector: `block` its four slots, `ref` and `s1` its storage (all views this
+   * arena handed out for the same vector). Returns the two sums of squares; either is NaN or infinite
+   * when a value was, and then the finite coordinates were added and the others not (fold again with
+   * the opposite sign to take them back).
    */
-  fold4(
-    block: readonly [Float32Array, Float32Array, Float32Array, Float32Array],
-    ref: Float64Array,
-    s1: Float64Array,
-    end: number,
-    sign: 1 | -1,
-  ): { stop: number; y: number; q: number } {
+  fold4(block: Four, ref: Float64Array, s1: Float64Array, sign: 1 | -1): { y: number; q: number } {
     const [a, b, c, e] = block;
-    const stop = this.kernel.fold4(a.byteOffset, b.byteOffset, c.byteOffset, e.byteOffset, ref.byteOffset, s1.byteOffset, end, sign);
-    return { stop, y: this.kernel.y.value as number, q: this.kernel.q.value as number };
+    const spare = this.ends.length - 1;
+    // The vector's padding coordinates (zeros) follow it in the arena; folding them adds nothing.
+    this.ends[spare] = pad4(ref.length);
+    const out = this.out;
+    this.kernel.fold4(a.byteOffset, b.byteOffset, c.byteOffset, e.byteOffset, ref.byteOffset, s1.byteOffset, this.ends.byteOffset + 4 * spare, 1, out.byteOffset + 8 * (out.length - 2), sign);
+    return { y: out[out.length - 2]!, q: out[out.length - 1]! };
+  }
+
+  /**
+   * The kernel's fold of every vector's four slots at once. Returns its results, valid until the next
+   * fold: for vector i, Σ (v_k − ref)² at 2i and Σ (v_{k+1} − v_k)² at 2i + 1, as in {@link fold4}.
+   */
+  foldAll(sign: 1 | -1): Float64Array {
+    const { slots, ref, s1 } = this.base;
+    const count = this.vectors.length;
+    this.kernel.fold4(slots[0].byteOffset, slots[1].byteOffset, slots[2].byteOffset, slots[3].byteOffset, ref.byteOffset, s1.byteOffset, this.ends.byteOffset, count, this.out.byteOffset, sign);
+    return this.out;
   }
 }

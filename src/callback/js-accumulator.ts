@@ -7,7 +7,7 @@ import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
 import { SimdFold } from '../analysis/simd-fold.js';
 import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
 import type { ModelView } from './model-layers.js';
-import { benefitsFromBuffers, readValues } from './host-read.js';
+import { benefitsFromBuffers, readValues, wasmHeap } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
 
 type Values = ArrayLike<number>;
@@ -34,8 +34,13 @@ export class JsAccumulator implements Accumulator {
   private readonly moments: ShiftedMoments[];
   private readonly initial: Float32Array[];
   private readonly nonfinite: Float64Array;
-  /** Gradients read but not yet folded in: one entry per step, indexed by variable. */
-  private queued: (Values | null)[][] = [];
+  /** The kernel's arena, where blocks are folded in one call for every variable (wasm), or null. */
+  private readonly simd: SimdFold | null;
+  /** Gradients read but not yet folded in: the first `queued` entries, one per step, indexed by variable. */
+  private readonly block: (Values | null)[][];
+  private queued = 0;
+  /** The variable of each position in the last step's gradient list: the list comes in the same order every step. */
+  private readonly positions: { name: string; index: number }[] = [];
   private readonly beforeWeights: (Values | null)[];
   /** Per block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
   private readonly buffers: (Float32Array[] | null)[];
@@ -55,6 +60,8 @@ export class JsAccumulator implements Accumulator {
     // Where gradients are copied anyway (wasm), copy them into the SIMD kernel's memory and fold them there.
     const fold = useBuffers && BLOCK === 4 ? SimdFold.create(view.variables.map((v) => v.size)) : null;
     this.folding = fold === null ? 'js' : 'simd';
+    this.simd = fold;
+    this.block = Array.from({ length: BLOCK }, () => new Array<Values | null>(n).fill(null));
     this.moments = view.variables.map((v, i) =>
       fold === null ? new ShiftedMoments(v.size) : new ShiftedMoments(v.size, { ...fold.vectors[i]!, fold }),
     );
@@ -78,19 +85,21 @@ export class JsAccumulator implements Accumulator {
   }
 
   before(grads: readonly GradientPair[], sample: boolean): void {
-    const { byName } = this.view;
-    // Tensors never change after creation, so holding the array until the block is folded is safe:
+    // Tensors never change after creation, so holding their values until the block is folded is safe:
     // cpu hands out its (never reused) buffer, wasm and tensorflow a copy.
-    const step = new Array<Values | null>(this.view.variables.length).fill(null);
-    const slot = this.buffers[this.queued.length] ?? null;
-    for (const [name, tensor] of grads) {
+    const step = this.block[this.queued]!;
+    step.fill(null);
+    const slot = this.buffers[this.queued] ?? null;
+    const wasm = slot === null ? null : wasmHeap();
+    for (let p = 0; p < grads.length; p++) {
+      const [name, tensor] = grads[p]!;
       if (tensor === null) continue;
-      const v = byName.get(name);
-      if (v !== undefined) step[v.index] = readValues(tensor, slot?.[v.index] ?? null);
+      const index = this.indexOf(p, name);
+      if (index >= 0) step[index] = readValues(tensor, slot?.[index] ?? null, wasm);
     }
-    this.queued.push(step);
+    this.queued++;
     this.steps++;
-    if (this.queued.length >= BLOCK) this.fold();
+    if (this.queued >= BLOCK) this.fold();
     if (sample) {
       for (const v of this.view.variables) {
         this.beforeWeights[v.index] = readValues(v.variable, this.weightBuffers?.before[v.index] ?? null);
@@ -98,11 +107,25 @@ export class JsAccumulator implements Accumulator {
     }
   }
 
+  /** The tracked variable at position `p` of the gradient list, or −1; a map lookup only when the list changed. */
+  private indexOf(p: number, name: string): number {
+    const known = this.positions[p];
+    if (known !== undefined && known.name === name) return known.index;
+    const index = this.view.byName.get(name)?.index ?? -1;
+    this.positions[p] = { name, index };
+    return index;
+  }
+
   /** Folds the pending steps into the sums. A layer's variables enter together or not at all. */
   private fold(): void {
-    const steps = this.queued;
-    if (steps.length === 0) return;
-    this.queued = [];
+    const count = this.queued;
+    if (count === 0) return;
+    this.queued = 0;
+    const steps = this.block.slice(0, count);
+    if (count === BLOCK && this.simd !== null && this.inSlots()) {
+      this.foldInKernel(this.simd, steps);
+      return;
+    }
     for (const layer of this.view.layers) {
       const blocks = layer.variables.map((v) => {
         const b: Values[] = [];
@@ -117,19 +140,57 @@ export class JsAccumulator implements Accumulator {
       if (ok === blocks.length) continue;
       // Something was NaN or infinite: take the block back and go step by step.
       for (let i = 0; i < ok; i++) this.moments[layer.variables[i]!.index]!.unpushBlock(blocks[i]!);
-      for (const st of steps) {
-        let bad = 0;
-        for (const v of layer.variables) {
-          const data = st[v.index];
-          const n = data == null ? 0 : countNonFinite(data);
-          this.nonfinite[v.index] = this.nonfinite[v.index]! + n;
-          bad += n;
-        }
-        if (bad > 0) continue;
-        for (const v of layer.variables) {
-          const data = st[v.index];
-          if (data != null) this.moments[v.index]!.push(data);
-        }
+      this.foldStepByStep(layer, steps);
+    }
+  }
+
+  /** True when every variable of the block's every step was copied into its kernel slot. */
+  private inSlots(): boolean {
+    for (let k = 0; k < BLOCK; k++) {
+      const step = this.block[k]!;
+      const slot = this.buffers[k]!;
+      for (let i = 0; i < step.length; i++) if (step[i] !== slot[i]) return false;
+    }
+    return true;
+  }
+
+  /** One kernel call for the whole block; a layer with a value that is not finite is taken back and goes step by step. */
+  private foldInKernel(fold: SimdFold, steps: (Values | null)[][]): void {
+    const slots = fold.vectors;
+    for (let i = 0; i < slots.length; i++) this.moments[i]!.adoptReference(slots[i]!.slots[0]);
+    const out = fold.foldAll(1);
+    for (const layer of this.view.layers) {
+      let finite = true;
+      for (const v of layer.variables) {
+        if (!Number.isFinite(out[2 * v.index]!) || !Number.isFinite(out[2 * v.index + 1]!)) finite = false;
+      }
+      if (finite) {
+        for (const v of layer.variables) this.moments[v.index]!.recordBlock(BLOCK, out[2 * v.index]!, out[2 * v.index + 1]!);
+        continue;
+      }
+      // The kernel added the finite coordinates of this layer's variables: take exactly those back.
+      for (const v of layer.variables) {
+        const f = slots[v.index]!;
+        fold.fold4(f.slots, f.ref, f.s1, -1);
+      }
+      this.foldStepByStep(layer, steps);
+    }
+  }
+
+  /** A layer's steps one at a time, counting what is not finite and leaving out the steps that have any. */
+  private foldStepByStep(layer: ModelView['layers'][number], steps: readonly (Values | null)[][]): void {
+    for (const st of steps) {
+      let bad = 0;
+      for (const v of layer.variables) {
+        const data = st[v.index];
+        const n = data == null ? 0 : countNonFinite(data);
+        this.nonfinite[v.index] = this.nonfinite[v.index]! + n;
+        bad += n;
+      }
+      if (bad > 0) continue;
+      for (const v of layer.variables) {
+        const data = st[v.index];
+        if (data != null) this.moments[v.index]!.push(data);
       }
     }
   }
@@ -176,7 +237,8 @@ export class JsAccumulator implements Accumulator {
   }
 
   dispose(): void {
-    this.queued = [];
+    this.queued = 0;
+    for (const step of this.block) step.fill(null);
     this.beforeWeights.fill(null);
   }
 }

@@ -101,6 +101,44 @@ describe('SimdFold', () => {
     expect(simd.successiveDiffTrace() / js.successiveDiffTrace()).toBeCloseTo(1, 12);
   });
 
+  // One call for every vector of the arena (what the wasm accumulator does per block) must give each
+  // vector the numbers of its own JavaScript loop, and refuse only the vectors holding a bad value.
+  it('folds every vector in one call as each vector\'s JavaScript loop does, and marks only a vector with a bad value', () => {
+    const sizes = [37, 1, 0, 64, 6];
+    const fold = SimdFold.create(sizes)!;
+    const simd = sizes.map((n, i) => new ShiftedMoments(n, { ...fold.vectors[i]!, fold }));
+    const js = sizes.map((n) => new ShiftedMoments(n));
+    for (let blk = 0; blk < 3; blk++) {
+      const blocks = sizes.map((_, i) => fill(fold, i, 10 * blk + i, 2 + i));
+      if (blk === 2) blocks[3]![1][17] = Number.NaN;
+      sizes.forEach((_, i) => simd[i]!.adoptReference(blocks[i]![0]));
+      const out = fold.foldAll(1);
+      sizes.forEach((_, i) => {
+        const y = out[2 * i]!;
+        const q = out[2 * i + 1]!;
+        const jsTook = js[i]!.pushBlock(plainCopy(blocks[i]!));
+        expect(Number.isFinite(y) && Number.isFinite(q)).toBe(jsTook);
+        if (jsTook) simd[i]!.recordBlock(4, y, q);
+        else {
+          const s1Before = Float64Array.from(fold.vectors[i]!.s1);
+          fold.fold4(fold.vectors[i]!.slots, fold.vectors[i]!.ref, fold.vectors[i]!.s1, -1);
+          // Taking back restores every coordinate to float64 rounding (the bad one was never touched).
+          expect(fold.vectors[i]!.s1[17]).toBe(s1Before[17]);
+        }
+      });
+    }
+    sizes.forEach((n, i) => {
+      expect(simd[i]!.count).toBe(js[i]!.count);
+      if (n === 0) return;
+      expect(simd[i]!.count).toBe(i === 3 ? 8 : 12);
+      const a = simd[i]!.mean();
+      const b = js[i]!.mean();
+      for (let j = 0; j < n; j++) expect(a[j]).toBeCloseTo(b[j]!, 12);
+      if (n > 1) expect(simd[i]!.varianceTrace() / js[i]!.varianceTrace()).toBeCloseTo(1, 12);
+      expect(simd[i]!.successiveDiffTrace() / js[i]!.successiveDiffTrace()).toBeCloseTo(1, 12);
+    });
+  });
+
   it('refuses storage that is not in the kernel memory or of the wrong length', () => {
     const fold = SimdFold.create([4])!;
     expect(() => new ShiftedMoments(4, { ref: new Float64Array(4), s1: fold.vectors[0]!.s1, fold })).toThrow(RangeError);

@@ -58,6 +58,51 @@ describe('monitor on the wasm backend', () => {
     model.dispose();
   });
 
+  it('leaves out, in the kernel\'s one-call fold, only the steps of the layer whose gradient is not finite', async () => {
+    // Eight steps (two blocks of four); step 5 of the first layer's kernel holds a NaN. That layer keeps
+    // the other 7 steps, the output layer all 8, each equal to the two-pass formulas over what it kept.
+    const model = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 6 });
+    const view = viewModel(model);
+    const acc = new JsAccumulator(view);
+    expect(acc.folding).toBe('simd');
+    const kept: Float32Array[][] = view.variables.map(() => []);
+    const badVar = 0;
+    for (let k = 0; k < 8; k++) {
+      const step = view.variables.map((v, i) => {
+        const values = Float32Array.from(tf.randomNormal(v.variable.shape, 0.5, 1, 'float32', 70 + k).dataSync());
+        if (k === 5 && i === badVar) values[3] = Number.NaN;
+        return values;
+      });
+      const layerOfBad = view.variables[badVar]!.layer;
+      step.forEach((g, i) => {
+        if (!(k === 5 && view.variables[i]!.layer === layerOfBad)) kept[i]!.push(g);
+      });
+      const tensors = view.variables.map((v, i) => tf.tensor(step[i]!, v.variable.shape));
+      acc.before(view.variables.map((v, i) => [v.variable.name, tensors[i]!] as const), false);
+      acc.after(false);
+      tf.dispose(tensors);
+    }
+    const out = await acc.close();
+    view.variables.forEach((v, i) => {
+      const rows = kept[i]!;
+      let trace = 0;
+      let mean2 = 0;
+      for (let j = 0; j < v.size; j++) {
+        const col = rows.map((g) => g[j]!);
+        const m = col.reduce((a, b) => a + b, 0) / col.length;
+        trace += col.reduce((a, b) => a + (b - m) ** 2, 0) / (col.length - 1);
+        mean2 += m * m;
+      }
+      expect(out[i]!.count).toBe(rows.length);
+      expect(out[i]!.nonfinite).toBe(i === badVar ? 1 : 0);
+      expect(out[i]!.varianceTrace / trace).toBeCloseTo(1, 9);
+      expect(out[i]!.meanSquaredNorm / mean2).toBeCloseTo(1, 9);
+    });
+    expect(out.map((o) => o.count).sort()).toEqual([7, 7, 8, 8]);
+    acc.dispose();
+    model.dispose();
+  });
+
   it('chooses the JavaScript accumulator and leaves training bit-identical', async () => {
     expect(tf.getBackend()).toBe('wasm');
     const plain = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 8 });
