@@ -14,8 +14,11 @@
 ;; Every operation on s1 is the scalar one of the JavaScript loop, in the same order per lane, so its
 ;; sums are identical; the two sums of squares add the two lanes' partial sums at the end (a
 ;; different order).
+;;
+;; The memory is the caller's. The build also makes a variant of this module whose memory is shared
+;; (the line below with "shared" added), so that a second thread can fold in the same memory.
 (module
-  (memory (export "memory") 1)
+  (import "env" "memory" (memory 1 65536))
   (func (export "fold4") (param $a i32) (param $b i32) (param $c i32) (param $e i32)
         (param $ref i32) (param $s1 i32) (param $ends i32) (param $count i32) (param $out i32)
         (param $sign f64)

@@ -6,6 +6,7 @@
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
 import { SimdFold } from '../analysis/simd-fold.js';
 import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
+import { FoldThread } from './fold-thread.js';
 import type { ModelView } from './model-layers.js';
 import { benefitsFromBuffers, readValues, wasmHeap } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
@@ -26,24 +27,40 @@ function diffAndSumSq(a: Values, b: Values, out: Float64Array): void {
   out[1] = s2;
 }
 
+export interface JsAccumulatorOptions {
+  /** Fold blocks on a worker thread where the kernel runs (default true; see fold-thread.ts). */
+  thread?: boolean;
+}
+
+type Steps = (Values | null)[][];
+
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
-  /** 'simd' where blocks are folded by the WebAssembly kernel in its own memory (wasm backend), else 'js'. */
-  readonly folding: 'simd' | 'js';
+  /**
+   * 'simd-thread' where blocks are folded by the WebAssembly kernel in its own memory on a worker thread
+   * (wasm backend in Node), 'simd' where the kernel runs on the training thread, else 'js'.
+   */
+  readonly folding: 'simd-thread' | 'simd' | 'js';
   private readonly view: ModelView;
   private readonly moments: ShiftedMoments[];
   private readonly initial: Float32Array[];
   private readonly nonfinite: Float64Array;
   /** The kernel's arena, where blocks are folded in one call for every variable (wasm), or null. */
   private readonly simd: SimdFold | null;
-  /** Gradients read but not yet folded in: the first `queued` entries, one per step, indexed by variable. */
-  private readonly block: (Values | null)[][];
+  /** The worker thread that folds blocks, where there is one (its `folds` and `ready` are for tests and benches). */
+  readonly thread: FoldThread | null;
+  /** The block set being filled: with a thread, one set fills while the other is folded. */
+  private set = 0;
+  /** The set whose fold is in flight on the thread, and its steps, until its results are recorded. */
+  private inFlight: { set: number; steps: Steps } | null = null;
+  /** Per block set, gradients read but not yet folded in: the first `queued` entries, one per step, indexed by variable. */
+  private readonly block: Steps[];
   private queued = 0;
   /** The variable of each position in the last step's gradient list: the list comes in the same order every step. */
   private readonly positions: { name: string; index: number }[] = [];
   private readonly beforeWeights: (Values | null)[];
-  /** Per block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
-  private readonly buffers: (Float32Array[] | null)[];
+  /** Per block set, block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
+  private readonly buffers: (Float32Array[] | null)[][];
   /** Reusable copies of the weights before and after a sampled step, and at a window's end (wasm). */
   private readonly weightBuffers: { before: Float32Array[]; after: Float32Array[] } | null;
   private updateSq: Float64Array;
@@ -53,15 +70,21 @@ export class JsAccumulator implements Accumulator {
   private sampled = false;
   private steps = 0;
 
-  constructor(view: ModelView) {
+  constructor(view: ModelView, options: JsAccumulatorOptions = {}) {
     this.view = view;
     const n = view.variables.length;
     const useBuffers = benefitsFromBuffers();
-    // Where gradients are copied anyway (wasm), copy them into the SIMD kernel's memory and fold them there.
-    const fold = useBuffers && BLOCK === 4 ? SimdFold.create(view.variables.map((v) => v.size)) : null;
-    this.folding = fold === null ? 'js' : 'simd';
+    // Where gradients are copied anyway (wasm), copy them into the SIMD kernel's memory and fold them there,
+    // on a worker thread where the runtime has them.
+    const sizes = view.variables.map((v) => v.size);
+    const useKernel = useBuffers && BLOCK === 4;
+    const shared = useKernel && options.thread !== false ? SimdFold.create(sizes, { sets: 2, shared: true }) : null;
+    const fold = shared ?? (useKernel ? SimdFold.create(sizes) : null);
+    this.thread = shared === null ? null : FoldThread.start(shared);
+    this.folding = fold === null ? 'js' : this.thread !== null ? 'simd-thread' : 'simd';
     this.simd = fold;
-    this.block = Array.from({ length: BLOCK }, () => new Array<Values | null>(n).fill(null));
+    const sets = fold?.calls.length ?? 1;
+    this.block = Array.from({ length: sets }, () => Array.from({ length: BLOCK }, () => new Array<Values | null>(n).fill(null)));
     this.moments = view.variables.map((v, i) =>
       fold === null ? new ShiftedMoments(v.size) : new ShiftedMoments(v.size, { ...fold.vectors[i]!, fold }),
     );
@@ -69,8 +92,10 @@ export class JsAccumulator implements Accumulator {
     this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
     this.nonfinite = new Float64Array(n);
     this.beforeWeights = new Array<Values | null>(n).fill(null);
-    this.buffers = Array.from({ length: BLOCK }, (_, k) =>
-      fold !== null ? fold.vectors.map((f) => f.slots[k]!) : useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
+    this.buffers = Array.from({ length: sets }, (_, set) =>
+      Array.from({ length: BLOCK }, (_, k) =>
+        fold !== null ? fold.vectors.map((f) => f.sets[set]![k]!) : useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
+      ),
     );
     this.weightBuffers = useBuffers
       ? { before: view.variables.map((v) => new Float32Array(v.size)), after: view.variables.map((v) => new Float32Array(v.size)) }
@@ -87,9 +112,9 @@ export class JsAccumulator implements Accumulator {
   before(grads: readonly GradientPair[], sample: boolean): void {
     // Tensors never change after creation, so holding their values until the block is folded is safe:
     // cpu hands out its (never reused) buffer, wasm and tensorflow a copy.
-    const step = this.block[this.queued]!;
+    const step = this.block[this.set]![this.queued]!;
     step.fill(null);
-    const slot = this.buffers[this.queued] ?? null;
+    const slot = this.buffers[this.set]![this.queued] ?? null;
     const wasm = slot === null ? null : wasmHeap();
     for (let p = 0; p < grads.length; p++) {
       const [name, tensor] = grads[p]!;
@@ -116,14 +141,28 @@ export class JsAccumulator implements Accumulator {
     return index;
   }
 
-  /** Folds the pending steps into the sums. A layer's variables enter together or not at all. */
+  /**
+   * Folds the pending steps into the sums (with a thread, hands a full block over and records the one
+   * before it). A layer's variables enter together or not at all.
+   */
   private fold(): void {
+    this.settle();
     const count = this.queued;
     if (count === 0) return;
     this.queued = 0;
-    const steps = this.block.slice(0, count);
-    if (count === BLOCK && this.simd !== null && this.inSlots()) {
-      this.foldInKernel(this.simd, steps);
+    const set = this.set;
+    const steps = this.block[set]!.slice(0, count);
+    const fold = this.simd;
+    if (count === BLOCK && fold !== null && this.inSlots(set)) {
+      for (let i = 0; i < fold.vectors.length; i++) this.moments[i]!.adoptReference(fold.vectors[i]!.sets[set]![0]);
+      if (this.thread !== null) {
+        this.thread.request(set, 1);
+        this.inFlight = { set, steps };
+        this.set = (set + 1) % this.block.length;
+        return;
+      }
+      fold.foldAll(1, set);
+      this.record(fold, set, steps);
       return;
     }
     for (const layer of this.view.layers) {
@@ -144,21 +183,31 @@ export class JsAccumulator implements Accumulator {
     }
   }
 
-  /** True when every variable of the block's every step was copied into its kernel slot. */
-  private inSlots(): boolean {
+  /** Waits for the fold in flight on the thread, if any, and records it: afterwards the sums are ours. */
+  private settle(): void {
+    const flight = this.inFlight;
+    if (flight === null) return;
+    this.inFlight = null;
+    this.thread!.finish();
+    this.record(this.simd!, flight.set, flight.steps);
+  }
+
+  /** True when every variable of the block's every step was copied into its kernel slot of block set `set`. */
+  private inSlots(set: number): boolean {
     for (let k = 0; k < BLOCK; k++) {
-      const step = this.block[k]!;
-      const slot = this.buffers[k]!;
+      const step = this.block[set]![k]!;
+      const slot = this.buffers[set]![k]!;
       for (let i = 0; i < step.length; i++) if (step[i] !== slot[i]) return false;
     }
     return true;
   }
 
-  /** One kernel call for the whole block; a layer with a value that is not finite is taken back and goes step by step. */
-  private foldInKernel(fold: SimdFold, steps: (Values | null)[][]): void {
-    const slots = fold.vectors;
-    for (let i = 0; i < slots.length; i++) this.moments[i]!.adoptReference(slots[i]!.slots[0]);
-    const out = fold.foldAll(1);
+  /**
+   * Counts a block the kernel folded for every variable (block set `set`); a layer with a value that is
+   * not finite is taken back and goes step by step.
+   */
+  private record(fold: SimdFold, set: number, steps: Steps): void {
+    const out = fold.results;
     for (const layer of this.view.layers) {
       let finite = true;
       for (const v of layer.variables) {
@@ -170,8 +219,8 @@ export class JsAccumulator implements Accumulator {
       }
       // The kernel added the finite coordinates of this layer's variables: take exactly those back.
       for (const v of layer.variables) {
-        const f = slots[v.index]!;
-        fold.fold4(f.slots, f.ref, f.s1, -1);
+        const f = fold.vectors[v.index]!;
+        fold.fold4(f.sets[set]!, f.ref, f.s1, -1);
       }
       this.foldStepByStep(layer, steps);
     }
@@ -211,6 +260,7 @@ export class JsAccumulator implements Accumulator {
 
   close(): Promise<RawVariableWindow[]> {
     this.fold();
+    this.settle();
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
       const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
@@ -237,8 +287,10 @@ export class JsAccumulator implements Accumulator {
   }
 
   dispose(): void {
+    this.thread?.close();
+    this.inFlight = null;
     this.queued = 0;
-    for (const step of this.block) step.fill(null);
+    for (const set of this.block) for (const step of set) step.fill(null);
     this.beforeWeights.fill(null);
   }
 }

@@ -1,0 +1,191 @@
+/**
+ * A worker thread that runs the block fold (SimdFold.foldAll) while training goes on: on the wasm
+ * backend in Node, tfjs computes on one thread and a second core is idle, so the fold of four
+ * minibatches no longer waits inside a training step. The thread and the training thread share the
+ * arena's memory and hand a fold over through four int32 words of it (Atomics). At most one fold is in
+ * flight; the training thread touches the sums only when none is. While training, the worker looks for
+ * work every millisecond (a few hundred wake-ups a second on the otherwise idle core) and sleeps after
+ * a second without any. A fold the worker has not picked up
+ * when its result is needed (the worker still starting, or gone) is taken back and run here instead, so
+ * nothing ever waits on a thread that does not run. The CPU time is the same: it is moved, not saved.
+ */
+import { createRequire } from 'node:module';
+import type { Worker } from 'node:worker_threads';
+import type { SimdFold } from '../analysis/simd-fold.js';
+
+// The hand-over words (SimdFold.control): state, block set, sign, and whether the worker sleeps.
+const STATE = 0;
+const SET = 1;
+const SIGN = 2;
+const SLEEPING = 3;
+const IDLE = 0;
+const ASKED = 1;
+const CLAIMED = 2;
+const DONE = 3;
+const QUIT = 4;
+const FAILED = 5;
+/**
+ * While folds keep coming the worker looks for the next one every POLL_MS instead of sleeping until it is
+ * woken: waking a sleeping thread (Atomics.notify) costs the training thread 10–30 µs, more than a third of
+ * the fold it hands over. After ACTIVE_MS without a fold it sleeps, and a request wakes it.
+ */
+const POLL_MS = 1;
+const ACTIVE_MS = 1000;
+
+/** The worker, a CommonJS script. It waits on the state word, claims a request, folds, and says done. */
+const WORKER_SOURCE = `
+const { workerData, parentPort } = require('node:worker_threads');
+const { module, memory, control, calls } = workerData;
+const kernel = new WebAssembly.Instance(module, { env: { memory } }).exports;
+const words = new Int32Array(memory.buffer, control, 4);
+parentPort.postMessage('ready');
+let lastFold = Date.now();
+for (;;) {
+  let s = Atomics.load(words, ${STATE});
+  while (s !== ${ASKED} && s !== ${QUIT}) {
+    if (Date.now() - lastFold < ${ACTIVE_MS}) {
+      Atomics.wait(words, ${STATE}, s, ${POLL_MS});
+    } else {
+      // Say so before the last look: a request stored after it sees SLEEPING and wakes us.
+      Atomics.store(words, ${SLEEPING}, 1);
+      s = Atomics.load(words, ${STATE});
+      if (s !== ${ASKED} && s !== ${QUIT}) Atomics.wait(words, ${STATE}, s);
+      Atomics.store(words, ${SLEEPING}, 0);
+      lastFold = Date.now();
+    }
+    s = Atomics.load(words, ${STATE});
+  }
+  if (s === ${QUIT}) break;
+  if (Atomics.compareExchange(words, ${STATE}, ${ASKED}, ${CLAIMED}) !== ${ASKED}) continue;
+  let end = ${DONE};
+  try {
+    const c = calls[Atomics.load(words, ${SET})];
+    kernel.fold4(c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7], c[8], Atomics.load(words, ${SIGN}) === 1 ? 1 : -1);
+  } catch {
+    end = ${FAILED};
+  }
+  lastFold = Date.now();
+  Atomics.store(words, ${STATE}, end);
+  // On this thread's time: wakes the training thread if it waits for this fold.
+  Atomics.notify(words, ${STATE});
+}
+`;
+
+/** How long a claimed fold may take before it is called lost (it takes well under a millisecond). */
+const CLAIMED_LIMIT_MS = 10_000;
+
+export class FoldThread {
+  private readonly fold: SimdFold;
+  private readonly worker: Worker;
+  private readonly words: Int32Array;
+  private inFlight = false;
+  private closed = false;
+  /** Folds run by the worker and, because it had not picked them up, on the calling thread. */
+  readonly folds = { thread: 0, here: 0 };
+  /** Resolves true once the worker waits for folds, false if it stopped or could not start. */
+  readonly ready: Promise<boolean>;
+
+  private constructor(fold: SimdFold, worker: Worker) {
+    this.fold = fold;
+    this.worker = worker;
+    this.words = fold.control;
+    this.ready = new Promise((resolve) => {
+      worker.once('message', () => resolve(true));
+      worker.once('error', () => resolve(false));
+      worker.once('exit', () => resolve(false));
+    });
+  }
+
+  /**
+   * A thread folding in `fold`'s memory, or null where that cannot be (no shared memory, no worker
+   * threads: a browser, or a runtime without them). The worker starts in the background; until it runs,
+   * folds run on the calling thread.
+   */
+  static start(fold: SimdFold): FoldThread | null {
+    if (!(fold.memory.buffer instanceof SharedArrayBuffer)) return null;
+    let WorkerClass: typeof Worker;
+    try {
+      const require = createRequire(import.meta.url);
+      WorkerClass = (require('node:worker_threads') as typeof import('node:worker_threads')).Worker;
+    } catch {
+      return null;
+    }
+    Atomics.store(fold.control, STATE, IDLE);
+    Atomics.store(fold.control, SLEEPING, 0);
+    let worker: Worker;
+    try {
+      worker = new WorkerClass(WORKER_SOURCE, {
+        eval: true,
+        workerData: { module: fold.module, memory: fold.memory, control: fold.control.byteOffset, calls: fold.calls },
+      });
+    } catch {
+      return null;
+    }
+    // Never keep the process alive, and never let a worker's failure reach the user's process: a fold
+    // the worker does not take runs here.
+    worker.unref();
+    worker.on('error', () => {});
+    return new FoldThread(fold, worker);
+  }
+
+  /** Hands the fold of block set `set` to the worker. The sums must not be touched until {@link finish}. */
+  request(set: number, sign: 1 | -1): void {
+    if (this.inFlight) throw new Error('FoldThread.request: a fold is already in flight; call finish() first');
+    if (this.closed) {
+      this.fold.foldAll(sign, set);
+      this.folds.here++;
+      return;
+    }
+    const w = this.words;
+    Atomics.store(w, SET, set);
+    Atomics.store(w, SIGN, sign);
+    Atomics.store(w, STATE, ASKED);
+    if (Atomics.load(w, SLEEPING) === 1) Atomics.notify(w, STATE);
+    this.inFlight = true;
+  }
+
+  /**
+   * Waits for the fold in flight, if any (runs it here if the worker has not picked it up); afterwards
+   * its results are in SimdFold.results and the sums may be read and changed.
+   */
+  finish(): void {
+    if (!this.inFlight) return;
+    this.inFlight = false;
+    // Closed with a fold in flight (dispose): its result is not wanted.
+    if (this.closed) return;
+    const w = this.words;
+    const set = Atomics.load(w, SET);
+    const sign = Atomics.load(w, SIGN) === 1 ? 1 : -1;
+    if (Atomics.compareExchange(w, STATE, ASKED, IDLE) === ASKED) {
+      this.fold.foldAll(sign, set);
+      this.folds.here++;
+      return;
+    }
+    const start = performance.now();
+    for (;;) {
+      const s = Atomics.load(w, STATE);
+      if (s === DONE) {
+        Atomics.store(w, STATE, IDLE);
+        this.folds.thread++;
+        return;
+      }
+      if (s === FAILED || performance.now() - start > CLAIMED_LIMIT_MS) {
+        Atomics.store(w, STATE, IDLE);
+        this.close();
+        throw new Error('the fold thread failed on a block (its statistics are lost); folds now run on the training thread');
+      }
+      Atomics.wait(w, STATE, CLAIMED, 100);
+    }
+  }
+
+  /** Stops the worker. Later requests fold on the calling thread. */
+  close(): void {
+    if (this.closed) return;
+    this.closed = true;
+    if (Atomics.load(this.words, STATE) !== CLAIMED) {
+      Atomics.store(this.words, STATE, QUIT);
+      Atomics.notify(this.words, STATE);
+    }
+    void this.worker.terminate().catch(() => {});
+  }
+}
