@@ -80,8 +80,11 @@ export class FoldThread {
   private readonly words: Int32Array;
   private inFlight = false;
   private closed = false;
-  /** Folds run by the worker and, because it had not picked them up, on the calling thread. */
-  readonly folds = { thread: 0, here: 0 };
+  /**
+   * Folds run by the worker and, because it had not picked them up, on the calling thread; and how
+   * often, and how long in all (ms), the calling thread waited for the worker to finish one.
+   */
+  readonly folds = { thread: 0, here: 0, waits: 0, waitMs: 0 };
   /** Resolves true once the worker waits for folds, false if it stopped or could not start. */
   readonly ready: Promise<boolean>;
 
@@ -162,11 +165,15 @@ export class FoldThread {
       return;
     }
     const start = performance.now();
-    for (;;) {
+    for (let round = 0; ; round++) {
       const s = Atomics.load(w, STATE);
       if (s === DONE) {
         Atomics.store(w, STATE, IDLE);
         this.folds.thread++;
+        if (round > 0) {
+          this.folds.waits++;
+          this.folds.waitMs += performance.now() - start;
+        }
         return;
       }
       if (s === FAILED || performance.now() - start > CLAIMED_LIMIT_MS) {

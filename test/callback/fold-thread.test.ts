@@ -39,7 +39,7 @@ describe('FoldThread', () => {
       const want = plain.foldAll(1, set);
       expect(Array.from(shared.results)).toEqual(Array.from(want));
     }
-    expect(thread.folds).toEqual({ thread: 3, here: 0 });
+    expect(thread.folds).toMatchObject({ thread: 3, here: 0, waits: 0 });
     SIZES.forEach((_, i) => expect(Array.from(shared.vectors[i]!.s1)).toEqual(Array.from(plain.vectors[i]!.s1)));
     thread.close();
   });
@@ -58,7 +58,7 @@ describe('FoldThread', () => {
     thread.request(0, -1);
     thread.finish();
     plain.foldAll(-1, 0);
-    expect(thread.folds).toEqual({ thread: 0, here: 2 });
+    expect(thread.folds).toMatchObject({ thread: 0, here: 2, waits: 0 });
     SIZES.forEach((_, i) => expect(Array.from(shared.vectors[i]!.s1)).toEqual(Array.from(plain.vectors[i]!.s1)));
     expect(() => {
       thread.request(0, 1);
