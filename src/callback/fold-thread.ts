@@ -4,8 +4,7 @@
  * minibatches no longer waits inside a training step. The thread and the training thread share the
  * arena's memory and hand a fold over through four int32 words of it (Atomics). At most one fold is in
  * flight; the training thread touches the sums only when none is. While training, the worker looks for
- * work every millisecond (a few hundred wake-ups a second on the otherwise idle core) and sleeps after
- * a second without any. A fold the worker has not picked up
+ * work four times per interval between folds and sleeps after a while without any (see MIN_POLL_MS). A fold the worker has not picked up
  * when its result is needed (the worker still starting, or gone) is taken back and run here instead, so
  * nothing ever waits on a thread that does not run. The CPU time is the same: it is moved, not saved.
  */
@@ -25,12 +24,15 @@ const DONE = 3;
 const QUIT = 4;
 const FAILED = 5;
 /**
- * While folds keep coming the worker looks for the next one every POLL_MS instead of sleeping until it is
+ * While folds keep coming the worker looks for the next one now and then instead of sleeping until it is
  * woken: waking a sleeping thread (Atomics.notify) costs the training thread 10–30 µs, more than a third of
- * the fold it hands over. After ACTIVE_MS without a fold it sleeps, and a request wakes it.
+ * the fold it hands over. It looks four times per interval between folds (from 1 to 50 ms apart), so a
+ * fold is picked up long before its result is needed, at a few hundred wake-ups a second at most. After
+ * ten intervals (at least a second) without a fold it sleeps, and a request wakes it.
  */
-const POLL_MS = 1;
-const ACTIVE_MS = 1000;
+const MIN_POLL_MS = 1;
+const MAX_POLL_MS = 50;
+const MIN_ACTIVE_MS = 1000;
 
 /** The worker, a CommonJS script. It waits on the state word, claims a request, folds, and says done. */
 const WORKER_SOURCE = `
@@ -40,11 +42,12 @@ const kernel = new WebAssembly.Instance(module, { env: { memory } }).exports;
 const words = new Int32Array(memory.buffer, control, 4);
 parentPort.postMessage('ready');
 let lastFold = Date.now();
+let gap = ${MIN_POLL_MS * 4};
 for (;;) {
   let s = Atomics.load(words, ${STATE});
   while (s !== ${ASKED} && s !== ${QUIT}) {
-    if (Date.now() - lastFold < ${ACTIVE_MS}) {
-      Atomics.wait(words, ${STATE}, s, ${POLL_MS});
+    if (Date.now() - lastFold < Math.max(${MIN_ACTIVE_MS}, 10 * gap)) {
+      Atomics.wait(words, ${STATE}, s, Math.min(${MAX_POLL_MS}, Math.max(${MIN_POLL_MS}, gap / 4)));
     } else {
       // Say so before the last look: a request stored after it sees SLEEPING and wakes us.
       Atomics.store(words, ${SLEEPING}, 1);
@@ -57,6 +60,8 @@ for (;;) {
   }
   if (s === ${QUIT}) break;
   if (Atomics.compareExchange(words, ${STATE}, ${ASKED}, ${CLAIMED}) !== ${ASKED}) continue;
+  const t = Date.now();
+  gap = 0.8 * gap + 0.2 * (t - lastFold);
   let end = ${DONE};
   try {
     const c = calls[Atomics.load(words, ${SET})];
