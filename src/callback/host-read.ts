@@ -35,9 +35,13 @@ export function wasmHeap(): WasmHeap | null {
   return table !== undefined && heap !== undefined ? { table, heap } : null;
 }
 
-/** Values of `t`, copied into `into` where that avoids an allocation; otherwise what dataSync gives. */
+/**
+ * Values of `t`: with `into`, copied into it (straight out of the wasm heap, which avoids dataSync's
+ * allocation, or from dataSync); without, or when `t` is not float32 of `into`'s length, what dataSync gives.
+ */
 export function readValues(t: tf.Tensor, into: Float32Array | null, wasm: WasmHeap | null = into === null ? null : wasmHeap()): Values {
-  if (into !== null && wasm !== null && t.dtype === 'float32' && into.length === t.size) {
+  if (into === null || t.dtype !== 'float32' || into.length !== t.size) return t.dataSync() as Values;
+  if (wasm !== null) {
     const info = wasm.table.get(t.dataId as object);
     if (info !== undefined && info.dtype === 'float32' && typeof info.memoryOffset === 'number') {
       const start = info.memoryOffset >> 2;
@@ -47,7 +51,20 @@ export function readValues(t: tf.Tensor, into: Float32Array | null, wasm: WasmHe
       }
     }
   }
-  return t.dataSync() as Values;
+  const values = t.dataSync() as Values;
+  if (!(values instanceof Float32Array) || values.length !== into.length) return values;
+  into.set(values);
+  return into;
+}
+
+/**
+ * True on the backends whose gradients reach the host as float32 arrays for a memcpy (cpu: its own
+ * arrays, wasm: its heap): there the accumulator copies them into the SIMD kernel's memory and folds them
+ * there, which costs less than folding them in JavaScript.
+ */
+export function foldsInKernel(): boolean {
+  const backend = tf.getBackend();
+  return backend === 'wasm' || backend === 'cpu';
 }
 
 /** True where reading into a reusable buffer saves an allocation (the wasm backend). */

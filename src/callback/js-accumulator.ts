@@ -8,7 +8,7 @@ import { SimdFold } from '../analysis/simd-fold.js';
 import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
 import { FoldThread } from './fold-thread.js';
 import type { ModelView } from './model-layers.js';
-import { benefitsFromBuffers, readValues, wasmHeap } from './host-read.js';
+import { benefitsFromBuffers, foldsInKernel, readValues, wasmHeap } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
 
 type Values = ArrayLike<number>;
@@ -28,6 +28,8 @@ function diffAndSumSq(a: Values, b: Values, out: Float64Array): void {
 }
 
 export interface JsAccumulatorOptions {
+  /** Fold blocks with the WebAssembly SIMD kernel on the backends where it pays (default true; false: the JavaScript loop). */
+  kernel?: boolean;
   /** Fold blocks on a worker thread where the kernel runs (default true; see fold-thread.ts). */
   thread?: boolean;
 }
@@ -38,7 +40,7 @@ export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
   /**
    * 'simd-thread' where blocks are folded by the WebAssembly kernel in its own memory on a worker thread
-   * (wasm backend in Node), 'simd' where the kernel runs on the training thread, else 'js'.
+   * (cpu and wasm backends in Node), 'simd' where the kernel runs on the training thread, else 'js'.
    */
   readonly folding: 'simd-thread' | 'simd' | 'js';
   private readonly view: ModelView;
@@ -63,6 +65,8 @@ export class JsAccumulator implements Accumulator {
   private readonly buffers: (Float32Array[] | null)[][];
   /** Reusable copies of the weights before and after a sampled step, and at a window's end (wasm). */
   private readonly weightBuffers: { before: Float32Array[]; after: Float32Array[] } | null;
+  /** Reads go straight to the wasm heap (the wasm backend). */
+  private readonly wasmReads: boolean;
   private updateSq: Float64Array;
   private updateWeightSq: Float64Array;
   /** Scratch for diffAndSumSq's two sums. */
@@ -74,10 +78,11 @@ export class JsAccumulator implements Accumulator {
     this.view = view;
     const n = view.variables.length;
     const useBuffers = benefitsFromBuffers();
-    // Where gradients are copied anyway (wasm), copy them into the SIMD kernel's memory and fold them there,
-    // on a worker thread where the runtime has them.
+    this.wasmReads = useBuffers;
+    // Copy gradients into the SIMD kernel's memory and fold them there (on wasm they are copied anyway, on
+    // cpu the copy costs less than the JavaScript fold saves), on a worker thread where the runtime has them.
     const sizes = view.variables.map((v) => v.size);
-    const useKernel = useBuffers && BLOCK === 4;
+    const useKernel = options.kernel !== false && foldsInKernel() && BLOCK === 4;
     const shared = useKernel && options.thread !== false ? SimdFold.create(sizes, { sets: 2, shared: true }) : null;
     const fold = shared ?? (useKernel ? SimdFold.create(sizes) : null);
     this.thread = shared === null ? null : FoldThread.start(shared);
@@ -110,12 +115,12 @@ export class JsAccumulator implements Accumulator {
   }
 
   before(grads: readonly GradientPair[], sample: boolean): void {
-    // Tensors never change after creation, so holding their values until the block is folded is safe:
-    // cpu hands out its (never reused) buffer, wasm and tensorflow a copy.
+    // Values are copied into the kernel's slots; without them, holding dataSync's arrays until the block is
+    // folded is safe: tensors never change, and cpu hands out its (never reused) buffer, the others a copy.
     const step = this.block[this.set]![this.queued]!;
     step.fill(null);
     const slot = this.buffers[this.set]![this.queued] ?? null;
-    const wasm = slot === null ? null : wasmHeap();
+    const wasm = slot === null || !this.wasmReads ? null : wasmHeap();
     for (let p = 0; p < grads.length; p++) {
       const [name, tensor] = grads[p]!;
       if (tensor === null) continue;
