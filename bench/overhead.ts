@@ -228,7 +228,7 @@ interface RunResult {
   /** Process CPU time (user + system, every thread) during fit, ms. */
   cpuMs: number;
   /** Blocks folded by the accumulator's worker thread and on the training thread (null without one). */
-  folds: { thread: number; here: number; waits: number; waitMs: number } | null;
+  folds: { thread: number; here: number; waits: number; waitMs: number; workerMs: number; wakeups: number } | null;
 }
 
 /** Wraps the monitor's hooks with timers; `after` runs after each timed call, outside the timing. */
@@ -1053,6 +1053,8 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
       ratio(control),
       r.folds === null ? '—' : `${r.folds.thread} / ${r.folds.here}`,
       r.folds === null ? '—' : `${r.folds.waits}, ${ms(r.folds.waitMs, 2)} ms`,
+      r.folds === null ? '—' : `${ms(r.folds.workerMs, 1)} ms  ${share(r.folds.workerMs)}`,
+      r.folds === null ? '—' : `${r.folds.wakeups} (${(r.folds.wakeups / (r.fitMs / 1000)).toFixed(0)}/s)`,
       `${seconds(r.cpuMs)} / ${seconds(none.cpuMs)}`,
       pct((r.cpuMs - none.cpuMs) / none.cpuMs),
     ];
@@ -1081,6 +1083,8 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
     'fwd+bwd ratio, same pair (machine drift)',
     'blocks folded on the worker thread / on the training thread',
     '  the training thread waited for the worker: times, Σ',
+    '  the worker’s time in folds (on the other core)',
+    '  the worker’s wake-ups to look for work',
     'process CPU time during fit (all threads): monitored / unmonitored',
     '  extra CPU time, ÷ unmonitored (noisy)',
   ];
@@ -1098,10 +1102,11 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
       '  set-up); "less the first" shows how the rest amortises. mon.close() is not counted.',
       'unmonitored run: one fit of the same length just before, with no monitor: its ratio holds the machine’s drift',
       '  (several % on this shared machine; see the fwd+bwd ratio) and is not checked against the target.',
-      'Blocks folded: on wasm in Node the accumulator folds each block of four minibatches on a worker thread, off the training',
-      '  thread (a fold not yet picked up when needed runs on the training thread). Its time is not in Σ tap: the CPU time rows',
-      '  count every thread (the worker, and garbage collection and compilation threads), so they show what moved, not only what',
-      '  the training thread spent.',
+      'Blocks folded: on cpu and wasm in Node the accumulator folds each block of four minibatches on a worker thread, off the',
+      '  training thread (a fold not yet picked up when needed runs on the training thread). Its time is not in Σ tap; the worker’s',
+      '  own rows show it (timed by the worker around each fold), and its wake-ups while it looks for work (each a few µs).',
+      '  The process CPU rows count every thread (the worker, garbage collection, compilation) over two separate runs: the',
+      '  machine’s drift between them (the fwd+bwd ratio) moves them by as much, so they bound nothing; read the worker rows.',
     ],
   );
 }

@@ -4,8 +4,8 @@
  * in one call. The vectors to fold must already sit in the kernel's memory, so an arena hands out every
  * buffer at once, in a memory sized for them from the start. The vectors lie end to end, each padded
  * with zeros to a multiple of four coordinates: one or two sets of four float32 block regions, the
- * float64 reference and sums, the kernel's segment table, its per-vector results and a few int32 words
- * for a second thread's hand-over. Padding coordinates stay zero and add nothing. With `shared`, the
+ * float64 reference and sums, the kernel's segment table, its per-vector results and 32 bytes for a
+ * second thread's hand-over. Padding coordinates stay zero and add nothing. With `shared`, the
  * memory is shared, so that a worker thread can run the same kernel on it (callback/fold-thread.ts).
  * Without WebAssembly SIMD (an old runtime) `SimdFold.create` returns null and the JavaScript loop runs.
  */
@@ -65,7 +65,7 @@ export class SimdFold {
   private readonly kernel: FoldExports;
   private readonly buffer: ArrayBufferLike;
   readonly vectors: readonly FoldSlots[];
-  /** Four int32 words for handing a fold to a second thread (callback/fold-thread.ts). */
+  /** Four int32 words for handing a fold to a second thread, then room for its two float64 counters (callback/fold-thread.ts). */
   readonly control: Int32Array;
   /** The kernel's arguments for every vector of each block set. */
   readonly calls: readonly FoldCall[];
@@ -79,7 +79,7 @@ export class SimdFold {
     const padded = sizes.map(pad4);
     const total = padded.reduce((a, b) => a + b, 0);
     const count = sizes.length;
-    const bytes = sets * 4 * (4 * total) + 2 * (8 * total) + 4 * pad4(count + 1) + 8 * (2 * count + 2) + 16;
+    const bytes = sets * 4 * (4 * total) + 2 * (8 * total) + 4 * pad4(count + 1) + 8 * (2 * count + 2) + 32;
     const pages = Math.max(1, Math.ceil(bytes / PAGE));
     this.memory = new WebAssembly.Memory({ initial: pages, maximum: pages, shared });
     this.kernel = new WebAssembly.Instance(module, { env: { memory: this.memory } }).exports as unknown as FoldExports;
@@ -96,7 +96,7 @@ export class SimdFold {
     const s1 = region((o) => new Float64Array(buffer, o, total), 8 * total);
     this.ends = region((o) => new Int32Array(buffer, o, count + 1), 4 * pad4(count + 1));
     this.out = region((o) => new Float64Array(buffer, o, 2 * count + 2), 8 * (2 * count + 2));
-    this.control = region((o) => new Int32Array(buffer, o, 4), 16);
+    this.control = region((o) => new Int32Array(buffer, o, 8), 32);
     this.calls = setRegions.map(([a, b, c, e]) => [a.byteOffset, b.byteOffset, c.byteOffset, e.byteOffset, ref.byteOffset, s1.byteOffset, this.ends.byteOffset, count, this.out.byteOffset] as const);
     let start = 0;
     this.vectors = sizes.map((n, i) => {

@@ -40,6 +40,8 @@ const { workerData, parentPort } = require('node:worker_threads');
 const { module, memory, control, calls } = workerData;
 const kernel = new WebAssembly.Instance(module, { env: { memory } }).exports;
 const words = new Int32Array(memory.buffer, control, 4);
+// Written by this thread only: ms spent folding, and wake-ups to look for work.
+const counters = new Float64Array(memory.buffer, control + 16, 2);
 parentPort.postMessage('ready');
 let lastFold = Date.now();
 let gap = ${MIN_POLL_MS * 4};
@@ -48,6 +50,7 @@ for (;;) {
   while (s !== ${ASKED} && s !== ${QUIT}) {
     if (Date.now() - lastFold < Math.max(${MIN_ACTIVE_MS}, 10 * gap)) {
       Atomics.wait(words, ${STATE}, s, Math.min(${MAX_POLL_MS}, Math.max(${MIN_POLL_MS}, gap / 4)));
+      counters[1] += 1;
     } else {
       // Say so before the last look: a request stored after it sees SLEEPING and wakes us.
       Atomics.store(words, ${SLEEPING}, 1);
@@ -63,12 +66,14 @@ for (;;) {
   const t = Date.now();
   gap = 0.8 * gap + 0.2 * (t - lastFold);
   let end = ${DONE};
+  const started = performance.now();
   try {
     const c = calls[Atomics.load(words, ${SET})];
     kernel.fold4(c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7], c[8], Atomics.load(words, ${SIGN}) === 1 ? 1 : -1);
   } catch {
     end = ${FAILED};
   }
+  counters[0] += performance.now() - started;
   lastFold = Date.now();
   Atomics.store(words, ${STATE}, end);
   // On this thread's time: wakes the training thread if it waits for this fold.
@@ -85,11 +90,8 @@ export class FoldThread {
   private readonly words: Int32Array;
   private inFlight = false;
   private closed = false;
-  /**
-   * Folds run by the worker and, because it had not picked them up, on the calling thread; and how
-   * often, and how long in all (ms), the calling thread waited for the worker to finish one.
-   */
-  readonly folds = { thread: 0, here: 0, waits: 0, waitMs: 0 };
+  private readonly counters: Float64Array;
+  private readonly counts = { thread: 0, here: 0, waits: 0, waitMs: 0 };
   /** Resolves true once the worker waits for folds, false if it stopped or could not start. */
   readonly ready: Promise<boolean>;
 
@@ -97,6 +99,7 @@ export class FoldThread {
     this.fold = fold;
     this.worker = worker;
     this.words = fold.control;
+    this.counters = new Float64Array(fold.control.buffer, fold.control.byteOffset + 16, 2);
     this.ready = new Promise((resolve) => {
       worker.once('message', () => resolve(true));
       worker.once('error', () => resolve(false));
@@ -120,6 +123,7 @@ export class FoldThread {
     }
     Atomics.store(fold.control, STATE, IDLE);
     Atomics.store(fold.control, SLEEPING, 0);
+    new Float64Array(fold.control.buffer, fold.control.byteOffset + 16, 2).fill(0);
     let worker: Worker;
     try {
       worker = new WorkerClass(WORKER_SOURCE, {
@@ -136,12 +140,22 @@ export class FoldThread {
     return new FoldThread(fold, worker);
   }
 
+  /**
+   * Folds run by the worker and, because it had not picked them up, on the calling thread; how often, and
+   * how long in all (ms), the calling thread waited for the worker to finish one; the worker's time in
+   * folds (ms, on its own core) and its wake-ups to look for work. Counts of the worker are read as they
+   * stand (they may trail by a fold in flight).
+   */
+  get folds(): { thread: number; here: number; waits: number; waitMs: number; workerMs: number; wakeups: number } {
+    return { ...this.counts, workerMs: this.counters[0]!, wakeups: this.counters[1]! };
+  }
+
   /** Hands the fold of block set `set` to the worker. The sums must not be touched until {@link finish}. */
   request(set: number, sign: 1 | -1): void {
     if (this.inFlight) throw new Error('FoldThread.request: a fold is already in flight; call finish() first');
     if (this.closed) {
       this.fold.foldAll(sign, set);
-      this.folds.here++;
+      this.counts.here++;
       return;
     }
     const w = this.words;
@@ -166,7 +180,7 @@ export class FoldThread {
     const sign = Atomics.load(w, SIGN) === 1 ? 1 : -1;
     if (Atomics.compareExchange(w, STATE, ASKED, IDLE) === ASKED) {
       this.fold.foldAll(sign, set);
-      this.folds.here++;
+      this.counts.here++;
       return;
     }
     const start = performance.now();
@@ -174,10 +188,10 @@ export class FoldThread {
       const s = Atomics.load(w, STATE);
       if (s === DONE) {
         Atomics.store(w, STATE, IDLE);
-        this.folds.thread++;
+        this.counts.thread++;
         if (round > 0) {
-          this.folds.waits++;
-          this.folds.waitMs += performance.now() - start;
+          this.counts.waits++;
+          this.counts.waitMs += performance.now() - start;
         }
         return;
       }
