@@ -470,6 +470,10 @@ function tapBreakdown(x: tf.Tensor, y: tf.Tensor, s: Settings): [string, number]
       'pushBlock of 4, WebAssembly SIMD kernel, per step',
       timeMedian(() => fold.vectors.forEach((v, i) => blockSimd[i]!.pushBlock(v.slots)), reps) / 4,
     ]);
+    // What the accumulator runs (on its worker thread where there is one): one call for every variable.
+    const all = SimdFold.create(data.map((d) => d.length))!;
+    all.vectors.forEach((v, i) => v.slots.forEach((slot) => slot.set(data[i]!)));
+    out.push(['kernel foldAll of 4, one call for every variable, per step', timeMedian(() => all.foldAll(1), reps) / 4]);
   }
 
   const view = viewModel(ref.model);
@@ -909,8 +913,9 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     (results[0]?.breakdown ?? []).map(([name], i) => [name, ...results.map((b) => ms(b.breakdown[i]![1]))]),
     [
       'The JsAccumulator rows contain a read-back, the non-finite check and a quarter of a block fold (plus the',
-      '  per-layer bookkeeping). pushBlock of 4: one block of four minibatches folded, ÷ 4. The JsAccumulator',
-      '  folds with the SIMD kernel where it copies gradients anyway (wasm) and with the JavaScript loop on cpu.',
+      '  per-layer bookkeeping). pushBlock of 4: one block of four minibatches folded, ÷ 4, per variable; foldAll: the same',
+      '  for every variable in one kernel call. On cpu and wasm the JsAccumulator copies gradients into the kernel’s memory and',
+      '  hands each block to its worker thread (the JsAccumulator rows then hold the copy and the hand-over, not the fold).',
       'First step of a window: also reads every weight before and after the update (update ratio).',
     ],
   );
