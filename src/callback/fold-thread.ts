@@ -11,6 +11,7 @@
 import { createRequire } from 'node:module';
 import type { Worker } from 'node:worker_threads';
 import type { SimdFold } from '../analysis/simd-fold.js';
+import { TidemarkError } from '../errors.js';
 
 // The hand-over words (SimdFold.control): state, block set, sign, and whether the worker sleeps.
 const STATE = 0;
@@ -198,7 +199,10 @@ export class FoldThread {
       if (s === FAILED || performance.now() - start > CLAIMED_LIMIT_MS) {
         Atomics.store(w, STATE, IDLE);
         this.close();
-        throw new Error('the fold thread failed on a block (its statistics are lost); folds now run on the training thread');
+        throw new TidemarkError(
+          'TIDEMARK_ERR_STATISTIC',
+          `The fold thread ${s === FAILED ? 'failed on' : 'did not finish within 10 s'} a block of four minibatches: this window's gradient statistics may be wrong. Folds now run on the training thread; if this repeats, report it with your tfjs backend and Node version.`,
+        );
       }
       Atomics.wait(w, STATE, CLAIMED, 100);
     }

@@ -66,6 +66,23 @@ describe('FoldThread', () => {
     }).not.toThrow(); // closed: each request folds at once, none is in flight
   });
 
+  it('says, with a code, when the worker fails on a block, and folds on the calling thread from then on', async () => {
+    const shared = SimdFold.create(SIZES, { sets: 2, shared: true })!;
+    // Arguments that point past the end of the memory: the worker's kernel call traps.
+    const valid = shared.calls;
+    const calls = valid.map((c) => [...c.slice(0, 8), shared.memory.buffer.byteLength + 64] as const);
+    Object.defineProperty(shared, 'calls', { value: calls, configurable: true });
+    const thread = FoldThread.start(shared)!;
+    expect(await thread.ready).toBe(true);
+    thread.request(0, 1);
+    await until(() => Atomics.load(shared.control, 0) === 5);
+    expect(() => thread.finish()).toThrow(expect.objectContaining({ code: 'TIDEMARK_ERR_STATISTIC', message: expect.stringMatching(/failed on a block/) }));
+    Object.defineProperty(shared, 'calls', { value: valid });
+    thread.request(1, 1); // closed: runs here
+    thread.finish();
+    expect(thread.folds).toMatchObject({ thread: 0, here: 1 });
+  });
+
   it('refuses a second request while one is in flight', () => {
     const shared = SimdFold.create(SIZES, { sets: 2, shared: true })!;
     const thread = FoldThread.start(shared)!;
