@@ -19,6 +19,7 @@ import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { countNonFinite, ShiftedMoments } from '../src/analysis/moments.js';
 import { SimdFold } from '../src/analysis/simd-fold.js';
 import type { Accumulator } from '../src/callback/accumulator.js';
+import { FoldThread } from '../src/callback/fold-thread.js';
 import { JsAccumulator } from '../src/callback/js-accumulator.js';
 import { viewModel, type ModelView, type TrackedVariable } from '../src/callback/model-layers.js';
 import { monitor, type Monitor, type MonitorCallback } from '../src/callback/monitor.js';
@@ -191,8 +192,9 @@ function timeMethod(target: object, method: string, sink: number[]): void {
 // ---------------------------------------------------------------------------------------------
 // Table 1 and 2: training runs with and without the monitor
 
-type Variant = 'none' | 'auto' | 'tensor';
-const VARIANTS: readonly Variant[] = ['none', 'auto', 'tensor'];
+/** 'here': the defaults with the block fold on the training thread (no worker thread), for comparison. */
+type Variant = 'none' | 'auto' | 'here' | 'tensor';
+const VARIANTS: readonly Variant[] = ['none', 'auto', 'here', 'tensor'];
 
 interface HookTimes {
   /** onBatchEnd calls that closed no window. */
@@ -269,10 +271,18 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
   timeApplyGradients(ref.optimizer, inner);
   const fwdBwd: number[] = [];
   timeMethod(ref.optimizer, 'computeGradients', fwdBwd);
+  // 'here': no worker thread can start while this monitor is made (not an option: the bench swaps the starter).
+  const start = FoldThread.start;
+  if (variant === 'here') FoldThread.start = () => null;
   const mon =
     variant === 'none'
       ? null
-      : await monitor(ref.model, bareDefaults && variant === 'auto' ? { store: 'memory' } : { store: 'memory', window: 'auto', accumulator: variant });
+      : await monitor(
+          ref.model,
+          bareDefaults && variant === 'auto' ? { store: 'memory' } : { store: 'memory', window: 'auto', accumulator: variant === 'here' ? 'auto' : variant },
+        ).finally(() => {
+          FoldThread.start = start;
+        });
   timeApplyGradients(ref.optimizer, outer);
   // The first step of each window is 'sampled': the accumulator also reads the weights around it.
   const sampled = new Set<number>([0]);
@@ -760,7 +770,14 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       const pairedFit = b.runs.map((round) => round[vi]!.fitMsPerStep / round[0]!.fitMsPerStep);
       const pairedFwdBwd = b.runs.map((round) => median(round[vi]!.fwdBwdMs) / median(round[0]!.fwdBwdMs));
       const e2e = median(paired);
-      const label = v === 'none' ? 'no monitor' : v === 'auto' ? `monitor, defaults (${rs[0]!.accumulator})` : 'monitor, accumulator tensor';
+      const label =
+        v === 'none'
+          ? 'no monitor'
+          : v === 'auto'
+            ? `monitor, defaults (${rs[0]!.accumulator})`
+            : v === 'here'
+              ? `monitor, ${rs[0]!.accumulator}, fold on training thread`
+              : 'monitor, accumulator tensor';
       rows1.push([
         `${b.backend}  ${label}`,
         ms(step),
@@ -770,7 +787,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
         vi === 0 ? '1 (base)' : ratio(median(pairedFit)),
         ms(median(rs.map((r) => median(r.fwdBwdMs)))),
         vi === 0 ? '1 (base)' : `${ratio(median(pairedFwdBwd))} (${ratio(Math.min(...pairedFwdBwd))}–${ratio(Math.max(...pairedFwdBwd))})`,
-        v === 'auto' ? mark(e2e - 1) : v === 'tensor' ? `(${mark(e2e - 1).toLowerCase()})` : '',
+        v === 'auto' ? mark(e2e - 1) : v === 'none' ? '' : `(${mark(e2e - 1).toLowerCase()})`,
       ]);
       if (v === 'auto') {
         summaries.push({
@@ -822,12 +839,14 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     const control = b.runs.flatMap((round) => round[0]!.tapMs);
     for (const [vi, kind] of [
       [1, 'auto'],
-      [2, 'tensor'],
+      [2, 'here'],
+      [3, 'tensor'],
     ] as const) {
       const rs = b.runs.map((round) => round[vi]!);
+      const label = kind === 'auto' ? ' (default)' : kind === 'here' ? ', fold here' : '';
       const tap = rs.flatMap((r) => r.tapMs);
       const tapMean = mean(tap);
-      const iso = b.isolated[kind];
+      const iso = b.isolated[kind === 'here' ? 'auto' : kind];
       const frac = tapMean / sum.baseStep;
       const tapTarget = TAP_TARGET[b.backend] ?? TARGET;
       if (kind === 'auto') {
@@ -835,12 +854,12 @@ function report(results: BackendResult[], s: Settings): Summary[] {
         sum.tapMedianPct = median(tap) / sum.baseStep;
       }
       rows2.push([
-        `${b.backend}  ${rs[0]!.accumulator}${kind === 'auto' ? ' (default)' : ''}`,
+        `${b.backend}  ${rs[0]!.accumulator}${label}`,
         ms(median(rs.flatMap((r) => r.tapPlainMs))),
         ms(median(rs.flatMap((r) => r.tapSampledMs))),
         ms(tapMean),
         ms(quantile(tap, 0.99)),
-        ms(median(iso.tapDiff)),
+        kind === 'here' ? '—' : ms(median(iso.tapDiff)),
         ms(median(control), 4),
         pct(median(tap) / sum.baseStep),
         pct(frac),
@@ -855,11 +874,11 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       const hookMs = rs.reduce((a, r) => a + sum0(r.hooks.batchEnd) + sum0(r.hooks.close) + r.hooks.otherMs, 0);
       const allWork = tapMean + hookMs / steps;
       rows2b.push([
-        `${b.backend}  ${rs[0]!.accumulator}`,
+        `${b.backend}  ${rs[0]!.accumulator}${label}`,
         ms(median(batchEnd)),
         ms(median(closes)),
         ms(Math.max(...closes)),
-        ms(median(iso.accClose)),
+        kind === 'here' ? '—' : ms(median(iso.accClose)),
         `${(lengths.length / rs.length).toFixed(1)} × ${mean(lengths).toFixed(1)}`,
         ms(allWork),
         pct(allWork / sum.baseStep),
@@ -887,6 +906,8 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       '  weights before and after the update (for the update ratio); all: every step (first steps dropped per run).',
       'isolated: same gradients applied again and again, tapped − untapped call, paired and alternated, median.',
       'control: the same two timers with no monitor installed (the measurement floor).',
+      'fold here: the defaults with the block fold on the training thread (no worker thread), interleaved with the others in',
+      '  every round: the side-by-side measure of what the worker thread saves.',
       '% step: in-fit median or mean over all steps / median unmonitored step of Table 1; the mark uses the mean.',
       `tap target: the tap alone, ≤${TAP_TARGET.cpu! * 100} % of a step on cpu and ≤${TAP_TARGET.wasm! * 100} % on wasm.`,
     ],

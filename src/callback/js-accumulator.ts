@@ -101,8 +101,9 @@ export class JsAccumulator implements Accumulator {
     const sizes = view.variables.map((v) => v.size);
     const useKernel = options.kernel !== false && foldsInKernel() && BLOCK === 4;
     const shared = useKernel && options.thread !== false ? SimdFold.create(sizes, { sets: 2, shared: true }) : null;
-    const fold = shared ?? (useKernel ? SimdFold.create(sizes) : null);
     this.thread = shared === null ? null : FoldThread.start(shared);
+    // Without a thread, plain memory: copies into shared memory run at about half the speed.
+    const fold = this.thread !== null ? shared : useKernel ? SimdFold.create(sizes) : null;
     this.folding = fold === null ? 'js' : this.thread !== null ? 'simd-thread' : 'simd';
     this.simd = fold;
     const sets = fold?.calls.length ?? 1;
