@@ -19,7 +19,6 @@ import { setWasmPaths } from '@tensorflow/tfjs-backend-wasm';
 import { countNonFinite, ShiftedMoments } from '../src/analysis/moments.js';
 import { SimdFold } from '../src/analysis/simd-fold.js';
 import type { Accumulator } from '../src/callback/accumulator.js';
-import { FoldThread } from '../src/callback/fold-thread.js';
 import { JsAccumulator } from '../src/callback/js-accumulator.js';
 import { viewModel, type ModelView, type TrackedVariable } from '../src/callback/model-layers.js';
 import { monitor, type Monitor, type MonitorCallback } from '../src/callback/monitor.js';
@@ -192,9 +191,8 @@ function timeMethod(target: object, method: string, sink: number[]): void {
 // ---------------------------------------------------------------------------------------------
 // Table 1 and 2: training runs with and without the monitor
 
-/** 'here': the defaults with the block fold on the training thread (no worker thread), for comparison. */
-type Variant = 'none' | 'auto' | 'here' | 'tensor';
-const VARIANTS: readonly Variant[] = ['none', 'auto', 'here', 'tensor'];
+type Variant = 'none' | 'auto' | 'tensor';
+const VARIANTS: readonly Variant[] = ['none', 'auto', 'tensor'];
 
 interface HookTimes {
   /** onBatchEnd calls that closed no window. */
@@ -227,10 +225,6 @@ interface RunResult {
   fitMs: number;
   /** Noise measurements (mon.noiseCost()) and, per measurement, its own ms (null without a monitor). */
   noise: { calls: number; ms: number; each: number[] } | null;
-  /** Process CPU time (user + system, every thread) during fit, ms. */
-  cpuMs: number;
-  /** Blocks folded by the accumulator's worker thread and on the training thread (null without one). */
-  folds: { thread: number; here: number; waits: number; waitMs: number; workerMs: number; wakeups: number } | null;
 }
 
 /** Wraps the monitor's hooks with timers; `after` runs after each timed call, outside the timing. */
@@ -271,18 +265,10 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
   timeApplyGradients(ref.optimizer, inner);
   const fwdBwd: number[] = [];
   timeMethod(ref.optimizer, 'computeGradients', fwdBwd);
-  // 'here': no worker thread can start while this monitor is made (not an option: the bench swaps the starter).
-  const start = FoldThread.start;
-  if (variant === 'here') FoldThread.start = () => null;
   const mon =
     variant === 'none'
       ? null
-      : await monitor(
-          ref.model,
-          bareDefaults && variant === 'auto' ? { store: 'memory' } : { store: 'memory', window: 'auto', accumulator: variant === 'here' ? 'auto' : variant },
-        ).finally(() => {
-          FoldThread.start = start;
-        });
+      : await monitor(ref.model, bareDefaults && variant === 'auto' ? { store: 'memory' } : { store: 'memory', window: 'auto', accumulator: variant });
   timeApplyGradients(ref.optimizer, outer);
   // The first step of each window is 'sampled': the accumulator also reads the weights around it.
   const sampled = new Set<number>([0]);
@@ -316,12 +302,8 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
   };
   const callbacks: MonitorCallback[] = mon === null ? [clock] : [timedHooks(mon, hooks, afterHook), clock];
   const t0 = now();
-  const cpu0 = process.cpuUsage();
   await ref.model.fit(x, y, { batchSize: BATCH, epochs, verbose: 0, callbacks });
-  const cpu = process.cpuUsage(cpu0);
   const fitMs = now() - t0;
-  // Not public API: the bench reads the fold thread's counts from the session's accumulator.
-  const thread = (mon as unknown as { acc?: { thread?: { folds: RunResult['folds'] } | null } } | null)?.acc?.thread ?? null;
   const steps = stepMs.length;
   const tap = outer.map((t, i) => t - inner[i]!);
   const kept = (keep: (i: number) => boolean): number[] => tap.filter((_, i) => i >= skip && keep(i));
@@ -340,8 +322,6 @@ async function trainRun(variant: Variant, x: tf.Tensor, y: tf.Tensor, epochs: nu
     warnings: mon === null ? 0 : mon.warnings().length,
     fitMs,
     noise: mon === null ? null : { ...(mon.noiseCost() ?? { calls: 0, ms: 0 }), each: noiseEach },
-    cpuMs: (cpu.user + cpu.system) / 1000,
-    folds: thread === null ? null : { ...thread.folds! },
   };
   await mon?.close();
   disposeModel(ref);
@@ -480,7 +460,7 @@ function tapBreakdown(x: tf.Tensor, y: tf.Tensor, s: Settings): [string, number]
       'pushBlock of 4, WebAssembly SIMD kernel, per step',
       timeMedian(() => fold.vectors.forEach((v, i) => blockSimd[i]!.pushBlock(v.slots)), reps) / 4,
     ]);
-    // What the accumulator runs (on its worker thread where there is one): one call for every variable.
+    // What the accumulator runs: one call for every variable.
     const all = SimdFold.create(data.map((d) => d.length))!;
     all.vectors.forEach((v, i) => v.slots.forEach((slot) => slot.set(data[i]!)));
     out.push(['kernel foldAll of 4, one call for every variable, per step', timeMedian(() => all.foldAll(1), reps) / 4]);
@@ -770,14 +750,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       const pairedFit = b.runs.map((round) => round[vi]!.fitMsPerStep / round[0]!.fitMsPerStep);
       const pairedFwdBwd = b.runs.map((round) => median(round[vi]!.fwdBwdMs) / median(round[0]!.fwdBwdMs));
       const e2e = median(paired);
-      const label =
-        v === 'none'
-          ? 'no monitor'
-          : v === 'auto'
-            ? `monitor, defaults (${rs[0]!.accumulator})`
-            : v === 'here'
-              ? `monitor, ${rs[0]!.accumulator}, fold on training thread`
-              : 'monitor, accumulator tensor';
+      const label = v === 'none' ? 'no monitor' : v === 'auto' ? `monitor, defaults (${rs[0]!.accumulator})` : 'monitor, accumulator tensor';
       rows1.push([
         `${b.backend}  ${label}`,
         ms(step),
@@ -839,14 +812,13 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     const control = b.runs.flatMap((round) => round[0]!.tapMs);
     for (const [vi, kind] of [
       [1, 'auto'],
-      [2, 'here'],
-      [3, 'tensor'],
+      [2, 'tensor'],
     ] as const) {
       const rs = b.runs.map((round) => round[vi]!);
-      const label = kind === 'auto' ? ' (default)' : kind === 'here' ? ', fold here' : '';
+      const label = kind === 'auto' ? ' (default)' : '';
       const tap = rs.flatMap((r) => r.tapMs);
       const tapMean = mean(tap);
-      const iso = b.isolated[kind === 'here' ? 'auto' : kind];
+      const iso = b.isolated[kind];
       const frac = tapMean / sum.baseStep;
       const tapTarget = TAP_TARGET[b.backend] ?? TARGET;
       if (kind === 'auto') {
@@ -859,7 +831,7 @@ function report(results: BackendResult[], s: Settings): Summary[] {
         ms(median(rs.flatMap((r) => r.tapSampledMs))),
         ms(tapMean),
         ms(quantile(tap, 0.99)),
-        kind === 'here' ? '—' : ms(median(iso.tapDiff)),
+        ms(median(iso.tapDiff)),
         ms(median(control), 4),
         pct(median(tap) / sum.baseStep),
         pct(frac),
@@ -874,11 +846,11 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       const hookMs = rs.reduce((a, r) => a + sum0(r.hooks.batchEnd) + sum0(r.hooks.close) + r.hooks.otherMs, 0);
       const allWork = tapMean + hookMs / steps;
       rows2b.push([
-        `${b.backend}  ${rs[0]!.accumulator}${label}`,
+        `${b.backend}  ${rs[0]!.accumulator}`,
         ms(median(batchEnd)),
         ms(median(closes)),
         ms(Math.max(...closes)),
-        kind === 'here' ? '—' : ms(median(iso.accClose)),
+        ms(median(iso.accClose)),
         `${(lengths.length / rs.length).toFixed(1)} × ${mean(lengths).toFixed(1)}`,
         ms(allWork),
         pct(allWork / sum.baseStep),
@@ -906,8 +878,6 @@ function report(results: BackendResult[], s: Settings): Summary[] {
       '  weights before and after the update (for the update ratio); all: every step (first steps dropped per run).',
       'isolated: same gradients applied again and again, tapped − untapped call, paired and alternated, median.',
       'control: the same two timers with no monitor installed (the measurement floor).',
-      'fold here: the defaults with the block fold on the training thread (no worker thread), interleaved with the others in',
-      '  every round: the side-by-side measure of what the worker thread saves.',
       '% step: in-fit median or mean over all steps / median unmonitored step of Table 1; the mark uses the mean.',
       `tap target: the tap alone, ≤${TAP_TARGET.cpu! * 100} % of a step on cpu and ≤${TAP_TARGET.wasm! * 100} % on wasm.`,
     ],
@@ -935,8 +905,8 @@ function report(results: BackendResult[], s: Settings): Summary[] {
     [
       'The JsAccumulator rows contain a read-back, the non-finite check and a quarter of a block fold (plus the',
       '  per-layer bookkeeping). pushBlock of 4: one block of four minibatches folded, ÷ 4, per variable; foldAll: the same',
-      '  for every variable in one kernel call. On cpu and wasm the JsAccumulator copies gradients into the kernel’s memory and',
-      '  hands each block to its worker thread (the JsAccumulator rows then hold the copy and the hand-over, not the fold).',
+      '  for every variable in one kernel call, which is what the JsAccumulator runs on cpu and wasm (it copies the gradients',
+      '  into the kernel’s memory).',
       'First step of a window: also reads every weight before and after the update (update ratio).',
     ],
   );
@@ -1077,12 +1047,6 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
       seconds(none.fitMs),
       ratio(r.fitMs / none.fitMs),
       ratio(control),
-      r.folds === null ? '—' : `${r.folds.thread} / ${r.folds.here}`,
-      r.folds === null ? '—' : `${r.folds.waits}, ${ms(r.folds.waitMs, 2)} ms`,
-      r.folds === null ? '—' : `${ms(r.folds.workerMs, 1)} ms  ${share(r.folds.workerMs)}`,
-      r.folds === null ? '—' : `${r.folds.wakeups} (${(r.folds.wakeups / (r.fitMs / 1000)).toFixed(0)}/s)`,
-      `${seconds(r.cpuMs)} / ${seconds(none.cpuMs)}`,
-      pct((r.cpuMs - none.cpuMs) / none.cpuMs),
     ];
   });
   const labels = [
@@ -1107,12 +1071,6 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
     'unmonitored run, same length: fit wall time',
     'end to end: fit monitored / unmonitored (noisy)',
     'fwd+bwd ratio, same pair (machine drift)',
-    'blocks folded on the worker thread / on the training thread',
-    '  the training thread waited for the worker: times, Σ',
-    '  the worker’s time in folds (on the other core)',
-    '  the worker’s wake-ups to look for work',
-    'process CPU time during fit (all threads): monitored / unmonitored',
-    '  extra CPU time, ÷ unmonitored (noisy)',
   ];
   printTable(
     `Table 5. Whole cost over a long run: reference model, ${s.longEpochs} epochs (${s.longEpochs * STEPS_PER_EPOCH} steps), monitor at default settings`,
@@ -1128,11 +1086,6 @@ function longRunTable(results: BackendResult[], s: Settings, summaries: Summary[
       '  set-up); "less the first" shows how the rest amortises. mon.close() is not counted.',
       'unmonitored run: one fit of the same length just before, with no monitor: its ratio holds the machine’s drift',
       '  (several % on this shared machine; see the fwd+bwd ratio) and is not checked against the target.',
-      'Blocks folded: on cpu and wasm in Node the accumulator folds each block of four minibatches on a worker thread, off the',
-      '  training thread (a fold not yet picked up when needed runs on the training thread). Its time is not in Σ tap; the worker’s',
-      '  own rows show it (timed by the worker around each fold), and its wake-ups while it looks for work (each a few µs).',
-      '  The process CPU rows count every thread (the worker, garbage collection, compilation) over two separate runs: the',
-      '  machine’s drift between them (the fwd+bwd ratio) moves them by as much, so they bound nothing; read the worker rows.',
     ],
   );
 }

@@ -3,15 +3,14 @@
  * (ShiftedMoments.pushBlock for blocks of four) with f64x2 lanes and no bounds checks, for every vector
  * in one call. The vectors to fold must already sit in the kernel's memory, so an arena hands out every
  * buffer at once, in a memory sized for them from the start. The vectors lie end to end, each padded
- * with zeros to a multiple of four coordinates: one or two sets of four float32 block regions, the
- * float64 reference and sums, the kernel's segment table, its per-vector results and 32 bytes for a
- * second thread's hand-over. Padding coordinates stay zero and add nothing. With `shared`, the
- * memory is shared, so that a worker thread can run the same kernel on it (callback/fold-thread.ts).
- * Without WebAssembly SIMD (an old runtime) `SimdFold.create` returns null and the JavaScript loop runs.
+ * with zeros to a multiple of four coordinates: four float32 block regions, the float64 reference and
+ * sums, the kernel's segment table and its per-vector results. Padding coordinates stay zero and add
+ * nothing. Without WebAssembly SIMD (an old runtime) `SimdFold.create` returns null and the JavaScript
+ * loop runs.
  */
-import { SIMD_FOLD_BASE64, SIMD_FOLD_SHARED_BASE64 } from './simd-fold-bytes.js';
+import { SIMD_FOLD_BASE64 } from './simd-fold-bytes.js';
 
-export interface FoldExports {
+interface FoldExports {
   fold4(a: number, b: number, c: number, e: number, ref: number, s1: number, ends: number, count: number, out: number, sign: number): void;
 }
 
@@ -19,71 +18,50 @@ type Four = readonly [Float32Array, Float32Array, Float32Array, Float32Array];
 
 /** Storage of one vector's statistics and its four block slots, all views of the kernel's memory. */
 export interface FoldSlots {
-  /** The four block slots of set 0. */
   readonly slots: Four;
-  /** The block slots of every set (one or two). */
-  readonly sets: readonly Four[];
   readonly ref: Float64Array;
   readonly s1: Float64Array;
 }
 
-/** The arguments of the kernel's fold4 for every vector of one block set, sign last. */
-export type FoldCall = readonly [a: number, b: number, c: number, e: number, ref: number, s1: number, ends: number, count: number, out: number];
-
-export interface SimdFoldOptions {
-  /** Block sets: 2 lets one set fill while the other is folded (default 1). */
-  sets?: 1 | 2;
-  /** A shared memory, for a worker thread (default false). Null from create where it is not available. */
-  shared?: boolean;
-}
-
 const PAGE = 65_536;
 
-const compiled = new Map<boolean, WebAssembly.Module | null>();
+let compiled: WebAssembly.Module | null | undefined;
 
-function kernelModule(shared: boolean): WebAssembly.Module | null {
-  const known = compiled.get(shared);
-  if (known !== undefined) return known;
-  let mod: WebAssembly.Module | null = null;
+function kernelModule(): WebAssembly.Module | null {
+  if (compiled !== undefined) return compiled;
+  compiled = null;
   try {
-    const bytes = Uint8Array.from(atob(shared ? SIMD_FOLD_SHARED_BASE64 : SIMD_FOLD_BASE64), (ch) => ch.charCodeAt(0));
-    if (typeof WebAssembly === 'object' && WebAssembly.validate(bytes)) mod = new WebAssembly.Module(bytes);
+    const bytes = Uint8Array.from(atob(SIMD_FOLD_BASE64), (ch) => ch.charCodeAt(0));
+    if (typeof WebAssembly === 'object' && WebAssembly.validate(bytes)) compiled = new WebAssembly.Module(bytes);
   } catch {
-    mod = null;
+    compiled = null;
   }
-  compiled.set(shared, mod);
-  return mod;
+  return compiled;
 }
 
 /** Four float32 coordinates are 16 bytes, the width of a SIMD load: every vector starts aligned. */
 const pad4 = (n: number): number => Math.ceil(n / 4) * 4;
 
 export class SimdFold {
-  /** The compiled kernel and the memory it folds in, for a second thread to instantiate on. */
-  readonly module: WebAssembly.Module;
-  readonly memory: WebAssembly.Memory;
   private readonly kernel: FoldExports;
-  private readonly buffer: ArrayBufferLike;
+  private readonly buffer: ArrayBuffer;
   readonly vectors: readonly FoldSlots[];
-  /** Four int32 words for handing a fold to a second thread, then room for its two float64 counters (callback/fold-thread.ts). */
-  readonly control: Int32Array;
-  /** The kernel's arguments for every vector of each block set. */
-  readonly calls: readonly FoldCall[];
+  /** The kernel's arguments for every vector at once, sign left out. */
+  private readonly all: readonly [number, number, number, number, number, number, number, number, number];
   /** Segment ends of every vector, then one spare entry for a single vector's fold. */
   private readonly ends: Int32Array;
   /** Per vector Σ (v_k − ref)² and Σ (v_{k+1} − v_k)², then a spare pair for a single vector's fold. */
   private readonly out: Float64Array;
 
-  private constructor(module: WebAssembly.Module, sizes: readonly number[], sets: number, shared: boolean) {
-    this.module = module;
+  private constructor(module: WebAssembly.Module, sizes: readonly number[]) {
     const padded = sizes.map(pad4);
     const total = padded.reduce((a, b) => a + b, 0);
     const count = sizes.length;
-    const bytes = sets * 4 * (4 * total) + 2 * (8 * total) + 4 * pad4(count + 1) + 8 * (2 * count + 2) + 32;
+    const bytes = 4 * (4 * total) + 2 * (8 * total) + 4 * pad4(count + 1) + 8 * (2 * count + 2);
     const pages = Math.max(1, Math.ceil(bytes / PAGE));
-    this.memory = new WebAssembly.Memory({ initial: pages, maximum: pages, shared });
-    this.kernel = new WebAssembly.Instance(module, { env: { memory: this.memory } }).exports as unknown as FoldExports;
-    const buffer = this.memory.buffer;
+    const memory = new WebAssembly.Memory({ initial: pages, maximum: pages });
+    this.kernel = new WebAssembly.Instance(module, { env: { memory } }).exports as unknown as FoldExports;
+    const buffer = memory.buffer;
     this.buffer = buffer;
     let at = 0;
     const region = <T>(make: (offset: number) => T, byteLength: number): T => {
@@ -91,40 +69,33 @@ export class SimdFold {
       at += byteLength;
       return view;
     };
-    const setRegions = Array.from({ length: sets }, () => [0, 1, 2, 3].map(() => region((o) => new Float32Array(buffer, o, total), 4 * total)) as unknown as Four);
+    const slotRegions = [0, 1, 2, 3].map(() => region((o) => new Float32Array(buffer, o, total), 4 * total)) as unknown as Four;
     const ref = region((o) => new Float64Array(buffer, o, total), 8 * total);
     const s1 = region((o) => new Float64Array(buffer, o, total), 8 * total);
     this.ends = region((o) => new Int32Array(buffer, o, count + 1), 4 * pad4(count + 1));
     this.out = region((o) => new Float64Array(buffer, o, 2 * count + 2), 8 * (2 * count + 2));
-    this.control = region((o) => new Int32Array(buffer, o, 8), 32);
-    this.calls = setRegions.map(([a, b, c, e]) => [a.byteOffset, b.byteOffset, c.byteOffset, e.byteOffset, ref.byteOffset, s1.byteOffset, this.ends.byteOffset, count, this.out.byteOffset] as const);
+    const [a, b, c, e] = slotRegions;
+    this.all = [a.byteOffset, b.byteOffset, c.byteOffset, e.byteOffset, ref.byteOffset, s1.byteOffset, this.ends.byteOffset, count, this.out.byteOffset];
     let start = 0;
     this.vectors = sizes.map((n, i) => {
       const at0 = start;
       start += padded[i]!;
       this.ends[i] = start;
-      const setsOf = setRegions.map((r) => r.map((x) => x.subarray(at0, at0 + n)) as unknown as Four);
-      return { slots: setsOf[0]!, sets: setsOf, ref: ref.subarray(at0, at0 + n), s1: s1.subarray(at0, at0 + n) };
+      const slots = slotRegions.map((r) => r.subarray(at0, at0 + n)) as unknown as Four;
+      return { slots, ref: ref.subarray(at0, at0 + n), s1: s1.subarray(at0, at0 + n) };
     });
   }
 
-  /**
-   * An arena for vectors of these sizes, or null where WebAssembly SIMD (or, with `shared`, a shared
-   * WebAssembly memory) is not available.
-   */
-  static create(sizes: readonly number[], options: SimdFoldOptions = {}): SimdFold | null {
+  /** An arena for vectors of these sizes, or null where WebAssembly SIMD is not available. */
+  static create(sizes: readonly number[]): SimdFold | null {
     for (const n of sizes) if (!Number.isInteger(n) || n < 0) throw new RangeError(`sizes must be non-negative integers, got ${n}`);
-    const sets = options.sets ?? 1;
-    if (sets !== 1 && sets !== 2) throw new RangeError(`sets must be 1 or 2, got ${String(sets)}`);
-    const shared = options.shared ?? false;
-    if (shared && typeof SharedArrayBuffer !== 'function') return null;
-    const mod = kernelModule(shared);
+    const mod = kernelModule();
     if (mod === null) return null;
     try {
-      return new SimdFold(mod, sizes, sets, shared);
+      return new SimdFold(mod, sizes);
     } catch (e) {
-      // A runtime that compiles the module but cannot make a shared memory.
-      if (shared) return null;
+      // Over 4 GiB, or no memory to be had: the JavaScript loop folds in ordinary arrays.
+      if (e instanceof RangeError) return null;
       throw e;
     }
   }
@@ -157,17 +128,16 @@ export class SimdFold {
   }
 
   /**
-   * The kernel's fold of every vector's four slots of block set `set` at once. Returns its results, valid
-   * until the next fold: for vector i, Σ (v_k − ref)² at 2i and Σ (v_{k+1} − v_k)² at 2i + 1, as in
-   * {@link fold4}.
+   * The kernel's fold of every vector's four slots at once. Returns its results, valid until the next
+   * fold: for vector i, Σ (v_k − ref)² at 2i and Σ (v_{k+1} − v_k)² at 2i + 1, as in {@link fold4}.
    */
-  foldAll(sign: 1 | -1, set = 0): Float64Array {
-    const c = this.calls[set]!;
+  foldAll(sign: 1 | -1): Float64Array {
+    const c = this.all;
     this.kernel.fold4(c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7], c[8], sign);
     return this.out;
   }
 
-  /** The results of the last fold of every vector (of {@link foldAll}, whichever thread ran it). */
+  /** The results of the last {@link foldAll}. */
   get results(): Float64Array {
     return this.out;
   }

@@ -15,8 +15,7 @@
 ;; sums are identical; the two sums of squares add the two lanes' partial sums at the end (a
 ;; different order).
 ;;
-;; The memory is the caller's. The build also makes a variant of this module whose memory is shared
-;; (the line below with "shared" added), so that a second thread can fold in the same memory.
+;; The memory is the caller's, made to the arena's size (SimdFold).
 (module
   (import "env" "memory" (memory 1 65536))
   (func (export "fold4") (param $a i32) (param $b i32) (param $c i32) (param $e i32)

@@ -6,7 +6,6 @@
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
 import { SimdFold } from '../analysis/simd-fold.js';
 import { BLOCK, type Accumulator, type RawVariableWindow } from './accumulator.js';
-import { FoldThread } from './fold-thread.js';
 import type { ModelView } from './model-layers.js';
 import { benefitsFromBuffers, foldsInKernel, readValues, wasmHeap } from './host-read.js';
 import type { GradientPair } from './optimizer-tap.js';
@@ -47,39 +46,28 @@ function diffAndSumSq(a: Values, b: Values, out: Float64Array): void {
 export interface JsAccumulatorOptions {
   /** Fold blocks with the WebAssembly SIMD kernel on the backends where it pays (default true; false: the JavaScript loop). */
   kernel?: boolean;
-  /** Fold blocks on a worker thread where the kernel runs (default true; see fold-thread.ts). */
-  thread?: boolean;
 }
 
 type Steps = (Values | null)[][];
 
 export class JsAccumulator implements Accumulator {
   readonly kind = 'js' as const;
-  /**
-   * 'simd-thread' where blocks are folded by the WebAssembly kernel in its own memory on a worker thread
-   * (cpu and wasm backends in Node), 'simd' where the kernel runs on the training thread, else 'js'.
-   */
-  readonly folding: 'simd-thread' | 'simd' | 'js';
+  /** 'simd' where blocks are folded by the WebAssembly kernel in its own memory (cpu and wasm backends), else 'js'. */
+  readonly folding: 'simd' | 'js';
   private readonly view: ModelView;
   private readonly moments: ShiftedMoments[];
   private readonly initial: Float32Array[];
   private readonly nonfinite: Float64Array;
-  /** The kernel's arena, where blocks are folded in one call for every variable (wasm), or null. */
+  /** The kernel's arena, where blocks are folded in one call for every variable, or null. */
   private readonly simd: SimdFold | null;
-  /** The worker thread that folds blocks, where there is one (its `folds` and `ready` are for tests and benches). */
-  readonly thread: FoldThread | null;
-  /** The block set being filled: with a thread, one set fills while the other is folded. */
-  private set = 0;
-  /** The set whose fold is in flight on the thread, and its steps, until its results are recorded. */
-  private inFlight: { set: number; steps: Steps } | null = null;
-  /** Per block set, gradients read but not yet folded in: the first `queued` entries, one per step, indexed by variable. */
-  private readonly block: Steps[];
+  /** Gradients read but not yet folded in: the first `queued` entries, one per step, indexed by variable. */
+  private readonly block: Steps;
   private queued = 0;
   /** The variable of each position in the last step's gradient list: the list comes in the same order every step. */
   private readonly positions: { name: string; index: number }[] = [];
   private readonly beforeWeights: (Values | null)[];
-  /** Per block set, block slot and variable, reusable copies of gradients (wasm), or null where reads are free. */
-  private readonly buffers: (Float32Array[] | null)[][];
+  /** Per block slot and variable, reusable copies of gradients (the kernel's slots, or plain arrays on wasm), or null. */
+  private readonly buffers: (Float32Array[] | null)[];
   /** Reusable copies of the weights before and after a sampled step, and at a window's end (wasm). */
   private readonly weightBuffers: { before: Float32Array[]; after: Float32Array[] } | null;
   /** Reads go straight to the wasm heap (the wasm backend). */
@@ -96,18 +84,13 @@ export class JsAccumulator implements Accumulator {
     const n = view.variables.length;
     const useBuffers = benefitsFromBuffers();
     this.wasmReads = useBuffers;
-    // Copy gradients into the SIMD kernel's memory and fold them there (on wasm they are copied anyway, on
-    // cpu the copy costs less than the JavaScript fold saves), on a worker thread where the runtime has them.
-    const sizes = view.variables.map((v) => v.size);
+    // Copy gradients into the SIMD kernel's memory and fold them there: on wasm they are copied anyway, on
+    // cpu the copy costs less than the JavaScript fold saves.
     const useKernel = options.kernel !== false && foldsInKernel() && BLOCK === 4;
-    const shared = useKernel && options.thread !== false ? SimdFold.create(sizes, { sets: 2, shared: true }) : null;
-    this.thread = shared === null ? null : FoldThread.start(shared);
-    // Without a thread, plain memory: copies into shared memory run at about half the speed.
-    const fold = this.thread !== null ? shared : useKernel ? SimdFold.create(sizes) : null;
-    this.folding = fold === null ? 'js' : this.thread !== null ? 'simd-thread' : 'simd';
+    const fold = useKernel ? SimdFold.create(view.variables.map((v) => v.size)) : null;
+    this.folding = fold === null ? 'js' : 'simd';
     this.simd = fold;
-    const sets = fold?.calls.length ?? 1;
-    this.block = Array.from({ length: sets }, () => Array.from({ length: BLOCK }, () => new Array<Values | null>(n).fill(null)));
+    this.block = Array.from({ length: BLOCK }, () => new Array<Values | null>(n).fill(null));
     this.moments = view.variables.map((v, i) =>
       fold === null ? new ShiftedMoments(v.size) : new ShiftedMoments(v.size, { ...fold.vectors[i]!, fold }),
     );
@@ -115,10 +98,8 @@ export class JsAccumulator implements Accumulator {
     this.initial = view.variables.map((v) => Float32Array.from(v.variable.dataSync() as Float32Array));
     this.nonfinite = new Float64Array(n);
     this.beforeWeights = new Array<Values | null>(n).fill(null);
-    this.buffers = Array.from({ length: sets }, (_, set) =>
-      Array.from({ length: BLOCK }, (_, k) =>
-        fold !== null ? fold.vectors.map((f) => f.sets[set]![k]!) : useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
-      ),
+    this.buffers = Array.from({ length: BLOCK }, (_, k) =>
+      fold !== null ? fold.vectors.map((f) => f.slots[k]!) : useBuffers ? view.variables.map((v) => new Float32Array(v.size)) : null,
     );
     this.weightBuffers = useBuffers
       ? { before: view.variables.map((v) => new Float32Array(v.size)), after: view.variables.map((v) => new Float32Array(v.size)) }
@@ -135,9 +116,9 @@ export class JsAccumulator implements Accumulator {
   before(grads: readonly GradientPair[], sample: boolean): void {
     // Values are copied into the kernel's slots; without them, holding dataSync's arrays until the block is
     // folded is safe: tensors never change, and cpu hands out its (never reused) buffer, the others a copy.
-    const step = this.block[this.set]![this.queued]!;
+    const step = this.block[this.queued]!;
     step.fill(null);
-    const slot = this.buffers[this.set]![this.queued] ?? null;
+    const slot = this.buffers[this.queued] ?? null;
     const wasm = slot === null || !this.wasmReads ? null : wasmHeap();
     for (let p = 0; p < grads.length; p++) {
       const [name, tensor] = grads[p]!;
@@ -164,28 +145,17 @@ export class JsAccumulator implements Accumulator {
     return index;
   }
 
-  /**
-   * Folds the pending steps into the sums (with a thread, hands a full block over and records the one
-   * before it). A layer's variables enter together or not at all.
-   */
+  /** Folds the pending steps into the sums. A layer's variables enter together or not at all. */
   private fold(): void {
-    this.settle();
     const count = this.queued;
     if (count === 0) return;
     this.queued = 0;
-    const set = this.set;
-    const steps = this.block[set]!.slice(0, count);
+    const steps = this.block.slice(0, count);
     const fold = this.simd;
-    if (count === BLOCK && fold !== null && this.inSlots(set)) {
-      for (let i = 0; i < fold.vectors.length; i++) this.moments[i]!.adoptReference(fold.vectors[i]!.sets[set]![0]);
-      if (this.thread !== null) {
-        this.thread.request(set, 1);
-        this.inFlight = { set, steps };
-        this.set = (set + 1) % this.block.length;
-        return;
-      }
-      fold.foldAll(1, set);
-      this.record(fold, set, steps);
+    if (count === BLOCK && fold !== null && this.inSlots()) {
+      for (let i = 0; i < fold.vectors.length; i++) this.moments[i]!.adoptReference(fold.vectors[i]!.slots[0]);
+      fold.foldAll(1);
+      this.record(fold, steps);
       return;
     }
     for (const layer of this.view.layers) {
@@ -206,30 +176,18 @@ export class JsAccumulator implements Accumulator {
     }
   }
 
-  /** Waits for the fold in flight on the thread, if any, and records it: afterwards the sums are ours. */
-  private settle(): void {
-    const flight = this.inFlight;
-    if (flight === null) return;
-    this.inFlight = null;
-    this.thread!.finish();
-    this.record(this.simd!, flight.set, flight.steps);
-  }
-
-  /** True when every variable of the block's every step was copied into its kernel slot of block set `set`. */
-  private inSlots(set: number): boolean {
+  /** True when every variable of the block's every step was copied into its kernel slot. */
+  private inSlots(): boolean {
     for (let k = 0; k < BLOCK; k++) {
-      const step = this.block[set]![k]!;
-      const slot = this.buffers[set]![k]!;
+      const step = this.block[k]!;
+      const slot = this.buffers[k]!;
       for (let i = 0; i < step.length; i++) if (step[i] !== slot[i]) return false;
     }
     return true;
   }
 
-  /**
-   * Counts a block the kernel folded for every variable (block set `set`); a layer with a value that is
-   * not finite is taken back and goes step by step.
-   */
-  private record(fold: SimdFold, set: number, steps: Steps): void {
+  /** Counts a block the kernel folded for every variable; a layer with a value that is not finite is taken back and goes step by step. */
+  private record(fold: SimdFold, steps: Steps): void {
     const out = fold.results;
     for (const layer of this.view.layers) {
       let finite = true;
@@ -243,7 +201,7 @@ export class JsAccumulator implements Accumulator {
       // The kernel added the finite coordinates of this layer's variables: take exactly those back.
       for (const v of layer.variables) {
         const f = fold.vectors[v.index]!;
-        fold.fold4(f.sets[set]!, f.ref, f.s1, -1);
+        fold.fold4(f.slots, f.ref, f.s1, -1);
       }
       this.foldStepByStep(layer, steps);
     }
@@ -283,7 +241,6 @@ export class JsAccumulator implements Accumulator {
 
   close(): Promise<RawVariableWindow[]> {
     this.fold();
-    this.settle();
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
       const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
@@ -310,10 +267,8 @@ export class JsAccumulator implements Accumulator {
   }
 
   dispose(): void {
-    this.thread?.close();
-    this.inFlight = null;
     this.queued = 0;
-    for (const set of this.block) for (const step of set) step.fill(null);
+    for (const step of this.block) step.fill(null);
     this.beforeWeights.fill(null);
   }
 }

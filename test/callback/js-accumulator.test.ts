@@ -1,7 +1,6 @@
 /**
- * The float64 JavaScript accumulator on the cpu backend, in its three ways of folding a block of four
- * minibatches (the JavaScript loop, the WebAssembly SIMD kernel on this thread, the kernel on a worker
- * thread), against the textbook two-pass formulas (mean, then squared deviations) over the gradients it
+ * The float64 JavaScript accumulator on the cpu backend, in its two ways of folding a block of four
+ * minibatches (the JavaScript loop, the WebAssembly SIMD kernel), against the textbook two-pass formulas (mean, then squared deviations) over the gradients it
  * kept; a step with a NaN in one layer is left out of that layer only.
  */
 import { beforeAll, describe, expect, it } from 'vitest';
@@ -14,8 +13,7 @@ beforeAll(useCpu);
 
 const WAYS: [string, JsAccumulatorOptions, string][] = [
   ['the JavaScript loop', { kernel: false }, 'js'],
-  ['the kernel on this thread', { thread: false }, 'simd'],
-  ['the kernel on a worker thread', {}, 'simd-thread'],
+  ['the WebAssembly SIMD kernel', {}, 'simd'],
 ];
 
 describe('JsAccumulator on cpu', () => {
@@ -24,7 +22,6 @@ describe('JsAccumulator on cpu', () => {
     const view = viewModel(model);
     const acc = new JsAccumulator(view, options);
     expect(acc.folding).toBe(folding);
-    if (acc.thread !== null) expect(await acc.thread.ready).toBe(true);
     const kept: Float32Array[][] = view.variables.map(() => []);
     const badLayer = view.variables[2]!.layer;
     // Two windows: 11 steps (two blocks and three left for the close), then 6.

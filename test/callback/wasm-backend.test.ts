@@ -25,14 +25,13 @@ describe('monitor on the wasm backend', () => {
     t.dispose();
   });
 
-  it.each([true, false])('folds the gradients with the WebAssembly SIMD kernel (on a worker thread: %s), giving the float64 loop\'s numbers', async (thread) => {
+  it('folds the gradients with the WebAssembly SIMD kernel, giving the float64 loop\'s numbers', async () => {
     // The same gradients through a kernel-backed accumulator (wasm) and through plain ShiftedMoments
     // sums computed here with the textbook two-pass formulas (mean, then squared deviations).
     const model = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 5 });
     const view = viewModel(model);
-    const acc = new JsAccumulator(view, { thread });
-    expect(acc.folding).toBe(thread ? 'simd-thread' : 'simd');
-    if (thread) expect(await acc.thread!.ready).toBe(true);
+    const acc = new JsAccumulator(view);
+    expect(acc.folding).toBe('simd');
     const grads: Float32Array[][] = [];
     for (let k = 0; k < 9; k++) {
       const step = view.variables.map((v) => tf.randomNormal(v.variable.shape, k, 1 + k / 10, 'float32', 40 + k));
@@ -42,8 +41,6 @@ describe('monitor on the wasm backend', () => {
       tf.dispose(step);
     }
     const out = await acc.close();
-    // Nine steps: two blocks of four through the kernel, the last step through the JavaScript loop at close.
-    if (thread) expect(acc.thread!.folds.thread + acc.thread!.folds.here).toBe(2);
     view.variables.forEach((v, i) => {
       const want = twoPass(grads.map((g) => g[i]!), v.size);
       expect(out[i]!.count).toBe(9);
@@ -54,14 +51,13 @@ describe('monitor on the wasm backend', () => {
     model.dispose();
   });
 
-  it.each([true, false])('leaves out, in the kernel\'s one-call fold (on a worker thread: %s), only the steps of the layer whose gradient is not finite', async (thread) => {
+  it('leaves out, in the kernel\'s one-call fold, only the steps of the layer whose gradient is not finite', async () => {
     // Eight steps (two blocks of four); step 5 of the first layer's kernel holds a NaN. That layer keeps
     // the other 7 steps, the output layer all 8, each equal to the two-pass formulas over what it kept.
     const model = denseModel({ inputs: 6, hidden: [10], outputs: 3, seed: 6 });
     const view = viewModel(model);
-    const acc = new JsAccumulator(view, { thread });
-    expect(acc.folding).toBe(thread ? 'simd-thread' : 'simd');
-    if (thread) expect(await acc.thread!.ready).toBe(true);
+    const acc = new JsAccumulator(view);
+    expect(acc.folding).toBe('simd');
     const kept: Float32Array[][] = view.variables.map(() => []);
     const badVar = 0;
     for (let k = 0; k < 8; k++) {
