@@ -9,7 +9,7 @@ import { JsAccumulator } from '../../src/callback/js-accumulator.js';
 import { viewModel } from '../../src/callback/model-layers.js';
 import { monitor } from '../../src/index.js';
 import { blobTensors, denseModel, tf, useWasm, weightsOf } from '../helpers/tf.js';
-import { twoPass } from '../helpers/two-pass.js';
+import { expectTwoPass, feedSteps, twoPass } from '../helpers/two-pass.js';
 
 beforeAll(async () => {
   expect(await useWasm()).toBe(true);
@@ -58,32 +58,9 @@ describe('monitor on the wasm backend', () => {
     const view = viewModel(model);
     const acc = new JsAccumulator(view);
     expect(acc.folding).toBe('simd');
-    const kept: Float32Array[][] = view.variables.map(() => []);
-    const badVar = 0;
-    for (let k = 0; k < 8; k++) {
-      const step = view.variables.map((v, i) => {
-        const values = Float32Array.from(tf.randomNormal(v.variable.shape, 0.5, 1, 'float32', 70 + k).dataSync());
-        if (k === 5 && i === badVar) values[3] = Number.NaN;
-        return values;
-      });
-      const layerOfBad = view.variables[badVar]!.layer;
-      step.forEach((g, i) => {
-        if (!(k === 5 && view.variables[i]!.layer === layerOfBad)) kept[i]!.push(g);
-      });
-      const tensors = view.variables.map((v, i) => tf.tensor(step[i]!, v.variable.shape));
-      acc.before(view.variables.map((v, i) => [v.variable.name, tensors[i]!] as const), false);
-      acc.after(false);
-      tf.dispose(tensors);
-    }
+    const kept = feedSteps(acc, view, 8, { seed: 70, mean: 0.5, bad: { step: 5, variable: 0 } });
     const out = await acc.close();
-    view.variables.forEach((v, i) => {
-      const rows = kept[i]!;
-      const want = twoPass(rows, v.size);
-      expect(out[i]!.count).toBe(rows.length);
-      expect(out[i]!.nonfinite).toBe(i === badVar ? 1 : 0);
-      expect(out[i]!.varianceTrace / want.varianceTrace).toBeCloseTo(1, 9);
-      expect(out[i]!.meanSquaredNorm / want.meanSquaredNorm).toBeCloseTo(1, 9);
-    });
+    expectTwoPass(out, view, kept, (i) => (i === 0 ? 1 : 0));
     expect(out.map((o) => o.count).sort()).toEqual([7, 7, 8, 8]);
     acc.dispose();
     model.dispose();
