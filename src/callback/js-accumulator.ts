@@ -1,7 +1,8 @@
 /**
- * Float64 JavaScript accumulators, for backends whose tensors live in memory JavaScript can read
- * cheaply (cpu, wasm, tensorflow): each gradient is read once with dataSync and folded into a
- * shifted sum and sum of squares per coordinate (methods.md §4).
+ * Float64 accumulators on the host, for backends whose tensors live in memory JavaScript can read
+ * cheaply (cpu, wasm, tensorflow): each gradient is read once and folded into a shifted sum and sum of
+ * squares per coordinate (methods.md §4), by blocks of four minibatches: on cpu and wasm in a
+ * WebAssembly SIMD kernel (the gradients copied into its memory), elsewhere in JavaScript.
  */
 import { countNonFinite, ShiftedMoments } from '../analysis/moments.js';
 import { SimdFold } from '../analysis/simd-fold.js';
