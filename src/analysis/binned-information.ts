@@ -85,6 +85,14 @@ function isArrayLike(v: unknown): v is ArrayLike<number> {
   );
 }
 
+/** An integer option of an estimator, at least `min` when given (a seed takes any integer); throws TIDEMARK_ERR_OPTION_INVALID. */
+export function checkInteger(where: string, name: string, v: number, min?: number): number {
+  if (!Number.isInteger(v) || (min !== undefined && v < min)) {
+    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option '${name}' must be an integer${min === undefined ? '' : ` ≥ ${min}`}; received ${String(v)}.`);
+  }
+  return v;
+}
+
 /** Throws TIDEMARK_ERR_OPTION_UNKNOWN for an option name not in `known`, with the closest name as a hint. */
 export function checkOptionNames(where: string, options: object, known: readonly string[]): void {
   for (const name of Object.keys(options)) if (!known.includes(name)) throw unknownOption(name, known, { owner: where });

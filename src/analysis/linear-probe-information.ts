@@ -17,7 +17,7 @@
  */
 
 import { TidemarkRangeError } from '../errors.js';
-import { checkActivations, checkOptionNames, compactClasses, finiteRows } from './binned-information.js';
+import { checkActivations, checkInteger, checkOptionNames, compactClasses, finiteRows } from './binned-information.js';
 import { LN2 } from './entropy.js';
 import { mulberry32, subsample } from './random.js';
 
@@ -65,13 +65,6 @@ const OPTION_NAMES = ['folds', 'l2', 'maxIterations', 'maxRows', 'seed'] as cons
 const SCALE_FLOOR = 0.1;
 /** Share of the read-out's distribution given to the uniform one (costs at most −ln(1 − ε) ≈ 0.001 nats a row). */
 const UNIFORM_SHARE = 1e-3;
-
-function checkInteger(where: string, name: string, v: number, min: number): number {
-  if (!Number.isInteger(v) || v < min) {
-    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option '${name}' must be an integer ≥ ${min}; received ${String(v)}.`);
-  }
-  return v;
-}
 
 /** A softmax regression's data: standardised features (row-major n × d), class indices, class count. */
 interface FitData {
@@ -262,9 +255,7 @@ export function linearProbeInformation(
   const folds = checkInteger(where, 'folds', o.folds, 2);
   const maxIterations = checkInteger(where, 'maxIterations', o.maxIterations, 1);
   const maxRows = checkInteger(where, 'maxRows', o.maxRows, 1);
-  if (!Number.isInteger(o.seed)) {
-    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'seed' must be an integer; received ${String(o.seed)}.`);
-  }
+  checkInteger(where, 'seed', o.seed);
   if (o.l2 !== null && (!(o.l2 >= 0) || !Number.isFinite(o.l2))) {
     throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'l2' must be a finite number ≥ 0; received ${String(o.l2)}.`);
   }

@@ -25,7 +25,7 @@
 
 import { subsample } from './random.js';
 import { TidemarkRangeError, TidemarkTypeError } from '../errors.js';
-import { checkActivations, checkOptionNames, compactClasses, finiteRows, SATURATION_MARGIN_BITS } from './binned-information.js';
+import { checkActivations, checkInteger, checkOptionNames, compactClasses, finiteRows, SATURATION_MARGIN_BITS } from './binned-information.js';
 import { LN2 } from './entropy.js';
 
 /** Mixture entropy bounds, nats. */
@@ -289,14 +289,8 @@ export function pairwiseInformationBounds(
   }
   const ratio = options.noiseVariance === undefined ? checkVariance(where, 'noiseRatio', options.noiseRatio ?? DEFAULT_NOISE_RATIO, 'a share of the total variance') : null;
   const absolute = options.noiseVariance === undefined ? null : checkVariance(where, 'noiseVariance', options.noiseVariance);
-  const maxRows = options.maxRows ?? 2048;
-  if (!Number.isInteger(maxRows) || maxRows < 1) {
-    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'maxRows' must be an integer ≥ 1; received ${String(maxRows)}.`);
-  }
-  const seed = options.seed ?? 0;
-  if (!Number.isInteger(seed)) {
-    throw new TidemarkRangeError('TIDEMARK_ERR_OPTION_INVALID', `${where}: option 'seed' must be an integer; received ${String(seed)}.`);
-  }
+  const maxRows = checkInteger(where, 'maxRows', options.maxRows ?? 2048, 1);
+  const seed = checkInteger(where, 'seed', options.seed ?? 0);
 
   let finite = finiteRows(acts, rows, cols);
   const dropped = rows - finite.length;
