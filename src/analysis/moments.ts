@@ -151,8 +151,7 @@ export class ShiftedMoments {
     if (fresh) {
       const first = block[0]!;
       if (countNonFinite(first) > 0) return false;
-      const ref = this.ref;
-      for (let j = 0; j < len; j++) ref[j] = first[j]!;
+      this.adoptReference(first);
     }
     const stop = this.addBlock(block, 1, len);
     if (stop < len) {
@@ -169,8 +168,8 @@ export class ShiftedMoments {
   }
 
   /**
-   * For a {@link SimdFold} that folds the blocks of all its vectors in one call (`foldAll`): before the
-   * fold, a fresh instance takes the block's first vector as its reference, as pushBlock does.
+   * A fresh instance takes `first` as its reference (pushBlock does so with a block's first vector; a
+   * {@link SimdFold} that folds every vector's block in one call, `foldAll`, needs it done before).
    */
   adoptReference(first: ArrayLike<number>): void {
     if (this.n > 0) return;
