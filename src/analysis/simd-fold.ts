@@ -136,9 +136,4 @@ export class SimdFold {
     this.kernel.fold4(c[0], c[1], c[2], c[3], c[4], c[5], c[6], c[7], c[8], sign);
     return this.out;
   }
-
-  /** The results of the last {@link foldAll}. */
-  get results(): Float64Array {
-    return this.out;
-  }
 }

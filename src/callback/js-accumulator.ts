@@ -120,7 +120,7 @@ export class JsAccumulator implements Accumulator {
     const step = this.block[this.queued]!;
     step.fill(null);
     const slot = this.buffers[this.queued] ?? null;
-    const wasm = slot === null || !this.wasmReads ? null : wasmHeap();
+    const wasm = this.wasmReads ? wasmHeap() : null;
     for (let p = 0; p < grads.length; p++) {
       const [name, tensor] = grads[p]!;
       if (tensor === null) continue;
@@ -132,7 +132,7 @@ export class JsAccumulator implements Accumulator {
     if (this.queued >= BLOCK) this.fold();
     if (sample) {
       for (const v of this.view.variables) {
-        this.beforeWeights[v.index] = readValues(v.variable, this.weightBuffers?.before[v.index] ?? null);
+        this.beforeWeights[v.index] = readValues(v.variable, this.weightBuffers?.before[v.index] ?? null, wasm);
       }
     }
   }
@@ -155,8 +155,7 @@ export class JsAccumulator implements Accumulator {
     const fold = this.simd;
     if (count === BLOCK && fold !== null && this.inSlots()) {
       for (let i = 0; i < fold.vectors.length; i++) this.moments[i]!.adoptReference(fold.vectors[i]!.slots[0]);
-      fold.foldAll(1);
-      this.record(fold, steps);
+      this.record(fold, fold.foldAll(1), steps);
       return;
     }
     for (const layer of this.view.layers) {
@@ -187,9 +186,11 @@ export class JsAccumulator implements Accumulator {
     return true;
   }
 
-  /** Counts a block the kernel folded for every variable; a layer with a value that is not finite is taken back and goes step by step. */
-  private record(fold: SimdFold, steps: Steps): void {
-    const out = fold.results;
+  /**
+   * Counts a block the kernel folded for every variable (`out`: its sums of squares, two per variable); a
+   * layer with a value that is not finite is taken back and goes step by step.
+   */
+  private record(fold: SimdFold, out: Float64Array, steps: Steps): void {
     for (const layer of this.view.layers) {
       let finite = true;
       for (const v of layer.variables) {
@@ -209,7 +210,7 @@ export class JsAccumulator implements Accumulator {
   }
 
   /** A layer's steps one at a time, counting what is not finite and leaving out the steps that have any. */
-  private foldStepByStep(layer: ModelView['layers'][number], steps: readonly (Values | null)[][]): void {
+  private foldStepByStep(layer: ModelView['layers'][number], steps: Steps): void {
     for (const st of steps) {
       let bad = 0;
       for (const v of layer.variables) {
@@ -228,10 +229,12 @@ export class JsAccumulator implements Accumulator {
 
   after(sample: boolean): void {
     if (!sample) return;
+    // Looked up again: the update may have grown the wasm heap since `before`.
+    const wasm = this.wasmReads ? wasmHeap() : null;
     for (const v of this.view.variables) {
       const before = this.beforeWeights[v.index];
       if (before == null) continue;
-      const now = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
+      const now = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null, wasm);
       diffAndSumSq(now, before, this.pair);
       this.updateSq[v.index] = this.pair[0]!;
       this.updateWeightSq[v.index] = this.pair[1]!;
@@ -242,9 +245,10 @@ export class JsAccumulator implements Accumulator {
 
   close(): Promise<RawVariableWindow[]> {
     this.fold();
+    const wasm = this.wasmReads ? wasmHeap() : null;
     const out: RawVariableWindow[] = this.view.variables.map((v) => {
       const m = this.moments[v.index]!;
-      const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null);
+      const w = readValues(v.variable, this.weightBuffers?.after[v.index] ?? null, wasm);
       diffAndSumSq(w, this.initial[v.index]!, this.pair);
       return {
         count: m.count,
